@@ -1,0 +1,33 @@
+# Everything goes through a local virtual environment in .venv, created on first use.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed-stamp
+
+.PHONY: install run test bench lint demo clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[dev]'
+	touch $(STAMP)
+
+install: $(STAMP)
+
+run: $(STAMP)
+	$(BIN)/likewise run
+
+demo: $(STAMP)
+	$(BIN)/likewise demo
+
+test: $(STAMP)
+	$(BIN)/python -m pytest $(PYTEST_ARGS)
+
+bench: $(STAMP)
+	$(BIN)/python bench/fit.py
+
+lint: $(STAMP)
+	$(BIN)/ruff check .
+
+clean:
+	rm -rf $(VENV) var .pytest_cache

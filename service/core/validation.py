@@ -1,0 +1,59 @@
+"""Input checks at the public edge of the core. Private helpers assume valid arrays."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .errors import CoreError, NotEnoughDataError
+
+
+def check_matrix(X, field: str = "records", n_features: int | None = None) -> np.ndarray:
+    """A finite 2-D float64 matrix, with ``n_features`` columns when given."""
+    try:
+        arr = np.asarray(X, dtype=float)
+    except (ValueError, TypeError) as exc:
+        raise CoreError(f"{field} must be a rectangular matrix of numbers ({exc})", field) from exc
+    if arr.ndim != 2:
+        raise CoreError(f"{field} must be a 2-D matrix, got {arr.ndim} dimension(s)", field)
+    if arr.shape[0] == 0:
+        raise NotEnoughDataError(f"{field} is empty", field)
+    if n_features is not None and arr.shape[1] != n_features:
+        raise CoreError(
+            f"{field} has {arr.shape[1]} feature(s), expected {n_features}", field
+        )
+    if not np.isfinite(arr).all():
+        bad = np.argwhere(~np.isfinite(arr))[0]
+        raise CoreError(
+            f"{field} contains NaN or infinity (first at row {bad[0]}, column {bad[1]})", field
+        )
+    return arr
+
+
+def check_batch(X, groups, n_features: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Validate a labelled batch; returns the matrix and group codes 0..k-1."""
+    arr = check_matrix(X, "records", n_features)
+    labels = np.asarray(groups)
+    if labels.ndim != 1:
+        raise CoreError("groups must be a flat list of labels", "groups")
+    if labels.shape[0] != arr.shape[0]:
+        raise CoreError(
+            f"groups has {labels.shape[0]} label(s) for {arr.shape[0]} record(s)", "groups"
+        )
+    if arr.shape[0] < 2:
+        raise NotEnoughDataError("a batch needs at least two records", "records")
+    _, codes = np.unique(labels, return_inverse=True)
+    codes = codes.reshape(-1)
+    if codes.max() < 1:
+        raise NotEnoughDataError("a batch needs at least two groups", "groups")
+    return arr, codes.astype(np.intp)
+
+
+def check_k(k, n_records: int) -> int:
+    if isinstance(k, bool) or not isinstance(k, (int, np.integer)):
+        raise CoreError("k must be a whole number", "k")
+    k = int(k)
+    if k < 1:
+        raise CoreError("k must be at least 1", "k")
+    if k > n_records:
+        raise CoreError(f"k={k} is larger than the number of records ({n_records})", "k")
+    return k
