@@ -44,7 +44,9 @@ def build_parser() -> argparse.ArgumentParser:
     p_worker.add_argument("--name", default=None, help="worker name shown in /v1/queues")
     p_worker.add_argument("--burst", action="store_true", help="exit when the queue is empty")
     p_worker.set_defaults(func=_cmd_worker)
-    p_demo = sub.add_parser("demo", help="post the invented cold-chain scenario to a running service")
+    p_demo = sub.add_parser(
+        "demo", help="post the invented cold-chain scenario to a running service"
+    )
     p_demo.add_argument("--url", default=None, help="service URL (default from LIKEWISE_HOST/PORT)")
     p_demo.add_argument("--token", default=None, help="Bearer token (default: the admin token)")
     p_demo.add_argument("--weeks", type=int, default=16, help="labelled batches to post")

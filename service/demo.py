@@ -70,7 +70,9 @@ def _default_token() -> str:
     path = Path(settings.data_dir) / "admin-token"
     if path.exists():
         return path.read_text().strip()
-    raise DemoError("no token: pass --token, set LIKEWISE_ADMIN_TOKEN or start `likewise run` first")
+    raise DemoError(
+        "no token: pass --token, set LIKEWISE_ADMIN_TOKEN or start `likewise run` first"
+    )
 
 
 def _default_url() -> str:
@@ -86,7 +88,9 @@ def _wait_for_fit(client: Client, fit_id: str) -> dict:
         if fit["status"] in ("succeeded", "failed"):
             return fit
         time.sleep(0.5)
-    raise DemoError(f"fit {fit_id} did not finish within {FIT_WAIT_SECONDS:.0f}s — is a worker running?")
+    raise DemoError(
+        f"fit {fit_id} did not finish within {FIT_WAIT_SECONDS:.0f}s — is a worker running?"
+    )
 
 
 def _fit(client: Client, body: dict) -> dict:
@@ -97,7 +101,9 @@ def _fit(client: Client, body: dict) -> dict:
     return fit
 
 
-def run_demo(url: str | None = None, token: str | None = None, weeks: int = 16, seed: int = 7) -> int:
+def run_demo(
+    url: str | None = None, token: str | None = None, weeks: int = 16, seed: int = 7
+) -> int:
     client = Client(url or _default_url(), token or _default_token())
     data = make_weeks(weeks + HELD_OUT_WEEKS, seed=seed)
     train, held_out = data[:weeks], data[weeks:]
@@ -112,7 +118,8 @@ def run_demo(url: str | None = None, token: str | None = None, weeks: int = 16, 
     print(f"created metric {METRIC!r} with {len(FEATURES)} features")
     for i, (X, labels) in enumerate(train):
         if i % 2 == 0:  # both payload forms, to show them
-            body = {"records": [dict(zip(FEATURES, row)) for row in X.tolist()], "groups": labels}
+            records = [dict(zip(FEATURES, row, strict=True)) for row in X.tolist()]
+            body = {"records": records, "groups": labels}
         else:
             body = {"columns": FEATURES, "rows": X.tolist(), "groups": labels}
         client.expect("POST", f"/v1/metrics/{METRIC}/batches", body)

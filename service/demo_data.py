@@ -52,7 +52,7 @@ def make_week(rng: np.random.Generator, n_causes: int | None = None):
     causes = rng.choice(len(CAUSES), size=n_causes, replace=False)
     sizes = rng.integers(6, 30, size=n_causes)
     rows, labels = [], []
-    for cause, size in zip(causes, sizes):
+    for cause, size in zip(causes, sizes, strict=True):
         logger = _CAUSE_MEANS[cause] + rng.normal(size=(size, 5)) * _CAUSE_SPREAD
         trip = _TRIP_MEAN + rng.normal(size=(size, 5)) * _TRIP_SPREAD
         rows.append(np.hstack([logger, np.abs(trip)]))

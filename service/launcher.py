@@ -139,7 +139,8 @@ def run(settings: Settings) -> int:
              if not settings.admin_token else "admin token taken from LIKEWISE_ADMIN_TOKEN")
 
         for i in range(settings.workers):
-            cmd = [sys.executable, "-m", "service.cli", "worker", "--name", f"worker-{os.getpid()}-{i}"]
+            name = f"worker-{os.getpid()}-{i}"
+            cmd = [sys.executable, "-m", "service.cli", "worker", "--name", name]
             procs.append((f"worker-{i}", subprocess.Popen(cmd, env=env)))
         bind = f"{settings.host}:{settings.port}"
         gunicorn = [

@@ -1,0 +1,213 @@
+"""End to end: ``likewise run`` (real gunicorn, real worker processes, real Redis) over HTTP.
+
+Data: scikit-learn's bundled UCI optical digits (Alpaydin & Kaynak) — labelled batches
+of 2–5 digit classes from a fitting pool, held-out batches from a disjoint pool.
+Agreement is the adjusted Rand index (Hubert & Arabie 1985) from ``sklearn.metrics``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+import numpy as np
+import pytest
+from sklearn.metrics import adjusted_rand_score
+
+from tests.datasets import load_open, make_batches, split_pool
+
+START_TIMEOUT = 60.0
+FIT_TIMEOUT = 240.0
+TOKEN = "e2e-admin-token"
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+class Http:
+    def __init__(self, base: str, token: str | None = TOKEN) -> None:
+        self.base, self.token = base, token
+
+    def __call__(self, method: str, path: str, body=None):
+        data = None if body is None else json.dumps(body).encode()
+        req = urllib.request.Request(self.base + path, data=data, method=method)
+        if self.token:
+            req.add_header("Authorization", f"Bearer {self.token}")
+        if data is not None:
+            req.add_header("Content-Type", "application/json")
+        try:
+            with urllib.request.urlopen(req, timeout=30) as resp:
+                raw = resp.read()
+                return resp.status, (json.loads(raw) if raw else None), dict(resp.headers)
+        except urllib.error.HTTPError as exc:
+            raw = exc.read()
+            return exc.code, (json.loads(raw) if raw else None), dict(exc.headers)
+        except (urllib.error.URLError, ConnectionError):
+            return None, None, {}
+
+
+def _wait(predicate, timeout: float, what: str, proc: subprocess.Popen | None = None):
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        value = predicate()
+        if value:
+            return value
+        if proc is not None and proc.poll() is not None:
+            raise AssertionError(f"launcher exited ({proc.returncode}) while waiting for {what}")
+        time.sleep(0.2)
+    raise AssertionError(f"timed out after {timeout}s waiting for {what}")
+
+
+def _start(env: dict, tmp: Path) -> tuple[subprocess.Popen, str]:
+    """Start ``likewise run``; return the process and its base URL once /readyz says ready."""
+    port = _free_port()
+    full = {**os.environ, **env, "LIKEWISE_PORT": str(port), "LIKEWISE_DATA_DIR": str(tmp)}
+    log = open(tmp / "launcher.log", "ab")  # noqa: SIM115 - lives as long as the process
+    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "run"], env=full,
+                            stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
+    base = f"http://127.0.0.1:{port}"
+    anon = Http(base, None)
+    _wait(lambda: anon("GET", "/readyz")[0] == 200, START_TIMEOUT, "/readyz", proc)
+    return proc, base
+
+
+def _stop(proc: subprocess.Popen) -> int:
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGINT)  # what Ctrl-C sends
+    try:
+        return proc.wait(timeout=30)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        raise
+
+
+def _children_gone(pid: int) -> bool:
+    out = subprocess.run(["ps", "-o", "pid=", "--ppid", str(pid)], capture_output=True, text=True)
+    return out.stdout.strip() == ""
+
+
+def _fit(http: Http, name: str, body: dict) -> dict:
+    status, fit, headers = http("POST", f"/v1/metrics/{name}/fits", body)
+    assert status == 202, fit
+    assert headers.get("Location") == f"/v1/fits/{fit['fit_id']}"
+
+    def done():
+        s, f, _ = http("GET", f"/v1/fits/{fit['fit_id']}")
+        return f if s == 200 and f["status"] in ("succeeded", "failed") else None
+
+    result = _wait(done, FIT_TIMEOUT, f"fit {fit['fit_id']}")
+    assert result["status"] == "succeeded", result
+    return result
+
+
+def _post_batch(http: Http, name: str, features: list[str], X: np.ndarray, y: np.ndarray):
+    status, body, _ = http("POST", f"/v1/metrics/{name}/batches",
+                           {"columns": features, "rows": X.tolist(), "groups": y.tolist()})
+    assert status == 201, body
+    return body
+
+
+@pytest.mark.timeout(600)
+def test_whole_flow_through_the_launcher(settings, tmp_path):
+    env = {
+        "LIKEWISE_REDIS_URL": settings.redis_url,
+        "LIKEWISE_KEY_PREFIX": settings.key_prefix,
+        "LIKEWISE_QUEUE": settings.queue_name,
+        "LIKEWISE_ADMIN_TOKEN": TOKEN,
+        "LIKEWISE_WORKERS": "1",
+    }
+    proc, base = _start(env, tmp_path)
+    http = Http(base)
+    try:
+        rng = np.random.default_rng(2026)
+        X, y = load_open("digits")
+        (Xf, yf), (Xs, ys) = split_pool(X, y, rng)
+        features = [f"px{i}" for i in range(X.shape[1])]
+        train = make_batches(Xf, yf, 26, rng)
+        held_out = make_batches(Xs, ys, 1, rng, classes_per_batch=(4, 4))[0]
+
+        assert http("PUT", "/v1/metrics/digits", {"features": features})[0] == 201
+        for Xb, yb in train[:20]:
+            _post_batch(http, "digits", features, Xb, yb)
+
+        first = _fit(http, "digits", {})
+        assert first["version"] == 1
+        status, metric, _ = http("GET", "/v1/metrics/digits")
+        assert status == 200 and metric["active_version"] == 1 and metric["batches"] == 20
+
+        # a held-out batch from the disjoint pool: the learned metric beats Euclidean
+        euclid = _fit(http, "digits", {"method": "euclidean", "activate": "never"})
+        Xh, yh = held_out
+        k = len(np.unique(yh))
+        scores = {}
+        for v in (1, euclid["version"]):
+            status, out, _ = http("POST", "/v1/metrics/digits/groupings",
+                                  {"columns": features, "rows": Xh.tolist(), "k": k, "version": v})
+            assert status == 200 and out["version"] == v, out
+            scores[v] = adjusted_rand_score(yh, out["labels"])
+        assert scores[1] > scores[euclid["version"]], scores
+
+        for Xb, yb in train[20:]:
+            _post_batch(http, "digits", features, Xb, yb)
+        second = _fit(http, "digits", {"activate": "always"})
+        assert second["version"] == 3
+        assert http("GET", "/v1/metrics/digits")[1]["active_version"] == 3
+
+        # roll back to version 1
+        status, body, _ = http("PUT", "/v1/metrics/digits/active",
+                               {"version": 1, "reason": "e2e roll back"})
+        assert status == 200, body
+        status, out, _ = http("POST", "/v1/metrics/digits/groupings",
+                              {"columns": features, "rows": Xh.tolist(), "k": k})
+        assert status == 200 and out["version"] == 1
+
+        history = http("GET", "/v1/metrics/digits/history")[1]["history"]
+        moves = [(h["from"], h["to"]) for h in history]
+        assert (None, 1) in moves and (1, 3) in moves and (3, 1) in moves
+        rollback = next(h for h in history if (h["from"], h["to"]) == (3, 1))
+        assert rollback["who"] == "admin" and rollback["reason"] == "e2e roll back"
+
+        status, queues, _ = http("GET", "/v1/queues")
+        assert status == 200
+        assert any(w["state"] for w in queues["workers"])
+    finally:
+        assert _stop(proc) == 0
+    assert _children_gone(proc.pid)
+
+
+@pytest.mark.timeout(300)
+def test_embedded_redis_token_file_and_persistence(tmp_path):
+    """``make run`` on a fresh machine: no Redis URL, no token — both are provided."""
+    env = {"LIKEWISE_WORKERS": "1"}
+    for key in ("LIKEWISE_REDIS_URL", "LIKEWISE_ADMIN_TOKEN", "LIKEWISE_KEY_PREFIX",
+                "LIKEWISE_QUEUE"):
+        env[key] = ""
+    proc, base = _start(env, tmp_path)
+    token_file = tmp_path / "admin-token"
+    try:
+        assert token_file.stat().st_mode & 0o777 == 0o600
+        http = Http(base, token_file.read_text().strip())
+        assert http("GET", "/v1/metrics")[0] == 200
+        assert Http(base, "wrong")("GET", "/v1/metrics")[0] == 401
+        assert http("PUT", "/v1/metrics/kept", {"features": ["a", "b"]})[0] == 201
+    finally:
+        assert _stop(proc) == 0
+    # a second start reuses the token and finds the metric: the append-only file kept it
+    proc2, base2 = _start(env, tmp_path)
+    try:
+        http = Http(base2, token_file.read_text().strip())
+        status, body, _ = http("GET", "/v1/metrics/kept")
+        assert status == 200 and body["features"] == ["a", "b"]
+    finally:
+        assert _stop(proc2) == 0
