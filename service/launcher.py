@@ -148,6 +148,7 @@ def run(settings: Settings) -> int:
             "--bind", bind,
             "--workers", "2",
             "--access-logfile", "-",
+            "--no-control-socket",  # several deployments may share a host
             "service.api:create_app()",
         ]
         procs.append(("http", subprocess.Popen(gunicorn, env=env)))
