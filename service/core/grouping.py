@@ -1,6 +1,10 @@
 """Grouping new records with a fitted metric.
 
-STUB — the contract; implementation pending.
+Records are mapped into the learned space (``z = L · ((x − mean) / scales)``) and
+grouped by k-means there: k-means++ with several restarts and a fixed seed, so the
+same input always gives the same output. A rank-1 map groups with the exact
+one-dimensional solver (:func:`service.core.kmeans1d.kmeans_1d`), the global
+optimum. Groups are numbered in order of their first record.
 """
 
 from __future__ import annotations
@@ -9,13 +13,25 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .clustering import cluster, own_and_runner_up
+from .errors import CoreError
+from .kchoice import choose_k
 from .metric import FittedMetric
+from .validation import check_k, check_matrix
 
 
 @dataclass(frozen=True, eq=False)
 class Grouping:
+    """The result of grouping records.
+
+    ``k`` is the number of groups formed: the requested (or chosen) k, or fewer when
+    the records hold fewer distinct points in the learned space (a rank-0 metric maps
+    every record to one point: one group). With a single group there is no
+    second-nearest centre and every margin is ``+inf``.
+    """
+
     k: int
-    labels: np.ndarray  # (n,) int, 0..k-1
+    labels: np.ndarray  # (n,) int, 0..k-1, numbered by first appearance
     distances: np.ndarray  # (n,) distance to own centre in the learned space
     margins: np.ndarray  # (n,) distance to 2nd-nearest centre minus own distance (≥ 0)
     sizes: np.ndarray  # (k,) records per group
@@ -28,5 +44,36 @@ def group_records(
     k: int | None = None,
     random_state: int | None = 0,
     n_init: int = 10,
+    init=None,
 ) -> Grouping:
-    raise NotImplementedError
+    """Group records (n × d, raw units) with ``metric``.
+
+    ``k`` None chooses k with the metric's calibrated rule (``metric.k_rule``).
+    ``init`` optional initial centres (k × rank) in the learned space: one k-means
+    run from them instead of k-means++ restarts (ignored by the exact rank ≤ 1 paths).
+    """
+    X = check_matrix(X, "records", metric.n_features)
+    n = X.shape[0]
+    if isinstance(n_init, bool) or not isinstance(n_init, (int, np.integer)) or n_init < 1:
+        raise CoreError("n_init must be a whole number of at least 1", "n_init")
+    Z = metric.transform(X)
+    chosen = k is None
+    if chosen:
+        k = choose_k(Z, metric.k_rule, random_state)
+    k = check_k(k, n)
+    if init is not None:
+        init = check_matrix(init, "init", Z.shape[1])
+        if init.shape[0] != k:
+            raise CoreError(f"init has {init.shape[0]} centre(s) for k={k}", "init")
+    labels, centres, _ = cluster(Z, k, random_state=random_state, n_init=int(n_init), init=init)
+    own, other = own_and_runner_up(Z, centres, labels)
+    margins = np.maximum(other - own, 0.0)
+    sizes = np.bincount(labels, minlength=centres.shape[0])
+    return Grouping(
+        k=int(centres.shape[0]),
+        labels=labels,
+        distances=own,
+        margins=margins,
+        sizes=sizes,
+        k_chosen=chosen,
+    )

@@ -1,31 +1,221 @@
 """Choosing k when the caller does not give it.
 
-STUB — the contract; implementation pending.
+For a set of mapped records and every k in 1..k_max we group once (a Ward tree cut
+at k, refined by k-means iterations; :mod:`service.core.kcurves`) and keep three
+curves: the within-group sum of squares ``W_k``, the silhouette and the
+Calinski–Harabasz ratio. Four candidate rules read k̂ from those curves:
 
-``calibrate_k_rule(metric, batches, k_max, random_state)`` is called by the selector
-after a fit, on the training batches, and returns a JSON-safe dict stored with the
-metric (``FittedMetric.k_rule``). ``choose_k(Z, rule, random_state)`` applies it to
-records already mapped into the learned space.
+* ``silhouette`` — k with the largest mean silhouette (no parameter);
+* ``calinski_harabasz`` — k with the largest between/within variance ratio (no parameter);
+* ``spread`` — the smallest k whose mean squared distance to the own centre,
+  ``W_k / n``, is at most a threshold τ: how tight the experts' groups are in the
+  learned space, learned from the training batches;
+* ``explained`` — the smallest k with ``W_k / W_1 ≤ τ`` (share of spread left).
+
+``calibrate_k_rule`` (called by the selector after a fit, on the training batches)
+scores every rule by leave-one-batch-out, twice over: each batch is mapped by the
+same learner refitted without it (from the statistics, O(d³) per batch), because a
+metric makes its own training batches look tighter than new ones; and thresholds are
+learned on the other batches. A held-out batch counts as a hit when k̂ equals its
+number of expert groups. The rule with the best held-out hit rate wins (ties go to the earlier rule
+in the list above) and is refitted on all batches. The result is a JSON-safe dict
+stored with the metric; ``choose_k`` applies it to records already mapped.
 """
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
+from . import kcurves
+from .errors import CoreError
+from .learners import fit_metric
 from .metric import FittedMetric
+from .stats import BatchStats
+from .validation import check_batch, check_matrix
+
+RULES = ("silhouette", "calinski_harabasz", "spread", "explained")
+_THRESHOLD_RULES = ("spread", "explained")
+DEFAULT_K_MAX = 10
 
 
 def calibrate_k_rule(
     metric: FittedMetric,
     batches: Sequence[tuple[np.ndarray, np.ndarray]],
-    k_max: int = 10,
+    k_max: int = DEFAULT_K_MAX,
     random_state: int | None = 0,
+    total: BatchStats | None = None,
 ) -> dict[str, Any]:
-    raise NotImplementedError
+    """Calibrate the rule for unknown k on labelled batches; a JSON-safe dict.
+
+    ``total``: the summed statistics ``metric`` was fitted from, which include every
+    batch given here; defaults to the sum over ``batches``. Batch b is mapped by the
+    learner refitted on ``total − stats(b)``; when that is impossible (a single batch,
+    a method the learners do not know) by ``metric`` itself.
+    """
+    k_max = _check_k_max(k_max)
+    data = [check_batch(X, groups, metric.n_features) for X, groups in batches]
+    maps, mapping = _out_of_batch_maps(metric, data, total)
+    curves = [
+        kcurves.curves(m.transform(X), k_max, random_state)
+        for m, (X, _) in zip(maps, data, strict=True)
+    ]
+    truths = [int(codes.max()) + 1 for _, codes in data]
+    candidates: dict[str, dict[str, Any]] = {}
+    for rule in RULES:
+        if rule in _THRESHOLD_RULES and len(curves) < 2:
+            continue  # a threshold cannot be checked held-out on a single batch
+        hits = [
+            _pick(rule, c, _fit_params(rule, _without(curves, i), _without(truths, i))) == t
+            for i, (c, t) in enumerate(zip(curves, truths, strict=True))
+        ]
+        candidates[rule] = {
+            "held_out_hit_rate": float(np.mean(hits)) if hits else None,
+            "params": _fit_params(rule, curves, truths),
+        }
+    winner = max(
+        candidates,
+        key=lambda name: (candidates[name]["held_out_hit_rate"] or 0.0, -RULES.index(name)),
+    )
+    return {
+        "rule": winner,
+        "params": candidates[winner]["params"],
+        "k_max": k_max,
+        "held_out_hit_rate": candidates[winner]["held_out_hit_rate"],
+        "n_batches": len(curves),
+        "mapping": mapping,
+        "candidates": candidates,
+        "sample_cap": kcurves.SAMPLE_CAP,
+    }
 
 
 def choose_k(Z: np.ndarray, rule: dict[str, Any] | None, random_state: int | None = 0) -> int:
-    raise NotImplementedError
+    """k in [2, k_max] for records already mapped into the learned space.
+
+    Capped by the number of distinct points; 1 only when there is a single one.
+    ``rule`` None means the silhouette rule with k_max = 10.
+    """
+    Z = check_matrix(Z, "records")
+    rule = rule or {"rule": "silhouette", "params": {}, "k_max": DEFAULT_K_MAX}
+    name = rule.get("rule")
+    if name not in RULES:
+        raise CoreError(f"unknown k rule {name!r}", "k_rule")
+    k_max = _check_k_max(rule.get("k_max", DEFAULT_K_MAX))
+    return _pick(name, kcurves.curves(Z, k_max, random_state), rule.get("params") or {})
+
+
+def _check_k_max(k_max) -> int:
+    if isinstance(k_max, bool) or not isinstance(k_max, (int, np.integer)) or k_max < 2:
+        raise CoreError("k_max must be a whole number of at least 2", "k_max")
+    return int(k_max)
+
+
+def _out_of_batch_maps(
+    metric: FittedMetric, data: list[tuple[np.ndarray, np.ndarray]], total: BatchStats | None
+) -> tuple[list[FittedMetric], str]:
+    """Per batch, the learner refitted without it; else ``metric`` (in sample).
+
+    The refits are used only if refitting on ``total`` reproduces ``metric``: then
+    they live in the same learned space (same learner, α, rank and scales).
+    """
+    in_sample = [metric] * len(data), "in_sample"
+    if not data or (total is None and len(data) < 2):
+        return in_sample
+    parts = [BatchStats.from_batch(X, codes) for X, codes in data]
+    total = total if total is not None else BatchStats.sum(parts)
+    alpha = metric.alpha if metric.alpha > 0 else 1.0  # α is unused by "euclidean"
+
+    def refit(stats: BatchStats) -> FittedMetric:
+        return fit_metric(stats, metric.method, alpha, max_rank=metric.rank)
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # zero-spread warnings were given by the fit
+            if not _same_map(refit(total), metric):
+                return in_sample
+            maps = []
+            for part in parts:
+                rest = total - part
+                if rest.n_batches < 1:
+                    return in_sample
+                maps.append(refit(rest))
+    except CoreError:
+        return in_sample
+    return maps, "leave_one_batch_out"
+
+
+def _same_map(a: FittedMetric, b: FittedMetric) -> bool:
+    return (
+        a.components.shape == b.components.shape
+        and np.allclose(a.scales, b.scales, rtol=1e-6)
+        and np.allclose(a.mean, b.mean, rtol=1e-6, atol=1e-9 * float(np.abs(b.mean).max()))
+        and np.allclose(a.matrix, b.matrix, rtol=1e-5, atol=1e-8 * float(np.abs(b.matrix).max()))
+    )
+
+
+def _without(items: list, i: int) -> list:
+    return items[:i] + items[i + 1 :]
+
+
+def _statistic(rule: str, curves: dict[str, np.ndarray]) -> np.ndarray:
+    """The curve a threshold rule compares with τ (index 0 ↔ k = 1)."""
+    inertia = curves["inertia"]
+    if rule == "spread":
+        return inertia / curves["n"]
+    return inertia / inertia[0] if inertia[0] > 0 else np.zeros_like(inertia)
+
+
+def _pick(rule: str, curves: dict[str, np.ndarray], params: dict[str, Any]) -> int:
+    k_hi = curves["inertia"].shape[0]
+    if k_hi < 2:
+        return 1
+    if rule in _THRESHOLD_RULES:
+        stat = _statistic(rule, curves)[1:]
+        tau = params.get("threshold")
+        if tau is None:  # nothing to calibrate on: fall back to the silhouette
+            return _pick("silhouette", curves, {})
+        below = np.flatnonzero(stat <= tau)
+        return int(below[0]) + 2 if below.size else k_hi
+    values = np.nan_to_num(curves[rule][1:], nan=-np.inf, posinf=np.finfo(float).max)
+    return int(np.argmax(values)) + 2
+
+
+def _fit_params(rule: str, curves: list, truths: list[int]) -> dict[str, Any]:
+    """Threshold τ hitting the most batches; ``{}`` for rules without parameters."""
+    if rule not in _THRESHOLD_RULES:
+        return {}
+    # a batch is hit when stat[k_true] ≤ τ < stat[k] for every 2 ≤ k < k_true
+    lows, highs = [], []
+    for c, t in zip(curves, truths, strict=True):
+        stat = _statistic(rule, c)
+        if t < 2 or t > stat.shape[0]:
+            continue  # k out of reach: no threshold can hit this batch
+        lows.append(stat[t - 1])
+        highs.append(np.min(stat[1 : t - 1]) if t > 2 else np.inf)
+    lo, hi = np.asarray(lows), np.asarray(highs)
+    ok = lo < hi
+    lo, hi = lo[ok], hi[ok]
+    if lo.size == 0:
+        return {"threshold": None}
+    cover = ((lo[None, :] <= lo[:, None]) & (lo[:, None] < hi[None, :])).sum(axis=1)
+    events = np.unique(np.concatenate([lo, hi]))
+    best, best_width, best_tau = -1, -np.inf, None
+    for start in np.unique(lo[cover == cover.max()]):
+        later = events[events > start]
+        end = later[0] if later.size else np.inf
+        tau, width = _inside(start, end)
+        if width > best_width:
+            best, best_width, best_tau = int(cover.max()), width, tau
+    return {"threshold": best_tau, "training_hits": best}
+
+
+def _inside(start: float, end: float) -> tuple[float, float]:
+    """A point well inside [start, end) and the interval's width on a log scale."""
+    if not np.isfinite(end):
+        return float(2.0 * start) if start > 0 else 1.0, np.inf
+    if start > 0:
+        return float(np.sqrt(start * end)), float(np.log(end / start))
+    return float(end / 2.0), np.inf

@@ -1,14 +1,64 @@
 """Learners: fitted metrics from summed batch statistics, O(d³), no raw records.
 
-STUB — the contract; implementation pending.
+Every learner starts the same way (METHOD.md):
+
+* feature scales ``s_j = sqrt(G_raw[j, j] / N)`` (pooled within-batch spread); a
+  feature without spread gets scale 1, a :class:`ZeroSpreadWarning` and an entry in
+  ``info["warnings"]``; if no feature has spread the fit fails;
+* standardised scatters ``G = D⁻¹ G_raw D⁻¹``, ``H = D⁻¹ H_raw D⁻¹`` and the ridge
+  ``λ = α · tr(G) / d``;
+* the numerical null space of ``G`` is dropped before anything is inverted. This is
+  exact, not an approximation: ``0 ≼ H ≼ G``, so a direction with no total spread has
+  no between-group spread either (it covers zero-spread and collinear features).
+
+Learners:
+
+``closed_form``
+    ``M = (G + λI)⁻¹ H (G + λI)⁻¹`` — the published ridge regression of the normalised
+    assignment on the records. Computed in square-root form: with ``H = Fᵀ F``,
+    ``W = (G + λI)⁻¹ Fᵀ`` and ``M = W Wᵀ``; the SVD of ``W`` gives ``L = Λ^{1/2} Uᵀ``
+    over the eigenpairs above ``rel_tol`` × the largest, optionally ``max_rank`` of
+    them. Rank ≤ min(d, Σ_b (k_b − 1)).
+``discriminant``
+    The generalised eigenproblem ``H v = μ (G − H + λI) v`` (within-group whitened).
+    Components are the eigenvectors with ``μ`` above ``rel_tol`` × the largest,
+    normalised to unit regularised within-group variance and weighted by the
+    canonical correlation ``sqrt(μ / (1 + μ))``. Whitened directions alone give every
+    retained direction the same weight however weakly it separates groups; the
+    canonical-correlation weight is the one the regression form implicitly uses
+    (ESL §4.3 / Hastie, Buja & Tibshirani 1995), bounded in [0, 1], so weak
+    directions cannot swamp k-means with within-group noise.
+``diagonal``
+    Per-feature weights only: ``w_j² = H_jj / (G_jj − H_jj + λ)``, a regularised
+    between/within variance ratio of feature j (an F-ratio up to degrees of freedom).
+    Chosen over the diagonal of the closed-form M because it depends on feature j
+    alone, so a weight reads as "how well this feature alone separates the expert's
+    groups"; α keeps perfectly separating features finite.
+``euclidean``
+    The identity on standardised features (the baseline): components = I, rank d.
+
+Scale: k-means does not care about an overall factor, so every learned map except
+``euclidean`` is rescaled so that the mapped training records have, on average over
+the components, unit pooled within-batch variance: ``tr(L G Lᵀ) / (N r) = 1``.
 """
 
 from __future__ import annotations
 
+import math
+import warnings
+from typing import Any
+
+import numpy as np
+import scipy.linalg
+
+from .errors import CoreError, NotEnoughDataError, ZeroSpreadWarning
 from .metric import FittedMetric
 from .stats import BatchStats
 
 METHODS = ("closed_form", "discriminant", "diagonal", "euclidean")
+
+_SPREAD_TOL = 1e-10  # relative to |mean|: below this a feature has no spread
+_NULL_TOL = 1e-12  # eigenvalues of G below this × the largest are exact zeros
 
 
 def fit_metric(
@@ -18,5 +68,178 @@ def fit_metric(
     max_rank: int | None = None,
     rel_tol: float = 1e-8,
 ) -> FittedMetric:
-    """Fit one learner from summed statistics (see METHOD.md)."""
-    raise NotImplementedError
+    """Fit one learner from summed statistics (see the module doc and METHOD.md)."""
+    if method not in METHODS:
+        raise CoreError(
+            f"unknown method {method!r}; expected one of {', '.join(METHODS)}", "method"
+        )
+    alpha = _check_alpha(alpha)
+    if max_rank is not None:
+        if isinstance(max_rank, bool) or not isinstance(max_rank, (int, np.integer)):
+            raise CoreError("max_rank must be a whole number", "max_rank")
+        if max_rank < 1:
+            raise CoreError("max_rank must be at least 1", "max_rank")
+    if not isinstance(stats, BatchStats):
+        raise TypeError("stats must be a BatchStats")
+    if stats.n_batches < 1 or stats.n < 2:
+        raise NotEnoughDataError("no labelled batches to learn from", "batches")
+
+    scales, warn_list, zero = _scales(stats)
+    G = stats.G / np.outer(scales, scales)
+    H = stats.H / np.outer(scales, scales)
+    G = (G + G.T) / 2.0
+    H = (H + H.T) / 2.0
+    d = stats.n_features
+    lam = alpha * float(np.trace(G)) / d
+    info: dict[str, Any] = {
+        "lambda": lam,
+        "n_batches": int(stats.n_batches),
+        "n_records": int(stats.n),
+        "zero_spread_features": zero,
+        "warnings": warn_list,
+    }
+    max_r = max(int(stats.n_groups) - int(stats.n_batches), 1)
+    if max_rank is not None:
+        max_r = min(max_r, int(max_rank))
+
+    if method == "euclidean":
+        L = np.eye(d)
+        alpha = 0.0
+        info["lambda"] = 0.0
+    elif method == "diagonal":
+        L, weights = _diagonal(G, H, lam, rel_tol, max_r)
+        info["weights"] = weights.tolist()
+    else:
+        V, gam = _range_basis(G)
+        Gr = gam
+        Hr = V.T @ H @ V
+        Hr = (Hr + Hr.T) / 2.0
+        if method == "closed_form":
+            Lr, eig = _closed_form(Gr, Hr, lam, rel_tol, max_r)
+        else:
+            Lr, eig = _discriminant(Gr, Hr, lam, rel_tol, max_r)
+        L = Lr @ V.T
+        info["eigenvalues"] = eig.tolist()
+    if method != "euclidean":
+        L = _normalise(L, G, stats.n)
+    if L.shape[0] == 0:  # no between-group signal at all: fall back to a zero map
+        L = np.zeros((1, d))
+        info["warnings"].append("no between-group spread: the learned map is zero")
+    return FittedMetric(
+        method=method,
+        alpha=float(alpha),
+        scales=scales,
+        mean=stats.mean.copy(),
+        components=L,
+        info=info,
+    )
+
+
+def _check_alpha(alpha: Any) -> float:
+    try:
+        value = float(alpha)
+    except (TypeError, ValueError) as exc:
+        raise CoreError("alpha must be a number", "alpha") from exc
+    if not math.isfinite(value) or value <= 0.0:
+        raise CoreError("alpha must be a finite number greater than 0", "alpha")
+    return value
+
+
+def _scales(stats: BatchStats) -> tuple[np.ndarray, list[str], list[int]]:
+    """Pooled within-batch standard deviations; zero-spread features get scale 1."""
+    var = np.clip(np.diag(stats.G), 0.0, None) / stats.n
+    s = np.sqrt(var)
+    ref = np.maximum(np.abs(stats.mean), np.finfo(float).tiny)
+    zero_mask = s <= _SPREAD_TOL * ref
+    if zero_mask.all():
+        raise CoreError(
+            "no feature varies within any batch; there is nothing to learn from", "records"
+        )
+    zero = [int(j) for j in np.flatnonzero(zero_mask)]
+    msgs: list[str] = []
+    if zero:
+        msg = (
+            f"feature(s) {', '.join(map(str, zero))} have no spread within batches; "
+            "they carry no signal and get scale 1"
+        )
+        warnings.warn(msg, ZeroSpreadWarning, stacklevel=3)
+        msgs.append(msg)
+    s = np.where(zero_mask, 1.0, s)
+    return s, msgs, zero
+
+
+def _range_basis(G: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Eigenvectors and eigenvalues of G over its numerical range (exact null dropped)."""
+    gam, V = scipy.linalg.eigh(G)
+    keep = gam > _NULL_TOL * max(float(gam[-1]), 0.0)
+    return V[:, keep], gam[keep]
+
+
+def _closed_form(
+    gam: np.ndarray, H: np.ndarray, lam: float, rel_tol: float, max_r: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """``L`` with ``LᵀL = A⁻¹ H A⁻¹`` (A = diag(gam) + λI), square-root form."""
+    h, Q = scipy.linalg.eigh(H)
+    pos = h > 0
+    F_t = Q[:, pos] * np.sqrt(h[pos])  # H = F_t F_tᵀ
+    if F_t.shape[1] == 0:
+        return np.zeros((0, gam.shape[0])), np.zeros(0)
+    W = F_t / (gam + lam)[:, None]
+    U, sig, _ = scipy.linalg.svd(W, full_matrices=False)
+    eig = sig**2  # eigenvalues of M
+    return _top((U * sig).T, eig, rel_tol, max_r)
+
+
+def _discriminant(
+    gam: np.ndarray, H: np.ndarray, lam: float, rel_tol: float, max_r: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Generalised eigenvectors of H against the regularised within-group scatter."""
+    Wt = np.diag(gam) - H + lam * np.eye(gam.shape[0])
+    Wt = (Wt + Wt.T) / 2.0
+    # Whiten by hand (equivalent to eigh(H, Wt)) so that a within-group scatter that is
+    # singular up to rounding — groups that are perfectly separated — stays solvable.
+    om, Q = scipy.linalg.eigh(Wt)
+    floor = max(lam, _NULL_TOL * float(gam.max()))
+    S = Q / np.sqrt(np.maximum(om, floor))
+    B = S.T @ H @ S
+    mu, E = scipy.linalg.eigh((B + B.T) / 2.0)
+    mu, E = mu[::-1], E[:, ::-1]
+    V = S @ E  # columns: vᵀ Wt v = 1
+    weights = np.sqrt(np.clip(mu, 0.0, None) / (1.0 + np.clip(mu, 0.0, None)))
+    return _top((V * weights).T, mu, rel_tol, max_r)
+
+
+def _diagonal(
+    G: np.ndarray, H: np.ndarray, lam: float, rel_tol: float, max_r: int
+) -> tuple[np.ndarray, np.ndarray]:
+    del max_r  # a diagonal map keeps one row per informative feature
+    g, h = np.diag(G), np.clip(np.diag(H), 0.0, None)
+    within = np.clip(g - h, 0.0, None)
+    weights = np.sqrt(h / (within + max(lam, _NULL_TOL * float(g.max()))))
+    w2 = weights**2
+    keep = w2 > rel_tol * float(w2.max()) if w2.max() > 0 else np.zeros(w2.shape, bool)
+    L = np.diag(weights)[keep]
+    return L, weights
+
+
+def _top(
+    rows: np.ndarray, eig: np.ndarray, rel_tol: float, max_r: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Rows whose eigenvalue exceeds ``rel_tol`` × the largest, at most ``max_r``."""
+    if eig.size == 0 or eig.max() <= 0:
+        return rows[:0], eig[:0]
+    order = np.argsort(eig)[::-1]
+    eig, rows = eig[order], rows[order]
+    keep = eig > rel_tol * eig[0]
+    keep[max_r:] = False
+    return rows[keep], eig[keep]
+
+
+def _normalise(L: np.ndarray, G: np.ndarray, n: int) -> np.ndarray:
+    """Rescale so that mapped records have unit within-batch variance per component."""
+    if L.shape[0] == 0:
+        return L
+    var = float(np.trace(L @ G @ L.T)) / (n * L.shape[0])
+    if var <= 0 or not math.isfinite(var):
+        return L
+    return L / math.sqrt(var)

@@ -1,0 +1,51 @@
+"""The HTTP API: ``create_app`` builds a Flask app around one :class:`Context`.
+
+Nothing connects at import time; ``create_app`` wires the context (Redis connects on
+first use). Routes: ``/v1/...`` (Bearer auth), ``/healthz``, ``/readyz``, ``/metrics``.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+from flask import Blueprint, Flask
+
+from .auth import require_token
+from .problems import register_problem_handlers
+
+if TYPE_CHECKING:
+    from service.config import Settings
+    from service.context import Context
+
+
+def create_app(settings: Settings | None = None, context: Context | None = None) -> Flask:
+    """Build the app. ``context`` wins over ``settings``; with neither, the environment."""
+    from service.config import Settings
+    from service.context import Context
+
+    from . import batches, fits, groupings, health, metrics, telemetry, versions
+
+    if context is None:
+        context = Context.build(settings if settings is not None else Settings.from_env())
+    settings = context.settings
+
+    app = Flask(__name__, static_folder=None)
+    app.config["MAX_CONTENT_LENGTH"] = settings.max_request_bytes
+    app.json.sort_keys = False  # keep the use cases' key order
+    app.extensions["likewise.context"] = context
+    app.extensions["likewise.principals"] = settings.principals()
+
+    register_problem_handlers(app)
+    telemetry.install(app)
+
+    v1 = Blueprint("v1", __name__, url_prefix="/v1")
+    v1.before_request(require_token)
+    for module in (metrics, batches, fits, versions, groupings):
+        v1.register_blueprint(module.bp)
+    v1.register_blueprint(health.v1_bp)
+    app.register_blueprint(v1)
+    app.register_blueprint(health.bp)
+    return app
+
+
+__all__ = ["create_app"]

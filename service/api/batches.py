@@ -1,0 +1,35 @@
+"""``/v1/metrics/{name}/batches``: labelled batches in, their summaries out."""
+
+from __future__ import annotations
+
+from flask import Blueprint, Response
+
+from service.usecases import batches as uc
+
+from .deps import context, no_content, reply
+from .schemas import BatchSchema, json_body, table_of
+
+bp = Blueprint("batches", __name__)
+
+
+@bp.post("/metrics/<name>/batches")
+def add_batch(name: str) -> Response:
+    data = json_body(BatchSchema())
+    batch = uc.add_batch(context(), name, table_of(data), data["groups"])
+    return reply(batch, 201, location=f"/v1/metrics/{name}/batches/{batch['batch_id']}")
+
+
+@bp.get("/metrics/<name>/batches")
+def list_batches(name: str) -> Response:
+    return reply(uc.list_batches(context(), name))
+
+
+@bp.get("/metrics/<name>/batches/<batch_id>")
+def get_batch(name: str, batch_id: str) -> Response:
+    return reply(uc.get_batch(context(), name, batch_id))
+
+
+@bp.delete("/metrics/<name>/batches/<batch_id>")
+def delete_batch(name: str, batch_id: str) -> Response:
+    uc.delete_batch(context(), name, batch_id)
+    return no_content()

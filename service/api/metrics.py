@@ -1,0 +1,37 @@
+"""``/v1/metrics``: create or update, list, read, delete a metric."""
+
+from __future__ import annotations
+
+from flask import Blueprint, Response
+
+from service.usecases import metrics as uc
+
+from .deps import context, no_content, reply
+from .schemas import MetricSchema, json_body
+
+bp = Blueprint("metrics", __name__)
+
+
+@bp.put("/metrics/<name>")
+def put_metric(name: str) -> Response:
+    data = json_body(MetricSchema())
+    metric, created = uc.put_metric(context(), name, data["features"], data["description"])
+    if created:
+        return reply(metric, 201, location=f"/v1/metrics/{name}")
+    return reply(metric)
+
+
+@bp.get("/metrics")
+def list_metrics() -> Response:
+    return reply(uc.list_metrics(context()))
+
+
+@bp.get("/metrics/<name>")
+def get_metric(name: str) -> Response:
+    return reply(uc.get_metric(context(), name))
+
+
+@bp.delete("/metrics/<name>")
+def delete_metric(name: str) -> Response:
+    uc.delete_metric(context(), name)
+    return no_content()

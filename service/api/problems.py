@@ -1,0 +1,154 @@
+"""RFC 9457 problem details: the one error shape of the whole HTTP API.
+
+Every error leaves the app as ``application/problem+json`` — service errors, marshmallow
+validation errors, Werkzeug HTTP errors (404, 405, 413 …) and unexpected exceptions
+(a 500 whose body never carries a stack trace).
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+from typing import Any
+
+from flask import Flask, Response, json, request
+from marshmallow import ValidationError
+from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import TimeoutError as RedisTimeoutError
+from werkzeug.exceptions import HTTPException, MethodNotAllowed
+
+from service.errors import PROBLEM_BASE, ServiceError
+
+PROBLEM_MIME = "application/problem+json"
+
+log = logging.getLogger(__name__)
+
+
+def problem_response(
+    status: int,
+    title: str,
+    detail: str,
+    slug: str | None = None,
+    errors: list[dict[str, str]] | None = None,
+    headers: Mapping[str, str] | None = None,
+    extra: Mapping[str, Any] | None = None,
+) -> Response:
+    """Build a problem+json response; ``slug`` None gives ``about:blank``.
+
+    ``extra`` adds extension members (RFC 9457 §3.2), e.g. the checks behind a 503.
+    """
+    body: dict[str, Any] = {
+        "type": PROBLEM_BASE + slug if slug else "about:blank",
+        "title": title,
+        "status": status,
+        "detail": detail,
+        "instance": request.path,
+    }
+    if errors:
+        body["errors"] = errors
+    body.update(extra or {})
+    resp = Response(json.dumps(body), status=status, mimetype=PROBLEM_MIME)
+    for key, value in (headers or {}).items():
+        resp.headers[key] = value
+    return resp
+
+
+def flatten_messages(messages: Any, prefix: str = "") -> list[dict[str, str]]:
+    """Turn marshmallow's nested messages into ``[{"field", "message"}]``.
+
+    ``{"features": {0: ["Not a valid string."]}}`` → ``features[0]``; schema-level
+    messages (``_schema``) are reported on the body itself, field ``""`` → ``"body"``.
+    """
+    out: list[dict[str, str]] = []
+    if isinstance(messages, Mapping):
+        for key, value in messages.items():
+            if key == "_schema":
+                name = prefix or "body"
+            elif isinstance(key, int):
+                name = f"{prefix}[{key}]"
+            else:
+                name = f"{prefix}.{key}" if prefix else str(key)
+            out.extend(flatten_messages(value, name))
+    elif isinstance(messages, (list, tuple)):
+        for item in messages:
+            if isinstance(item, (Mapping, list, tuple)):
+                out.extend(flatten_messages(item, prefix))
+            else:
+                out.append({"field": prefix or "body", "message": str(item)})
+    else:
+        out.append({"field": prefix or "body", "message": str(messages)})
+    return out
+
+
+_STATUS_HEADERS = {
+    401: {"WWW-Authenticate": 'Bearer realm="likewise"'},
+    503: {"Retry-After": "5"},
+}
+
+
+def _service_error(exc: ServiceError) -> Response:
+    headers = _STATUS_HEADERS.get(exc.status)
+    return problem_response(
+        exc.status, exc.title, exc.detail, exc.slug, exc.errors or None, headers
+    )
+
+
+def _validation_error(exc: ValidationError) -> Response:
+    errors = flatten_messages(exc.messages)
+    fields_named = ", ".join(sorted({e["field"] for e in errors}))
+    return problem_response(
+        422, "Invalid input", f"The request is invalid: {fields_named}.", "invalid-input", errors
+    )
+
+
+_HTTP_SLUGS = {
+    400: "malformed-request",
+    404: "not-found",
+    405: "method-not-allowed",
+    413: "payload-too-large",
+    415: "malformed-request",
+}
+
+
+def _http_error(exc: HTTPException) -> Response:
+    status = exc.code or 500
+    headers: dict[str, str] = {}
+    if isinstance(exc, MethodNotAllowed) and exc.valid_methods:
+        headers["Allow"] = ", ".join(sorted(exc.valid_methods))
+    detail = exc.description or exc.name
+    if status == 404:
+        detail = f"No resource at {request.path}."
+    elif status == 405:
+        detail = f"{request.method} is not allowed on {request.path}."
+    elif status == 413:
+        limit = request.max_content_length
+        detail = f"The request body is larger than the limit of {limit} bytes."
+    return problem_response(status, exc.name, detail, _HTTP_SLUGS.get(status), headers=headers)
+
+
+def _redis_down(exc: Exception) -> Response:
+    log.warning("Redis unavailable: %s", exc)
+    return problem_response(
+        503, "Service unavailable", "The data store does not answer; try again later.",
+        "unavailable", headers=_STATUS_HEADERS[503],
+    )
+
+
+def _unexpected(exc: Exception) -> Response:
+    if isinstance(exc, HTTPException):
+        return _http_error(exc)
+    log.exception("unhandled error on %s %s", request.method, request.path)
+    return problem_response(
+        500, "Internal server error", "The server failed to handle the request; it was logged.",
+        "internal-error",
+    )
+
+
+def register_problem_handlers(app: Flask) -> None:
+    """Route every kind of failure through :func:`problem_response`."""
+    app.register_error_handler(ServiceError, _service_error)
+    app.register_error_handler(ValidationError, _validation_error)
+    app.register_error_handler(HTTPException, _http_error)
+    app.register_error_handler(RedisConnectionError, _redis_down)
+    app.register_error_handler(RedisTimeoutError, _redis_down)
+    app.register_error_handler(Exception, _unexpected)

@@ -1,0 +1,168 @@
+"""marshmallow schemas for request envelopes, and the one helper that reads a JSON body.
+
+Only the envelope is checked here (which keys, their JSON types, enums, ranges). The
+numeric matrix inside a batch or grouping request is validated as a whole by numpy in
+``service.tables`` — never record by record.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from flask import request
+from marshmallow import Schema, ValidationError, fields, validate, validates_schema
+from werkzeug.exceptions import BadRequest
+
+from service.errors import MalformedRequest
+
+FIT_METHODS = ("auto", "closed_form", "discriminant", "diagonal", "euclidean")
+ACTIVATE_POLICIES = ("if_better", "always", "never")
+FIT_STATUSES = ("queued", "running", "succeeded", "failed")
+
+
+class JSONArray(fields.Field):
+    """A JSON array passed through untouched (its items are checked in bulk elsewhere)."""
+
+    default_error_messages = {"invalid": "Not a valid list."}
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> list:
+        if not isinstance(value, list):
+            raise self.make_error("invalid")
+        return value
+
+
+class KField(fields.Field):
+    """``k``: a whole number ≥ 1, or ``"auto"`` (null means the same as "auto")."""
+
+    default_error_messages = {"invalid": 'Must be a whole number of at least 1, or "auto".'}
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if value == "auto":
+            return "auto"
+        if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+            raise self.make_error("invalid")
+        return value
+
+
+class PositiveNumber(fields.Field):
+    """A finite JSON number > 0 (no strings, no booleans)."""
+
+    default_error_messages = {"invalid": "Must be a finite number greater than 0."}
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise self.make_error("invalid")
+        if not math.isfinite(value) or value <= 0:
+            raise self.make_error("invalid")
+        return float(value)
+
+
+class _Strict(Schema):
+    """Unknown keys are an error (marshmallow's default, stated here on purpose)."""
+
+    class Meta:
+        unknown = "raise"
+
+
+class MetricSchema(_Strict):
+    features = fields.List(
+        fields.String(validate=validate.Length(min=1, max=128)),
+        required=True,
+        validate=validate.Length(min=1),
+    )
+    description = fields.String(load_default="", validate=validate.Length(max=2000))
+
+
+class _TableSchema(_Strict):
+    """Either ``records`` (objects keyed by feature) or ``columns`` + ``rows``."""
+
+    records = JSONArray(validate=validate.Length(min=1))
+    columns = fields.List(fields.String(), validate=validate.Length(min=1))
+    rows = JSONArray(validate=validate.Length(min=1))
+
+    @validates_schema
+    def _one_form(self, data: dict[str, Any], **kwargs: Any) -> None:
+        has_records = "records" in data
+        has_columns, has_rows = "columns" in data, "rows" in data
+        if has_records and (has_columns or has_rows):
+            raise ValidationError(
+                "Give either records or columns with rows, not both.", "records"
+            )
+        if not has_records and not (has_columns or has_rows):
+            raise ValidationError("Give either records or columns with rows.", "records")
+        if has_columns != has_rows:
+            missing = "rows" if has_columns else "columns"
+            raise ValidationError("columns and rows go together.", missing)
+
+
+def table_of(data: dict[str, Any]) -> dict[str, Any]:
+    """The table part of a loaded batch or grouping body, as the use cases take it."""
+    if "records" in data:
+        return {"records": data["records"]}
+    return {"columns": data["columns"], "rows": data["rows"]}
+
+
+class BatchSchema(_TableSchema):
+    groups = JSONArray(required=True, validate=validate.Length(min=1))
+
+
+class GroupingSchema(_TableSchema):
+    k = KField(load_default=None, allow_none=True)
+    version = fields.Integer(strict=True, validate=validate.Range(min=1), allow_none=True)
+
+
+class FitSchema(_Strict):
+    """Fit parameters; the ranges are those of ``service.usecases.fits.normalize_params``."""
+
+    method = fields.String(load_default="auto", validate=validate.OneOf(FIT_METHODS))
+    activate = fields.String(load_default="if_better", validate=validate.OneOf(ACTIVATE_POLICIES))
+    alphas = fields.List(
+        PositiveNumber(),
+        validate=validate.Length(min=1, max=32),
+        allow_none=True,
+    )
+    n_folds = fields.Integer(strict=True, validate=validate.Range(min=2, max=20))
+    max_rank = fields.Integer(strict=True, validate=validate.Range(min=1, max=10_000),
+                              allow_none=True)
+    k_max = fields.Integer(strict=True, validate=validate.Range(min=2, max=50))
+    seed = fields.Integer(strict=True, validate=validate.Range(min=0, max=2**32 - 1),
+                          allow_none=True)
+
+
+class ActivationSchema(_Strict):
+    version = fields.Integer(strict=True, required=True, validate=validate.Range(min=1))
+    reason = fields.String(load_default="", validate=validate.Length(max=1000))
+
+
+class FitQuerySchema(_Strict):
+    metric = fields.String(validate=validate.Length(min=1, max=64))
+    status = fields.String(validate=validate.OneOf(FIT_STATUSES))
+
+
+def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
+    """Read the request's JSON object and load it with ``schema``.
+
+    Wrong content type or malformed JSON → 400 (MalformedRequest); a body that is
+    valid JSON but not an object → 400; envelope errors → marshmallow's ValidationError
+    (422 via the problem handlers). ``empty_ok`` lets a body-less request mean ``{}``.
+    """
+    if empty_ok and not request.get_data(cache=True):
+        return schema.load({})
+    if not request.is_json:
+        raise MalformedRequest(
+            f"Expected a JSON body (Content-Type: application/json), got "
+            f"{request.mimetype or 'no content type'}."
+        )
+    try:
+        data = request.get_json()
+    except BadRequest as exc:
+        raise MalformedRequest("The body is not valid JSON.") from exc
+    if not isinstance(data, dict):
+        raise MalformedRequest("The body must be a JSON object.")
+    return schema.load(data)
+
+
+def query_args(schema: Schema) -> dict[str, Any]:
+    """Load the query string with ``schema`` (single values only)."""
+    return schema.load(request.args.to_dict(flat=True))

@@ -1,0 +1,34 @@
+"""Versions of a metric, which one is active, and the history of activations."""
+
+from __future__ import annotations
+
+from flask import Blueprint, Response
+
+from service.usecases import versions as uc
+
+from .auth import principal
+from .deps import context, reply
+from .schemas import ActivationSchema, json_body
+
+bp = Blueprint("versions", __name__)
+
+
+@bp.get("/metrics/<name>/versions")
+def list_versions(name: str) -> Response:
+    return reply(uc.list_versions(context(), name))
+
+
+@bp.get("/metrics/<name>/versions/<int:n>")
+def get_version(name: str, n: int) -> Response:
+    return reply(uc.get_version(context(), name, n))
+
+
+@bp.put("/metrics/<name>/active")
+def activate(name: str) -> Response:
+    data = json_body(ActivationSchema())
+    return reply(uc.activate(context(), name, data["version"], data["reason"], principal()))
+
+
+@bp.get("/metrics/<name>/history")
+def history(name: str) -> Response:
+    return reply(uc.history(context(), name))

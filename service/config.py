@@ -1,0 +1,126 @@
+"""Settings of a likewise deployment, read from ``LIKEWISE_*`` environment variables.
+
+No secret has a default: without ``LIKEWISE_ADMIN_TOKEN`` and ``LIKEWISE_TOKENS``
+no Bearer token is accepted. Nothing here touches the network or the disk.
+
+=========================== ============================== ===========================
+variable                    field                          default
+=========================== ============================== ===========================
+LIKEWISE_REDIS_URL          redis_url                      None (launcher decides)
+LIKEWISE_KEY_PREFIX         key_prefix                     ``likewise``
+LIKEWISE_DATA_DIR           data_dir                       ``./var``
+LIKEWISE_ADMIN_TOKEN        admin_token                    None
+LIKEWISE_TOKENS             tokens (``name=token,…``)      {}
+LIKEWISE_QUEUE              queue_name                     ``<key_prefix>-fits``
+LIKEWISE_FIT_TIMEOUT        fit_timeout (seconds)          1800
+LIKEWISE_FIT_RETRIES        fit_retries                    2
+LIKEWISE_MAX_BATCH_RECORDS  max_batch_records              100000
+LIKEWISE_MAX_BATCH_FEATURES max_batch_features             1000
+LIKEWISE_MAX_BATCH_BYTES    max_batch_bytes (raw float64)  64 MiB
+LIKEWISE_MAX_REQUEST_BYTES  max_request_bytes              64 MiB
+LIKEWISE_HOST               host                           ``127.0.0.1``
+LIKEWISE_PORT               port                           8000
+LIKEWISE_WORKERS            workers                        1
+LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
+=========================== ============================== ===========================
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+ENV_PREFIX = "LIKEWISE_"
+ADMIN_NAME = "admin"
+MIB = 1024 * 1024
+
+
+def _parse_tokens(raw: str) -> dict[str, str]:
+    """``"name=token,name2=token2"`` → ``{"name": "token", …}``; blanks ignored."""
+    tokens: dict[str, str] = {}
+    for part in raw.split(","):
+        part = part.strip()
+        if not part:
+            continue
+        name, sep, token = part.partition("=")
+        name, token = name.strip(), token.strip()
+        if not sep or not name or not token:
+            raise ValueError(f"{ENV_PREFIX}TOKENS entry {part!r} is not name=token")
+        if name == ADMIN_NAME:
+            raise ValueError(f"{ENV_PREFIX}TOKENS may not define the reserved name 'admin'")
+        tokens[name] = token
+    return tokens
+
+
+@dataclass(frozen=True)
+class Settings:
+    """One deployment's configuration (immutable; build with :meth:`from_env`)."""
+
+    redis_url: str | None = None
+    key_prefix: str = "likewise"
+    data_dir: str = "./var"
+    admin_token: str | None = field(default=None, repr=False)
+    tokens: dict[str, str] = field(default_factory=dict, repr=False)
+    queue_name: str = ""  # empty → "<key_prefix>-fits"
+    fit_timeout: int = 1800
+    fit_retries: int = 2
+    max_batch_records: int = 100_000
+    max_batch_features: int = 1000
+    max_batch_bytes: int = 64 * MIB
+    max_request_bytes: int = 64 * MIB
+    host: str = "127.0.0.1"
+    port: int = 8000
+    workers: int = 1
+    worker_seen_seconds: int = 60
+
+    def __post_init__(self) -> None:
+        if not self.key_prefix or any(c in self.key_prefix for c in " \t\r\n"):
+            raise ValueError("key_prefix must be a non-empty string without whitespace")
+        if not self.queue_name:
+            object.__setattr__(self, "queue_name", f"{self.key_prefix}-fits")
+        for name in ("fit_timeout", "max_batch_records", "max_batch_features",
+                     "max_batch_bytes", "max_request_bytes", "workers"):
+            if int(getattr(self, name)) < 1:
+                raise ValueError(f"{name} must be at least 1")
+        if self.fit_retries < 0:
+            raise ValueError("fit_retries must be ≥ 0")
+
+    @classmethod
+    def from_env(cls, environ: Mapping[str, str] | None = None, **overrides: Any) -> Settings:
+        """Read ``LIKEWISE_*`` from ``environ`` (default ``os.environ``); ``overrides``
+        (field names) win over the environment."""
+        env = os.environ if environ is None else environ
+        values: dict[str, Any] = {}
+        for f in dataclasses.fields(cls):
+            key = ENV_PREFIX + ("QUEUE" if f.name == "queue_name" else f.name.upper())
+            raw = env.get(key)
+            if raw is None or raw == "":
+                continue
+            if f.name == "tokens":
+                values[f.name] = _parse_tokens(raw)
+            elif f.type in ("int", int):
+                try:
+                    values[f.name] = int(raw)
+                except ValueError as exc:
+                    raise ValueError(f"{key} must be a whole number, got {raw!r}") from exc
+            else:
+                values[f.name] = raw
+        values.update(overrides)
+        return cls(**values)
+
+    def principals(self) -> dict[str, str]:
+        """Bearer token → principal name (``"admin"`` for the admin token)."""
+        out = {token: name for name, token in self.tokens.items()}
+        if self.admin_token:
+            out[self.admin_token] = ADMIN_NAME
+        return out
+
+    def replace(self, **changes: Any) -> Settings:
+        """A copy with some fields changed (``queue_name`` follows a new prefix unless given)."""
+        if "key_prefix" in changes and "queue_name" not in changes:
+            if self.queue_name == f"{self.key_prefix}-fits":
+                changes["queue_name"] = ""
+        return dataclasses.replace(self, **changes)

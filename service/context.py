@@ -1,0 +1,89 @@
+"""The dependencies of one process: settings, Redis, storage, queue, version cache.
+
+Entry points (the app factory, the worker, the launcher) call :meth:`Context.build`.
+Nothing connects at import time; ``redis.Redis.from_url`` connects on first use.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    import redis
+    import rq
+
+    from service.config import Settings
+    from service.storage import Storage
+
+
+class VersionCache:
+    """A small thread-safe LRU of loaded versions keyed ``(metric, version, token)``.
+
+    ``token`` distinguishes a metric deleted and re-created under the same name.
+    """
+
+    def __init__(self, maxsize: int = 64) -> None:
+        self.maxsize = maxsize
+        self._data: OrderedDict[tuple[Any, ...], Any] = OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, key: tuple[Any, ...]) -> Any | None:
+        with self._lock:
+            value = self._data.get(key)
+            if value is not None:
+                self._data.move_to_end(key)
+            return value
+
+    def put(self, key: tuple[Any, ...], value: Any) -> None:
+        with self._lock:
+            self._data[key] = value
+            self._data.move_to_end(key)
+            while len(self._data) > self.maxsize:
+                self._data.popitem(last=False)
+
+    def drop_metric(self, name: str) -> None:
+        with self._lock:
+            for key in [k for k in self._data if k and k[0] == name]:
+                del self._data[key]
+
+    def clear(self) -> None:
+        with self._lock:
+            self._data.clear()
+
+    def __len__(self) -> int:
+        return len(self._data)
+
+
+@dataclass
+class Context:
+    settings: Settings
+    redis: redis.Redis
+    storage: Storage
+    queue: rq.Queue
+    cache: VersionCache
+
+    @classmethod
+    def build(cls, settings: Settings, connection: redis.Redis | None = None) -> Context:
+        """Wire the dependencies; requires ``settings.redis_url`` unless ``connection``."""
+        import redis as redis_lib
+        import rq
+
+        from service.storage import Storage
+
+        if connection is None:
+            if not settings.redis_url:
+                raise ValueError("LIKEWISE_REDIS_URL is not set (no Redis to connect to)")
+            connection = redis_lib.Redis.from_url(
+                settings.redis_url, decode_responses=False, health_check_interval=30
+            )
+        storage = Storage(connection, settings.key_prefix)
+        queue = rq.Queue(
+            settings.queue_name, connection=connection, default_timeout=settings.fit_timeout
+        )
+        return cls(settings, connection, storage, queue, VersionCache())
+
+    def close(self) -> None:
+        self.redis.close()

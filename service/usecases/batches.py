@@ -1,0 +1,97 @@
+"""Labelled batches: validated, reduced to statistics at ingest, kept compressed."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import secrets
+from collections import Counter
+from typing import TYPE_CHECKING, Any
+
+from service.core import BatchStats, CoreError
+from service.errors import NotFound, from_core
+from service.storage import pack_json, pack_matrix, utcnow
+from service.tables import check_groups, to_matrix
+
+from .metrics import require_metric
+
+if TYPE_CHECKING:
+    import numpy as np
+
+    from service.context import Context
+
+BATCH_ID_LEN = 16
+
+
+def content_hash(X: np.ndarray, labels: list[Any]) -> str:
+    """sha256 over the float64 little-endian matrix (feature order) and the labels' JSON."""
+    h = hashlib.sha256()
+    h.update(X.astype("<f8", copy=False).tobytes(order="C"))
+    h.update(json.dumps(labels, separators=(",", ":")).encode())
+    return h.hexdigest()
+
+
+def _check_batch_id(batch_id: Any) -> str:
+    if not isinstance(batch_id, str) or len(batch_id) != BATCH_ID_LEN or not all(
+        c in "0123456789abcdef" for c in batch_id
+    ):
+        raise NotFound(f"batch {batch_id!r} does not exist")
+    return batch_id
+
+
+def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any]) -> dict[str, Any]:
+    """Validate, reduce to statistics and store one labelled batch (one transaction)."""
+    metric = require_metric(ctx, name)
+    s = ctx.settings
+    X = to_matrix(metric["features"], table, s.max_batch_records, s.max_batch_bytes)
+    labels = check_groups(groups, X.shape[0])
+    try:
+        stats = BatchStats.from_batch(X, labels)
+    except CoreError as exc:
+        raise from_core(exc) from exc
+    batch_id = secrets.token_hex(BATCH_ID_LEN // 2)
+    sizes = Counter(labels)
+    meta = {
+        "batch_id": batch_id,
+        "records": int(X.shape[0]),
+        "groups": len(sizes),
+        "created_at": utcnow(),
+        "sha256": content_hash(X, labels),
+        "group_sizes": {str(k): int(v) for k, v in sizes.items()},
+    }
+    ctx.storage.add_batch(name, metric["uid"], batch_id, meta, stats.to_bytes(),
+                          pack_matrix(X), pack_json(labels))
+    return {k: meta[k] for k in ("batch_id", "records", "groups", "created_at", "sha256")}
+
+
+def _summary(meta: dict[str, Any]) -> dict[str, Any]:
+    return {k: meta[k] for k in ("batch_id", "records", "groups", "created_at", "sha256")}
+
+
+def list_batches(ctx: Context, name: str) -> dict[str, Any]:
+    require_metric(ctx, name)
+    return {"batches": [_summary(m) for m in ctx.storage.list_batches(name)]}
+
+
+def get_batch(ctx: Context, name: str, batch_id: str) -> dict[str, Any]:
+    require_metric(ctx, name)
+    meta = ctx.storage.get_batch_meta(name, _check_batch_id(batch_id))
+    if meta is None:
+        raise NotFound(f"batch {batch_id!r} does not exist in metric {name!r}")
+    return {**_summary(meta), "group_sizes": meta["group_sizes"]}
+
+
+def delete_batch(ctx: Context, name: str, batch_id: str) -> None:
+    """Remove a batch: its statistics no longer enter future fits."""
+    require_metric(ctx, name)
+    if not ctx.storage.delete_batch(name, _check_batch_id(batch_id)):
+        raise NotFound(f"batch {batch_id!r} does not exist in metric {name!r}")
+
+
+def load_training_data(ctx: Context, name: str) -> list[dict[str, Any]]:
+    """Batches for a fit: ``meta``, ``X``, ``labels`` and ``stats`` (BatchStats)."""
+    rows = ctx.storage.load_batches(name)
+    for row in rows:
+        row["stats"] = BatchStats.from_bytes(row["stats"])
+    return rows
+

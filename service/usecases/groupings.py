@@ -1,0 +1,73 @@
+"""Grouping new records with a stored version (the active one by default).
+
+Loaded versions are cached in-process keyed by (metric, incarnation uid, version);
+versions are immutable, and the active version number is read from Redis on every
+call, so the cache follows activations without invalidation.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+from service.core import CoreError, FittedMetric, group_records
+from service.errors import Conflict, InvalidInput, NotFound, from_core
+from service.tables import to_matrix
+
+from .metrics import require_metric
+from .versions import check_version_number
+
+if TYPE_CHECKING:
+    from service.context import Context
+
+
+def _check_k(k: Any) -> int | None:
+    if k is None or k == "auto":
+        return None
+    if isinstance(k, bool) or not isinstance(k, int) or k < 1:
+        raise InvalidInput.field("k", 'a whole number ≥ 1 or "auto"')
+    return k
+
+
+def load_version_metric(ctx: Context, metric: dict[str, Any], n: int) -> FittedMetric:
+    key = (metric["name"], metric["uid"], n)
+    fitted = ctx.cache.get(key)
+    if fitted is None:
+        doc = ctx.storage.get_version(metric["name"], n, ("metric",))
+        if doc is None:
+            raise NotFound(f"metric {metric['name']!r} has no version {n}")
+        fitted = FittedMetric.from_dict(doc["metric"])
+        ctx.cache.put(key, fitted)
+    return fitted
+
+
+def group(
+    ctx: Context,
+    name: str,
+    table: dict[str, Any],
+    k: int | str | None = None,
+    version: int | None = None,
+) -> dict[str, Any]:
+    metric = require_metric(ctx, name)
+    k_value = _check_k(k)
+    if version is None:
+        version = ctx.storage.active_version(name)
+        if version is None:
+            raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
+    else:
+        check_version_number(version)
+    fitted = load_version_metric(ctx, metric, version)
+    s = ctx.settings
+    X = to_matrix(metric["features"], table, s.max_batch_records, s.max_batch_bytes)
+    try:
+        g = group_records(fitted, X, k=k_value)
+    except CoreError as exc:
+        raise from_core(exc, default_field="k") from exc
+    return {
+        "version": version,
+        "k": int(g.k),
+        "k_chosen": bool(g.k_chosen),
+        "labels": [int(v) for v in g.labels],
+        "distances": [float(v) for v in g.distances],
+        "margins": [float(v) for v in g.margins],
+        "sizes": [int(v) for v in g.sizes],
+    }

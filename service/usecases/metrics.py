@@ -1,0 +1,101 @@
+"""Metrics: a name and an ordered list of features."""
+
+from __future__ import annotations
+
+import re
+import secrets
+from typing import TYPE_CHECKING, Any
+
+from service.errors import InvalidInput, NotFound
+
+if TYPE_CHECKING:
+    from service.context import Context
+
+NAME_RE = re.compile(r"[a-z0-9_-]{1,64}")
+FEATURE_RE = re.compile(r"[^\x00-\x1f]{1,128}")
+MAX_DESCRIPTION = 2000
+
+
+def check_name(name: Any) -> str:
+    """A metric name: lowercase letters, digits, ``-`` and ``_``, at most 64 characters."""
+    if not isinstance(name, str) or not NAME_RE.fullmatch(name):
+        raise InvalidInput.field(
+            "name", "use 1 to 64 lowercase letters, digits, '-' or '_'",
+            f"invalid metric name {name!r}")
+    return name
+
+
+def require_metric(ctx: Context, name: str) -> dict[str, Any]:
+    """The stored metric record (with ``uid``) or 404."""
+    check_name(name)
+    metric = ctx.storage.get_metric(name)
+    if metric is None:
+        raise NotFound(f"metric {name!r} does not exist")
+    return metric
+
+
+def _check_features(ctx: Context, features: Any) -> list[str]:
+    if not isinstance(features, list) or not features:
+        raise InvalidInput.field("features", "must be a non-empty list of names")
+    limit = ctx.settings.max_batch_features
+    if len(features) > limit:
+        raise InvalidInput.field("features", f"at most {limit} features")
+    for i, f in enumerate(features):
+        if not isinstance(f, str) or not FEATURE_RE.fullmatch(f) or f != f.strip():
+            raise InvalidInput.field(
+                f"features[{i}]", "names are 1-128 printable characters, no surrounding spaces")
+    if len(set(features)) != len(features):
+        raise InvalidInput.field("features", "names must be unique")
+    return list(features)
+
+
+def _public(ctx: Context, metric: dict[str, Any]) -> dict[str, Any]:
+    counts = ctx.storage.counts(metric["name"])
+    return {
+        "name": metric["name"],
+        "features": metric["features"],
+        "description": metric["description"],
+        "created_at": metric["created_at"],
+        "updated_at": metric["updated_at"],
+        "active_version": counts["active_version"],
+        "batches": counts["batches"],
+        "records": counts["records"],
+        "versions": counts["versions"],
+    }
+
+
+def put_metric(
+    ctx: Context, name: str, features: list[str], description: str = ""
+) -> tuple[dict[str, Any], bool]:
+    """Create a metric or update its description/features; True when created.
+
+    409 if the features change while the metric has batches.
+    """
+    check_name(name)
+    features = _check_features(ctx, features)
+    if description is None:
+        description = ""
+    if not isinstance(description, str) or len(description) > MAX_DESCRIPTION:
+        raise InvalidInput.field("description", f"a string of at most {MAX_DESCRIPTION} characters")
+    record, outcome = ctx.storage.put_metric(name, features, description, secrets.token_hex(8))
+    return _public(ctx, record), outcome == "created"
+
+
+def list_metrics(ctx: Context) -> dict[str, Any]:
+    out = []
+    for name in ctx.storage.metric_names():
+        metric = ctx.storage.get_metric(name)
+        if metric is not None:
+            out.append(_public(ctx, metric))
+    return {"metrics": out}
+
+
+def get_metric(ctx: Context, name: str) -> dict[str, Any]:
+    return _public(ctx, require_metric(ctx, name))
+
+
+def delete_metric(ctx: Context, name: str) -> None:
+    check_name(name)
+    if not ctx.storage.delete_metric(name):
+        raise NotFound(f"metric {name!r} does not exist")
+    ctx.cache.drop_metric(name)

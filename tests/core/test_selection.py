@@ -1,0 +1,160 @@
+"""Cross-validation over batches and the choice of learner and α (invented data).
+
+Scores: adjusted Rand index (Hubert & Arabie 1985), NMI (Vinh, Epps & Bailey 2010),
+Rand index (Rand 1971), all via scikit-learn.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from service.core import CoreError, MetricSelector, NotEnoughDataError, select_metric
+
+ALPHAS = (1e-3, 1e-1, 10.0)  # a short grid keeps the tests quick
+SCORE_KEYS = {"ari", "baseline_ari", "nmi", "baseline_nmi", "rand", "baseline_rand"}
+
+
+def signal_batches(
+    n_batches: int, seed: int, signal: float = 3.0, d: int = 8, size=(15, 40)
+) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Groups differ along two directions; six noisy features hide them from Euclidean."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n_batches):
+        k = int(rng.integers(2, 5))
+        sizes = rng.integers(size[0], size[1] + 1, size=k)
+        y = np.repeat(np.arange(k), sizes)
+        centres = rng.normal(size=(k, 2)) * signal
+        X = rng.normal(size=(len(y), d)) * np.r_[0.5, 0.5, np.full(d - 2, 2.0)]
+        X[:, :2] += centres[y]
+        X += rng.normal(size=d) * 5  # batch offset: labels and positions are local
+        order = rng.permutation(len(y))
+        out.append((X[order], y[order]))
+    return out
+
+
+def noise_batches(n_batches: int, seed: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Labels unrelated to the records: nothing to learn."""
+    rng = np.random.default_rng(seed)
+    return [
+        (rng.normal(size=(40, 6)), rng.permutation(np.arange(40) % 3)) for _ in range(n_batches)
+    ]
+
+
+@pytest.fixture(scope="module")
+def fitted() -> MetricSelector:
+    return MetricSelector(alphas=ALPHAS, random_state=0).fit(signal_batches(8, seed=1))
+
+
+def test_auto_picks_a_learned_metric_when_there_is_signal(fitted: MetricSelector) -> None:
+    report = fitted.report_
+    assert report["method"] in ("closed_form", "discriminant", "diagonal")
+    assert report["beats_baseline"] is True
+    assert report["score"]["ari"] > report["score"]["baseline_ari"] + 0.2
+    assert "beat the Euclidean baseline" in report["summary"]
+    assert fitted.metric_.method == report["method"]
+    assert fitted.metric_.alpha == report["alpha"]
+    assert fitted.metric_.rank == report["rank"]
+
+
+def test_report_fields_are_complete_and_json_safe(fitted: MetricSelector) -> None:
+    report = fitted.report_
+    json.dumps(report, allow_nan=False)
+    assert set(report["score"]) == SCORE_KEYS
+    for key in ("method", "alpha", "rank", "beats_baseline", "summary", "folds", "candidates",
+                "k_accuracy", "n_batches", "n_records", "warnings", "selection"):
+        assert key in report
+    assert report["n_batches"] == 8
+    assert report["n_records"] == sum(len(y) for _, y in signal_batches(8, seed=1))
+    # 8 batches, 5 folds, repeated 3 times (few batches): every batch held out 3 times
+    assert report["cv"] == "k-fold" and report["n_folds"] == 5 and report["n_repeats"] == 3
+    held = sorted(b for f in report["folds"] for b in f["held_out"])
+    assert held == sorted(list(range(8)) * 3)
+    n_cands = len(report["candidates"])
+    assert n_cands == 1 + 3 * len(ALPHAS)  # euclidean + three learners × each α
+    assert all(len(f["scores"]) == n_cands for f in report["folds"])
+    assert sum(c["won"] for c in report["candidates"]) == 1
+    won = next(c for c in report["candidates"] if c["won"])
+    assert (won["method"], won["alpha"]) == (report["method"], report["alpha"])
+    assert won["ari"] == pytest.approx(report["score"]["ari"])
+    assert report["selection"]["rule"] and report["selection"]["reason"]
+    # the k rule is calibrated and its held-out hit rate reported
+    assert fitted.metric_.k_rule is not None
+    assert 0.0 <= report["k_accuracy"] <= 1.0 and report["k_trials"] > 0
+
+
+def test_no_signal_is_said_plainly() -> None:
+    metric, report = select_metric(
+        noise_batches(6, seed=2), alphas=ALPHAS, random_state=0, estimate_k=False
+    )
+    assert report["beats_baseline"] is False
+    assert "No learned metric beat the Euclidean baseline" in report["summary"]
+
+
+def test_leave_one_batch_out_below_five_batches() -> None:
+    sel = MetricSelector(alphas=[0.01, 1.0], estimate_k=False).fit(signal_batches(3, seed=3))
+    report = sel.report_
+    assert report["cv"] == "leave-one-batch-out"
+    assert [f["held_out"] for f in report["folds"]] == [[0], [1], [2]]
+    assert all(f["train_batches"] == 2 for f in report["folds"])
+
+
+def test_evaluate_scores_a_fixed_configuration_on_the_same_folds(fitted) -> None:
+    same = fitted.evaluate(fitted.report_["method"], fitted.report_["alpha"])
+    assert same["score"] == pytest.approx(fitted.report_["score"])
+    other = fitted.evaluate("closed_form", 0.5)  # not on the grid: scored afresh
+    assert set(other["score"]) == SCORE_KEYS
+    assert other["score"]["baseline_ari"] == pytest.approx(fitted.report_["score"]["baseline_ari"])
+    assert len(other["per_batch_ari"]) == 8
+    base = fitted.evaluate("euclidean", 123.0)
+    assert base["alpha"] == 0.0 and base["score"]["ari"] == base["score"]["baseline_ari"]
+
+
+def test_requested_method_is_kept_and_progress_is_reported() -> None:
+    seen: list[tuple[str, float]] = []
+    sel = MetricSelector(
+        method="diagonal",
+        alphas=[0.1, 1.0],
+        progress=lambda s, f: seen.append((s, f)),
+        estimate_k=False,
+    ).fit(signal_batches(5, seed=4))
+    assert sel.report_["method"] == "diagonal"
+    assert {c["method"] for c in sel.report_["candidates"]} == {"euclidean", "diagonal"}
+    fractions = [f for _, f in seen]
+    assert fractions == sorted(fractions) and fractions[-1] == 1.0
+    assert {"cross-validation", "refit", "done"} <= {s for s, _ in seen}
+
+
+def test_selection_is_reproducible() -> None:
+    batches = signal_batches(5, seed=5)
+    a = MetricSelector(alphas=[0.01, 1.0], random_state=3, estimate_k=False).fit(batches)
+    b = MetricSelector(alphas=[0.01, 1.0], random_state=3, estimate_k=False).fit(batches)
+    assert a.metric_.k_rule == b.metric_.k_rule
+    assert json.dumps(a.report_) == json.dumps(b.report_)
+    np.testing.assert_array_equal(a.metric_.components, b.metric_.components)
+
+
+def test_held_out_records_are_capped() -> None:
+    sel = MetricSelector(alphas=[0.1], max_heldout_records=30, estimate_k=False)
+    sel.fit(signal_batches(4, seed=6, size=(40, 60)))
+    assert sel.report_["max_heldout_records"] == 30
+    assert all(len(sel._cv.held_out_data(b)[0]) == 30 for b in range(4))
+
+
+def test_errors() -> None:
+    with pytest.raises(NotEnoughDataError) as info:
+        MetricSelector().fit(signal_batches(1, seed=7))
+    assert info.value.field == "batches"
+    a, b = signal_batches(2, seed=7, d=8)[0], signal_batches(1, seed=8, d=5)[0]
+    with pytest.raises(CoreError) as info:
+        MetricSelector().fit([a, b])
+    assert info.value.field == "features"
+    with pytest.raises(CoreError) as info:
+        MetricSelector(method="nearest").fit(signal_batches(2, seed=7))
+    assert info.value.field == "method"
+    with pytest.raises(CoreError) as info:
+        MetricSelector(alphas=[0.0]).fit(signal_batches(2, seed=7))
+    assert info.value.field == "alphas"

@@ -1,0 +1,81 @@
+"""Groupings: version choice, the in-process cache following activations, errors.
+
+Data: wine (Forina et al.) as bundled with scikit-learn.
+"""
+
+from __future__ import annotations
+
+import pytest
+from sklearn.metrics import adjusted_rand_score
+
+from service.context import Context
+from service.errors import Conflict, InvalidInput, NotFound
+from service.usecases import fits, groupings, metrics, versions
+
+from ._data import as_table, open_batches, setup_metric
+
+
+def _fit(ctx: Context, run_worker_burst, params: dict) -> int:
+    f, _ = fits.request_fit(ctx, "m", params, "admin")
+    run_worker_burst(ctx)
+    out = fits.get_fit(ctx, f["fit_id"])
+    assert out["status"] == "succeeded", out
+    return out["version"]
+
+
+def test_grouping_follows_activation(ctx: Context, run_worker_burst) -> None:
+    feats, _, _ = setup_metric(ctx, "m", dataset="wine", n=4)
+    _, (held_out,) = open_batches("wine", 1, seed=99)
+    X, y = held_out
+    table = as_table(feats, X)
+    assert _fit(ctx, run_worker_burst, {"activate": "never"}) == 1
+    with pytest.raises(Conflict):  # versions exist, none active
+        groupings.group(ctx, "m", table, k=3)
+    explicit = groupings.group(ctx, "m", table, k=int(len(set(y.tolist()))), version=1)
+    assert explicit["version"] == 1
+    versions.activate(ctx, "m", 1, "first look", "admin")
+    assert _fit(ctx, run_worker_burst, {"method": "euclidean", "activate": "always"}) == 2
+
+    other = Context.build(ctx.settings)  # a second process: its own cache
+    try:
+        k = len(set(y.tolist()))
+        g2 = groupings.group(ctx, "m", table, k=k)
+        assert g2["version"] == 2 and groupings.group(other, "m", table, k=k)["version"] == 2
+        versions.activate(other, "m", 1, "roll back", "etl")
+        g1 = groupings.group(ctx, "m", table, k=k)
+        assert g1["version"] == 1
+        assert g1["labels"] == explicit["labels"] and g1["sizes"] == explicit["sizes"]
+        uid = metrics.get_metric(ctx, "m") and ctx.storage.get_metric("m")["uid"]
+        assert ctx.cache.get(("m", uid, 1)) is not None and ctx.cache.get(("m", uid, 2))
+        assert len(g1["labels"]) == len(g1["distances"]) == len(g1["margins"]) == len(X)
+        assert sum(g1["sizes"]) == len(X) and g1["k"] == k and not g1["k_chosen"]
+        assert min(g1["margins"]) >= 0
+        # label-invariant agreement with the true classes (sanity bound, common practice)
+        assert adjusted_rand_score(y, g1["labels"]) > 0.5
+        auto = groupings.group(ctx, "m", table, k="auto")
+        assert auto["k_chosen"] and 1 <= auto["k"] <= 10
+        moves = [(h["from"], h["to"], h["who"]) for h in versions.history(ctx, "m")["history"]]
+        assert moves == [(None, 1, "admin"), (1, 2, "admin"), (2, 1, "etl")]
+    finally:
+        other.close()
+
+
+def test_grouping_errors(ctx: Context, run_worker_burst) -> None:
+    feats, data, _ = setup_metric(ctx, "m", n=2)
+    _fit(ctx, run_worker_burst, {"method": "diagonal"})
+    table = as_table(feats, data[0][0])
+    for bad in [0, -2, 2.5, True, "three"]:
+        with pytest.raises(InvalidInput) as err:
+            groupings.group(ctx, "m", table, k=bad)
+        assert err.value.errors[0]["field"] == "k"
+    with pytest.raises(InvalidInput) as err:
+        groupings.group(ctx, "m", {"columns": feats, "rows": [[1.0] * len(feats)]}, k=2)
+    assert err.value.errors[0]["field"] == "k"
+    with pytest.raises(InvalidInput) as err:
+        groupings.group(ctx, "m", {"columns": feats[:-1], "rows": [[1.0]]}, k=1)
+    assert err.value.errors[0]["field"] == "columns"
+    with pytest.raises(NotFound):
+        groupings.group(ctx, "m", table, k=2, version=9)
+    with pytest.raises(InvalidInput):
+        groupings.group(ctx, "m", table, k=2, version="1")
+    assert len(ctx.cache) == 1  # version 1, loaded once; failures cached nothing else

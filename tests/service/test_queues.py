@@ -1,0 +1,78 @@
+"""Queue overview and readiness with real RQ workers (burst and a live subprocess)."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+from rq import Worker
+
+from service.context import Context
+from service.usecases import fits, queues
+
+from ._data import setup_metric
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def test_overview_counts_queued_and_finished(ctx: Context, run_worker_burst) -> None:
+    empty = queues.queue_overview(ctx)
+    assert empty["queues"] == [{"name": ctx.settings.queue_name, "queued": 0, "running": 0,
+                                "failed": 0, "finished": 0, "oldest_queued_age_seconds": None}]
+    setup_metric(ctx, "m", n=2)
+    fits.request_fit(ctx, "m", {"method": "euclidean"}, "admin")
+    fits.request_fit(ctx, "m", {"method": "diagonal"}, "admin")
+    q = queues.queue_overview(ctx)["queues"][0]
+    assert q["queued"] == 2 and q["oldest_queued_age_seconds"] >= 0.0
+    run_worker_burst(ctx)
+    q = queues.queue_overview(ctx)["queues"][0]
+    assert (q["queued"], q["running"], q["finished"], q["oldest_queued_age_seconds"]) == (
+        0, 0, 2, None)
+
+
+def _wait(predicate, timeout: float = 30.0) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if predicate():
+            return True
+        time.sleep(0.1)
+    return False
+
+
+def test_readiness_needs_a_live_worker(ctx: Context) -> None:
+    ok, detail = queues.readiness(ctx)
+    assert not ok and detail == {"redis": True, "workers_seen": 0}
+    s = ctx.settings
+    name = f"{s.key_prefix}-live"
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "LIKEWISE_REDIS_URL": s.redis_url,
+           "LIKEWISE_KEY_PREFIX": s.key_prefix, "LIKEWISE_QUEUE": s.queue_name}
+    script = ("import sys\nfrom service.config import Settings\n"
+              "from workers.worker import run_worker\n"
+              "run_worker(Settings.from_env(), name=sys.argv[1])\n")
+    proc = subprocess.Popen([sys.executable, "-c", script, name], env=env, cwd=ROOT,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    try:
+        assert _wait(lambda: queues.readiness(ctx)[0]), proc.stderr
+        ok, detail = queues.readiness(ctx)
+        assert detail == {"redis": True, "workers_seen": 1}
+        [w] = queues.queue_overview(ctx)["workers"]
+        assert w["name"] == name and w["queues"] == [s.queue_name]
+        assert w["state"] in ("idle", "busy", "started") and w["last_heartbeat"].endswith("Z")
+        assert w["current_job"] is None
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        proc.wait(timeout=30)
+    assert _wait(lambda: not Worker.all(queue=ctx.queue))
+    assert queues.readiness(ctx) == (False, {"redis": True, "workers_seen": 0})
+
+
+def test_readiness_without_redis(ctx: Context) -> None:
+    dead = Context.build(ctx.settings.replace(redis_url="redis://127.0.0.1:1/0"))
+    try:
+        assert queues.readiness(dead) == (False, {"redis": False, "workers_seen": 0})
+    finally:
+        dead.close()

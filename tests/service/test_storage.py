@@ -1,0 +1,172 @@
+"""Storage: atomic visibility, prefix isolation, statistics retraction (real Redis)."""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose, assert_array_equal
+
+from service.context import Context
+from service.core import BatchStats
+from service.errors import Conflict, NotFound
+from service.storage import ActiveChanged, Storage
+from service.usecases import batches, metrics, versions
+from service.usecases.batches import load_training_data
+
+from ._data import as_table, open_batches, setup_metric
+
+
+def _doc(n: int) -> dict:
+    return {"summary": {"version": n, "method": "euclidean", "alpha": 0.0, "rank": 1},
+            "report": {"n": n}, "metric": {"m": n}, "batches": [], "parent": None}
+
+
+def _fit(storage: Storage, fit_id: str) -> None:
+    storage._write_fit(storage.redis, fit_id, {"fit_id": fit_id, "status": "running"})
+
+
+def test_version_commit_is_all_or_nothing(ctx: Context) -> None:
+    metrics.put_metric(ctx, "m", ["a", "b"])
+    st = ctx.storage
+    uid = st.get_metric("m")["uid"]
+    _fit(st, "f1")
+    n = st.next_version_number("m")
+    common = dict(activate=True, activation={"to": n}, fit_id="f1",
+                  fit_fields={"status": "succeeded", "version": n})
+    # a stale decision (active changed) and a re-created metric both leave no trace
+    with pytest.raises(ActiveChanged):
+        st.commit_version("m", uid, n, _doc(n), expected_active=7, **common)
+    with pytest.raises(NotFound):
+        st.commit_version("m", "other-uid", n, _doc(n), expected_active=None, **common)
+    assert st.version_numbers("m") == []
+    assert st.get_version("m", n) is None
+    assert st.active_version("m") is None and st.history("m") == []
+    assert st.get_fit("f1")["status"] == "running"
+
+    st.commit_version("m", uid, n, _doc(n), expected_active=None, **common)
+    assert st.version_numbers("m") == [n]
+    assert st.get_version("m", n)["report"] == {"n": n}
+    assert st.active_version("m") == n and st.history("m") == [{"to": n}]
+    assert st.get_fit("f1")["status"] == "succeeded"
+
+
+def test_reader_never_sees_a_partial_version(ctx: Context) -> None:
+    """A MULTI reader checks version hash, version index, active pointer and fit record
+    together while versions are committed: all four must agree at every read."""
+    metrics.put_metric(ctx, "m", ["a"])
+    st = ctx.storage
+    uid = st.get_metric("m")["uid"]
+    done = threading.Event()
+    seen: list[tuple] = []
+
+    def reader() -> None:
+        conn = st.redis
+        while not done.is_set():
+            for n in range(1, 31):
+                with conn.pipeline(transaction=True) as pipe:
+                    pipe.exists(st._m("m", "version", n))
+                    pipe.zscore(st._m("m", "versions"), str(n))
+                    pipe.hget(st.key("fit", f"f{n}"), "status")
+                    seen.append((n, *pipe.execute()))
+
+    thread = threading.Thread(target=reader)
+    thread.start()
+    try:
+        for i in range(1, 31):
+            _fit(st, f"f{i}")
+            n = st.next_version_number("m")
+            st.commit_version("m", uid, n, _doc(n), expected_active=st.active_version("m"),
+                              activate=True, activation={"to": n}, fit_id=f"f{i}",
+                              fit_fields={"status": "succeeded"})
+    finally:
+        done.set()
+        thread.join(timeout=30)
+    assert not thread.is_alive()
+    assert len(seen) > 30
+    for _n, exists, score, status in seen:
+        visible = bool(exists)
+        assert visible == (score is not None)
+        assert visible == (status == b'"succeeded"')
+
+
+def test_two_prefixes_share_a_redis_without_seeing_each_other(ctx: Context) -> None:
+    other = Context.build(ctx.settings.replace(key_prefix=ctx.settings.key_prefix + "-b"))
+    try:
+        assert other.settings.queue_name != ctx.settings.queue_name
+        setup_metric(ctx, "shared", n=2)
+        metrics.put_metric(other, "shared", ["only"], "second deployment")
+        assert metrics.get_metric(ctx, "shared")["batches"] == 2
+        assert metrics.get_metric(other, "shared")["features"] == ["only"]
+        assert metrics.get_metric(other, "shared")["batches"] == 0
+        metrics.delete_metric(other, "shared")
+        assert metrics.list_metrics(other) == {"metrics": []}
+        assert metrics.get_metric(ctx, "shared")["records"] > 0
+        assert [m["name"] for m in metrics.list_metrics(ctx)["metrics"]] == ["shared"]
+    finally:
+        for key in other.redis.scan_iter(match=other.settings.key_prefix + ":*"):
+            other.redis.delete(key)
+        other.close()
+
+
+def test_batches_round_trip_and_stats_are_stored_as_bytes(ctx: Context) -> None:
+    feats, data, ids = setup_metric(ctx, "m", n=3)
+    rows = load_training_data(ctx, "m")
+    assert [r["meta"]["batch_id"] for r in rows] == ids
+    for row, (X, y) in zip(rows, data, strict=True):
+        assert_array_equal(row["X"], X)
+        assert row["labels"] == [int(v) for v in y]
+        expected = BatchStats.from_batch(X, y)
+        assert row["stats"].allclose(expected, rtol=1e-12, atol=1e-12)
+    raw = ctx.redis.hget(ctx.storage._m("m", "batch", ids[0]), "stats")
+    assert raw == BatchStats.from_batch(*data[0]).to_bytes()
+
+
+def test_removing_a_batch_retracts_its_statistics(ctx: Context) -> None:
+    feats, data, ids = setup_metric(ctx, "m", n=3)
+    total = BatchStats.sum(BatchStats.from_batch(X, y) for X, y in data)
+    stored = BatchStats.sum(r["stats"] for r in load_training_data(ctx, "m"))
+    assert stored.allclose(total)
+    batches.delete_batch(ctx, "m", ids[1])
+    remaining = BatchStats.sum(r["stats"] for r in load_training_data(ctx, "m"))
+    assert remaining.allclose(total - BatchStats.from_batch(*data[1]))
+    assert remaining.n_batches == 2
+    m = metrics.get_metric(ctx, "m")
+    assert m["batches"] == 2
+    assert m["records"] == len(data[0][0]) + len(data[2][0])
+    with pytest.raises(NotFound):
+        batches.get_batch(ctx, "m", ids[1])
+
+
+def test_both_table_forms_give_the_same_batch(ctx: Context) -> None:
+    feats, data = open_batches("iris", 1)
+    X, y = data[0]
+    metrics.put_metric(ctx, "m", feats)
+    reversed_cols = {"columns": feats[::-1], "rows": X[:, ::-1].tolist()}
+    records = {"records": [dict(zip(feats, row, strict=True)) for row in X.tolist()]}
+    a = batches.add_batch(ctx, "m", as_table(feats, X), y.tolist())
+    b = batches.add_batch(ctx, "m", reversed_cols, y.tolist())
+    c = batches.add_batch(ctx, "m", records, y.tolist())
+    assert a["sha256"] == b["sha256"] == c["sha256"]
+    got = batches.get_batch(ctx, "m", a["batch_id"])
+    sizes = {str(k): int(v) for k, v in zip(*np.unique(y, return_counts=True), strict=True)}
+    assert got["group_sizes"] == sizes and got["records"] == len(X)
+    rows = load_training_data(ctx, "m")
+    assert_allclose(rows[1]["X"], X)
+
+
+def test_activation_of_a_missing_version_changes_nothing(ctx: Context) -> None:
+    metrics.put_metric(ctx, "m", ["a"])
+    with pytest.raises(NotFound):
+        versions.activate(ctx, "m", 3, "roll back", "admin")
+    assert ctx.storage.active_version("m") is None
+    assert versions.history(ctx, "m") == {"history": []}
+
+
+def test_feature_change_with_batches_is_a_conflict(ctx: Context) -> None:
+    feats, _, _ = setup_metric(ctx, "m", n=1)
+    with pytest.raises(Conflict) as err:
+        metrics.put_metric(ctx, "m", feats[:2])
+    assert err.value.status == 409
+    assert metrics.get_metric(ctx, "m")["features"] == feats

@@ -1,0 +1,92 @@
+"""RQ jobs: module-level functions taking ids only (no pickled arrays on the queue).
+
+``run_fit(fit_id)`` runs :func:`service.usecases.fits.execute_fit`. Progress (stage
+and fraction) goes to the job's meta and to the fit record. Invalid data fails the
+fit without an RQ retry; any other exception (including the job timeout) is recorded
+and re-raised, and RQ retries the job while it has retries left. If the worker dies
+(SIGKILL, lost machine) RQ finds the job abandoned once its heartbeat expires and
+retries or fails it; ``on_fit_failure`` then updates the fit record.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from redis import Redis
+    from rq.job import Job
+
+    from service.config import Settings
+    from service.context import Context
+
+# Set by workers.worker.run_worker in the worker process; else settings come from env.
+worker_settings: Settings | None = None
+
+
+def _context(job: Job, connection: Redis | None = None) -> Context:
+    from service.config import Settings
+    from service.context import Context
+
+    base = worker_settings or Settings.from_env()
+    prefix = job.meta.get("key_prefix", base.key_prefix)
+    if prefix != base.key_prefix or job.origin != base.queue_name:
+        base = base.replace(key_prefix=prefix, queue_name=job.origin)
+    return Context.build(base, connection=connection or job.connection)
+
+
+def run_fit(fit_id: str) -> dict[str, Any]:
+    """Execute fit ``fit_id`` (the RQ entry point); returns its JSON-safe result."""
+    from rq import get_current_job
+
+    from service.storage import utcnow
+    from service.usecases.fits import execute_fit
+
+    job = get_current_job()
+    if job is None:
+        raise RuntimeError("run_fit must run inside an RQ job")
+    ctx = _context(job)
+
+    def progress(stage: str, fraction: float) -> None:
+        job.meta.update(stage=stage, progress=round(fraction, 4))
+        job.save_meta()
+
+    try:
+        return execute_fit(ctx, fit_id, progress)
+    except BaseException as exc:
+        retrying = bool(job.retries_left and job.retries_left > 0)
+        message = f"{type(exc).__name__}: {exc}"
+        fields: dict[str, Any] = {"error": message}
+        if retrying:
+            fields.update(status="queued", stage="waiting for retry")
+        else:
+            fields.update(status="failed", stage="failed", ended_at=utcnow())
+        ctx.storage.update_fit(fit_id, fields,
+                               only_if=lambda r: r.get("status") in ("queued", "running"))
+        raise
+
+
+def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
+                   tb: Any = None) -> None:
+    """RQ failure callback (also called for abandoned jobs whose worker died)."""
+    from rq.exceptions import AbandonedJobError
+
+    from service.storage import utcnow
+
+    fit_id = job.meta.get("fit_id")
+    if not fit_id:
+        return
+    ctx = _context(job, connection)
+    retrying = bool(job.retries_left and job.retries_left > 0)
+    if exc_type is AbandonedJobError or isinstance(exc_value, AbandonedJobError):
+        message = "the worker running this fit stopped (abandoned job)"
+    else:
+        message = f"{getattr(exc_type, '__name__', 'Error')}: {exc_value}"
+    record = ctx.storage.get_fit(fit_id) or {}
+    fields: dict[str, Any] = {"error": record.get("error") or message}
+    if retrying:
+        fields.update(status="queued", stage="waiting for retry", error=message)
+    else:
+        fields.update(status="failed", stage="failed", ended_at=utcnow())
+    ctx.storage.update_fit(
+        fit_id, fields,
+        only_if=lambda r: r.get("status") in ("queued", "running") and r.get("job_id") == job.id)

@@ -1,0 +1,53 @@
+"""Starting an RQ worker on the fit queue.
+
+``run_worker(settings)`` builds a Context and a forking ``rq.Worker`` (each fit runs in
+a work horse, so ``Settings.fit_timeout`` is enforced by killing it) and works until
+stopped; with ``burst=True`` it returns once the queue is empty. Heartbeats are the
+worker's own (``rq.Worker.all`` lists it with ``last_heartbeat``).
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+from rq import SimpleWorker, Worker
+
+from workers import jobs
+
+if TYPE_CHECKING:
+    import redis
+
+    from service.config import Settings
+
+
+def build_worker(
+    settings: Settings,
+    name: str | None = None,
+    *,
+    simple: bool = False,
+    connection: redis.Redis | None = None,
+) -> Worker:
+    """An RQ worker on ``settings.queue_name`` (not started). ``simple`` runs jobs in
+    the worker process itself (no fork, so no timeout enforcement)."""
+    from service.context import Context
+
+    ctx = Context.build(settings, connection=connection)
+    jobs.worker_settings = settings
+    cls = SimpleWorker if simple else Worker
+    return cls([ctx.queue], connection=ctx.redis, name=name)
+
+
+def run_worker(
+    settings: Settings,
+    burst: bool = False,
+    name: str | None = None,
+    *,
+    simple: bool = False,
+    max_jobs: int | None = None,
+    connection: redis.Redis | None = None,
+) -> Worker:
+    """Build a worker and work (until stopped, or until the queue is empty with
+    ``burst``); returns the worker."""
+    worker = build_worker(settings, name, simple=simple, connection=connection)
+    worker.work(burst=burst, max_jobs=max_jobs, logging_level="WARNING")
+    return worker
