@@ -23,6 +23,7 @@ from referencing import Registry, Resource
 from referencing.jsonschema import DRAFT202012
 from werkzeug.exceptions import HTTPException
 from werkzeug.test import TestResponse
+from werkzeug.wrappers import Response
 
 SPEC_PATH = Path(__file__).resolve().parents[2] / "openapi.yaml"
 SPEC_URI = "urn:likewise:openapi"
@@ -92,7 +93,7 @@ class SpecChecker:
     def problem_errors(self, body: Any) -> list[str]:
         return self.errors("/components/schemas/Problem", body)
 
-    def check_response(self, path: str, method: str, resp: TestResponse) -> None:
+    def check_response(self, path: str, method: str, resp: Response) -> None:
         where = f"{method.upper()} {path} → {resp.status_code}"
         op = self.spec["paths"][path][method]
         documented = op["responses"].get(str(resp.status_code))

@@ -172,6 +172,7 @@ def test_unexpected_exception_is_500_problem_without_trace(ctx: Context) -> None
     assert resp.mimetype == "application/problem+json"
     body = resp.get_json()
     assert body["status"] == 500 and body["instance"] == "/boom"
+    assert body["type"] == "https://likewise.dev/problems/internal-error"
     text = resp.get_data(as_text=True)
     assert "secret internals" not in text and "Traceback" not in text
 

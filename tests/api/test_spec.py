@@ -2,12 +2,16 @@
 
 from __future__ import annotations
 
+import json
+
+import pytest
 from openapi_spec_validator import validate
+from werkzeug.wrappers import Response
 
 from service.api import create_app
 from service.config import Settings
 
-from .spec import app_operations, load_spec, spec_operations
+from .spec import SpecChecker, app_operations, load_spec, spec_operations
 
 
 def _app_without_redis():
@@ -59,3 +63,24 @@ def test_every_error_response_is_problem_json() -> None:
                 assert list(resp["content"]) == ["application/problem+json"], (
                     f"{method} {path} {status}"
                 )
+
+
+def _response(body: object, status: int = 200, mime: str = "application/json") -> Response:
+    return Response(json.dumps(body), status=status, mimetype=mime)
+
+
+def test_the_response_checker_is_not_vacuous() -> None:
+    """The oracle every API test relies on rejects wrong bodies, statuses and types."""
+    checker = SpecChecker(load_spec())
+    good = {"metrics": []}
+    checker.check_response("/v1/metrics", "get", _response(good))
+    wrong = [
+        _response({"metrics": [{"name": "x"}]}),  # a metric without its members
+        _response({"metrics": [], "extra": 1}),  # an undocumented member
+        _response(good, status=201),  # an undocumented status
+        _response(good, mime="text/html"),  # an undocumented media type
+        _response({"title": "no"}, status=401, mime="application/problem+json"),
+    ]
+    for resp in wrong:
+        with pytest.raises(AssertionError):
+            checker.check_response("/v1/metrics", "get", resp)
