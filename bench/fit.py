@@ -34,6 +34,7 @@ from sklearn.cluster import KMeans  # noqa: E402
 from sklearn.discriminant_analysis import LinearDiscriminantAnalysis  # noqa: E402
 from sklearn.metrics import adjusted_rand_score  # noqa: E402
 from sklearn.neighbors import NeighborhoodComponentsAnalysis  # noqa: E402
+from threadpoolctl import threadpool_limits  # noqa: E402
 
 from service.core import BatchStats, MetricSelector, fit_metric, kmeans_1d  # noqa: E402
 from service.core.clustering import cluster  # noqa: E402
@@ -207,17 +208,25 @@ def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="smaller sizes (smoke run)")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument(
+        "--threads", type=int, default=1,
+        help="BLAS/OpenMP threads for every method (default 1; 0 = library default)",
+    )
     args = parser.parse_args(argv)
     sizes = [10_000, 100_000] if args.quick else [10_000, 100_000, 1_000_000]
     started = time.perf_counter()
-    print("likewise benchmark (one run; seconds are wall-clock on this machine)")
-    with warnings.catch_warnings():
+    threads = args.threads if args.threads > 0 else None
+    print(
+        "likewise benchmark (one run; wall-clock seconds on this machine; "
+        f"BLAS/OpenMP threads: {threads or 'library default'}, the same for every method)"
+    )
+    with threadpool_limits(limits=threads), warnings.catch_warnings():
         warnings.simplefilter("ignore")  # digits has blank pixels: zero-spread warnings
         quality_table(
             n_train=8 if args.quick else 20, n_test=10 if args.quick else 40, seed=args.seed
         )
-    scaling_table(sizes, d=50, batch_records=5_000, seed=args.seed)
-    kmeans1d_table(sizes, k=5, seed=args.seed)
+        scaling_table(sizes, d=50, batch_records=5_000, seed=args.seed)
+        kmeans1d_table(sizes, k=5, seed=args.seed)
     print(f"\ntotal {time.perf_counter() - started:.1f} s")
 
 

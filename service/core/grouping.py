@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .clustering import cluster, own_and_runner_up
+from .clustering import cluster, own_and_runner_up, single_threaded
 from .errors import CoreError
 from .kchoice import choose_k
 from .metric import FittedMetric
@@ -53,9 +53,16 @@ def group_records(
     run from them instead of k-means++ restarts (ignored by the exact rank ≤ 1 paths).
     """
     X = check_matrix(X, "records", metric.n_features)
-    n = X.shape[0]
     if isinstance(n_init, bool) or not isinstance(n_init, (int, np.integer)) or n_init < 1:
         raise CoreError("n_init must be a whole number of at least 1", "n_init")
+    with single_threaded():  # see clustering.single_threaded
+        return _group(metric, X, k, random_state, int(n_init), init)
+
+
+def _group(
+    metric: FittedMetric, X: np.ndarray, k: int | None, random_state: int | None, n_init: int, init
+) -> Grouping:
+    n = X.shape[0]
     Z = metric.transform(X)
     chosen = k is None
     if chosen:
@@ -65,7 +72,7 @@ def group_records(
         init = check_matrix(init, "init", Z.shape[1])
         if init.shape[0] != k:
             raise CoreError(f"init has {init.shape[0]} centre(s) for k={k}", "init")
-    labels, centres, _ = cluster(Z, k, random_state=random_state, n_init=int(n_init), init=init)
+    labels, centres, _ = cluster(Z, k, random_state=random_state, n_init=n_init, init=init)
     own, other = own_and_runner_up(Z, centres, labels)
     margins = np.maximum(other - own, 0.0)
     sizes = np.bincount(labels, minlength=centres.shape[0])

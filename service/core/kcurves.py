@@ -16,6 +16,8 @@ import numpy as np
 from scipy.cluster.hierarchy import linkage
 from scipy.spatial.distance import pdist, squareform
 
+from .clustering import single_threaded
+
 SAMPLE_CAP = 1000  # records used to draw the curves (pairwise distances are O(n²))
 LLOYD_ITERATIONS = 20
 
@@ -37,20 +39,27 @@ def curves(
     out = {"inertia": [total], "silhouette": [np.nan], "calinski_harabasz": [np.nan]}
     k_hi = min(k_max, n)
     if k_hi >= 2 and total > 0 and Z.shape[1] > 0:
-        dist = squareform(pdist(Z))
-        merges = linkage(Z, method="ward")
-        for k in range(2, k_hi + 1):
-            labels, within = _lloyd(Z, _cut(merges, n, k), k)
-            if labels is None:
-                break  # fewer distinct points than k
-            out["inertia"].append(within)
-            out["silhouette"].append(_silhouette(dist, labels, k) if k < n else np.nan)
-            out["calinski_harabasz"].append(
-                (total - within) / (k - 1) * (n - k) / within if within > 0 and k < n else np.inf
-            )
+        with single_threaded():  # small matrices: BLAS threads cost more than they save
+            _fill(out, Z, k_hi, total)
     result = {name: np.asarray(values, dtype=float) for name, values in out.items()}
     result["n"] = np.asarray(float(n))
     return result
+
+
+def _fill(out: dict[str, list], Z: np.ndarray, k_hi: int, total: float) -> None:
+    """Append the k = 2..k_hi points of the three curves (stops early, see ``curves``)."""
+    n = Z.shape[0]
+    dist = squareform(pdist(Z))
+    merges = linkage(Z, method="ward")
+    for k in range(2, k_hi + 1):
+        labels, within = _lloyd(Z, _cut(merges, n, k), k)
+        if labels is None:
+            break  # fewer distinct points than k
+        out["inertia"].append(within)
+        out["silhouette"].append(_silhouette(dist, labels, k) if k < n else np.nan)
+        out["calinski_harabasz"].append(
+            (total - within) / (k - 1) * (n - k) / within if within > 0 and k < n else np.inf
+        )
 
 
 def _cut(merges: np.ndarray, n: int, k: int) -> np.ndarray:
@@ -70,25 +79,25 @@ def _cut(merges: np.ndarray, n: int, k: int) -> np.ndarray:
 def _lloyd(Z: np.ndarray, labels: np.ndarray, k: int) -> tuple[np.ndarray | None, float]:
     """Lloyd iterations from a partition; ``(None, 0)`` when a group empties at once."""
     sq = np.einsum("ij,ij->i", Z, Z)
-    best = None
+    best, best_centres = None, None
     for _ in range(LLOYD_ITERATIONS):
         counts = np.bincount(labels, minlength=k)
         if np.any(counts == 0):
             break  # keep the last partition with k groups
-        centres = np.stack([np.bincount(labels, weights=col, minlength=k) for col in Z.T], 1)
-        centres /= counts[:, None]
-        best = labels
-        d2 = sq[:, None] - 2.0 * Z @ centres.T + np.einsum("ij,ij->i", centres, centres)
-        new = np.argmin(d2, axis=1)
-        if np.array_equal(new, labels):
+        best, best_centres = labels, _means(Z, labels, counts)
+        d2 = sq[:, None] - 2.0 * Z @ best_centres.T + np.einsum("ij,ij->i", *[best_centres] * 2)
+        labels = np.argmin(d2, axis=1)
+        if np.array_equal(labels, best):
             break
-        labels = new
     if best is None:
         return None, 0.0
-    counts = np.bincount(best, minlength=k)
-    centres = np.stack([np.bincount(best, weights=col, minlength=k) for col in Z.T], 1)
-    centres /= counts[:, None]
-    return best, float(np.sum((Z - centres[best]) ** 2))
+    return best, float(np.sum((Z - best_centres[best]) ** 2))
+
+
+def _means(Z: np.ndarray, labels: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    k = counts.shape[0]
+    sums = np.stack([np.bincount(labels, weights=col, minlength=k) for col in Z.T], axis=1)
+    return sums / counts[:, None]
 
 
 def _silhouette(dist: np.ndarray, labels: np.ndarray, k: int) -> float:

@@ -41,11 +41,23 @@ def check_batch(X, groups, n_features: int | None = None) -> tuple[np.ndarray, n
         )
     if arr.shape[0] < 2:
         raise NotEnoughDataError("a batch needs at least two records", "records")
-    _, codes = np.unique(labels, return_inverse=True)
-    codes = codes.reshape(-1)
+    codes = _group_codes(labels)
     if codes.max() < 1:
         raise NotEnoughDataError("a batch needs at least two groups", "groups")
     return arr, codes.astype(np.intp)
+
+
+def _group_codes(labels: np.ndarray) -> np.ndarray:
+    """Codes 0..k-1 in sorted label order; O(n) for compact integer labels."""
+    n = labels.shape[0]
+    if labels.dtype.kind in "iu":
+        lo, hi = int(labels.min()), int(labels.max())
+        if hi - lo <= 2 * n:
+            offset = labels.astype(np.int64) - lo
+            present = np.bincount(offset) > 0
+            return (np.cumsum(present) - 1)[offset]
+    _, codes = np.unique(labels, return_inverse=True)
+    return codes.reshape(-1)
 
 
 def check_k(k, n_records: int) -> int:
