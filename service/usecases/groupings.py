@@ -9,6 +9,8 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
+
 from service.core import CoreError, FittedMetric, group_records
 from service.errors import Conflict, InvalidInput, NotFound, from_core
 from service.tables import to_matrix
@@ -68,6 +70,7 @@ def group(
         "k_chosen": bool(g.k_chosen),
         "labels": [int(v) for v in g.labels],
         "distances": [float(v) for v in g.distances],
-        "margins": [float(v) for v in g.margins],
+        # one group has no runner-up centre: its margin is undefined (null), not Infinity
+        "margins": [float(v) if np.isfinite(v) else None for v in g.margins],
         "sizes": [int(v) for v in g.sizes],
     }

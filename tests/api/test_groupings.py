@@ -70,6 +70,17 @@ def test_grouping_follows_activations(
     assert api.post(URL, json={**body, "version": 2}).get_json()["version"] == 2
 
 
+def test_a_single_group_has_null_margins(api: SpecClient, fitted: dict[str, Any], held_out):
+    """k = 1 has no runner-up centre: margins are JSON null, never the invalid ``Infinity``."""
+    X, _ = held_out
+    resp = api.post(URL, json={"records": as_records(X), "k": 1})
+    assert resp.status_code == 200
+    body = resp.get_json()
+    assert body["k"] == 1 and body["sizes"] == [len(X)]
+    assert body["margins"] == [None] * len(X)
+    assert b"Infinity" not in resp.data
+
+
 # ------------------------------------------------------------------------- errors
 def test_metric_without_a_version_is_409(
     api: SpecClient, with_batches: list[str], held_out, unchanged
