@@ -93,3 +93,47 @@ def make_batches(
         order = rng.permutation(sum(len(r) for r in rows))
         batches.append((np.vstack(rows)[order], np.concatenate(labels)[order]))
     return batches
+
+
+def few_batch_trial(
+    name: str,
+    seed: int,
+    rules: tuple[str, ...] = ("one_se", "argmax"),
+    n_batches: tuple[int, int] = (3, 5),
+    group_size: tuple[int, int] = (5, 15),
+    n_score: int = 15,
+) -> dict[str, float]:
+    """One few-batch problem: fit on 3–5 small batches, judge on a disjoint pool.
+
+    Returns the mean held-out ARI (true k) of the metric each selection rule picks,
+    and of the Euclidean metric (key ``"euclidean"``), on ``n_score`` batches drawn
+    from records the fit never saw.
+    """
+    from sklearn.metrics import adjusted_rand_score
+
+    from service.core import MetricSelector, group_records
+
+    X, y = load_open(name)
+    rng = np.random.default_rng(seed)
+    (X_fit, y_fit), (X_score, y_score) = split_pool(X, y, rng)
+    n_fit = int(rng.integers(n_batches[0], n_batches[1] + 1))
+    fit = make_batches(X_fit, y_fit, n_fit, rng, group_size=group_size)
+    score = make_batches(X_score, y_score, n_score, rng, group_size=group_size)
+
+    def held_out(metric) -> float:
+        return float(
+            np.mean(
+                [
+                    adjusted_rand_score(yb, group_records(metric, Xb, len(np.unique(yb))).labels)
+                    for Xb, yb in score
+                ]
+            )
+        )
+
+    out = {}
+    for rule in rules:
+        sel = MetricSelector(rule=rule, estimate_k=False, random_state=seed).fit(fit)
+        out[rule] = held_out(sel.metric_)
+    sel = MetricSelector(method="euclidean", estimate_k=False).fit(fit)
+    out["euclidean"] = held_out(sel.metric_)
+    return out

@@ -14,7 +14,7 @@ from sklearn.metrics import adjusted_rand_score
 
 from .errors import CoreError
 from .grouping import group_records
-from .learners import fit_metric
+from .learners import Prepared, fit_prepared
 from .metric import FittedMetric
 from .scores import agreement
 from .stats import BatchStats
@@ -105,8 +105,7 @@ class CrossValidation:
         self.max_records = max(int(max_records), 2)
         self.n_init = max(int(n_init), 1)
         self._held: dict[int, tuple[np.ndarray, np.ndarray]] = {}
-        self._train: dict[int, BatchStats] = {}
-        self._metrics: dict[tuple[int, Candidate], FittedMetric | None] = {}
+        self._prepared: dict[int, Prepared | None] = {}
         # per candidate, per (fold, batch): predicted labels and the scores computed so
         # far (ARI at once for the choice; NMI and Rand only when a report needs them)
         self._scores: dict[Candidate, dict[tuple[int, int], _Scored]] = {}
@@ -119,31 +118,31 @@ class CrossValidation:
             X, codes = self.batches[b]
             if X.shape[0] > self.max_records:
                 seed = None if self.random_state is None else [int(self.random_state), b]
-                idx = np.sort(
-                    np.random.default_rng(seed).choice(X.shape[0], self.max_records, False)
-                )
+                idx = np.random.default_rng(seed).choice(X.shape[0], self.max_records, False)
+                # every expert group keeps at least one record, so the true k is kept
+                _, first = np.unique(codes, return_index=True)
+                idx = np.union1d(idx, first)
                 X, codes = X[idx], np.unique(codes[idx], return_inverse=True)[1].reshape(-1)
             self._held[b] = (X, codes)
         return self._held[b]
 
     def train_stats(self, i: int) -> BatchStats:
-        if i not in self._train:
-            held = BatchStats.sum([self.stats[b] for b in self.folds[i].held_out])
-            self._train[i] = self.total - held
-        return self._train[i]
+        """``total − held-out``: O(d²), recomputed rather than kept (d² floats per fold)."""
+        return self.total - BatchStats.sum([self.stats[b] for b in self.folds[i].held_out])
 
     def fold_metric(self, i: int, cand: Candidate) -> FittedMetric | None:
-        key = (i, cand)
-        if key not in self._metrics:
+        """The candidate fitted on fold ``i``'s training batches (None if it cannot be)."""
+        if i not in self._prepared:
             with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
+                warnings.simplefilter("ignore")  # the final fit reports warnings once
                 try:
-                    self._metrics[key] = fit_metric(
-                        self.train_stats(i), cand.method, cand.alpha or 1.0, self.max_rank
-                    )
+                    self._prepared[i] = Prepared(self.train_stats(i))
                 except CoreError:  # e.g. no spread left in this fold's training batches
-                    self._metrics[key] = None
-        return self._metrics[key]
+                    self._prepared[i] = None
+        prep = self._prepared[i]
+        if prep is None:
+            return None
+        return fit_prepared(prep, cand.method, cand.alpha or 1.0, self.max_rank)
 
     # ---------------------------------------------------------------- scoring
     def run(
@@ -166,7 +165,7 @@ class CrossValidation:
                     table[(i, b)] = self._score(metric, b)
             if progress is not None:
                 progress((i + 1) / len(self.folds))
-            self._metrics = {k: v for k, v in self._metrics.items() if k[0] != i}
+            self._prepared.pop(i, None)  # O(d²) each: keep one fold's at a time
 
     def _score(self, metric: FittedMetric | None, b: int) -> _Scored:
         X, codes = self.held_out_data(b)

@@ -37,6 +37,10 @@ Learners:
 ``euclidean``
     The identity on standardised features (the baseline): components = I, rank d.
 
+Cost: the α-independent work (eigendecompositions of G and of the within-group
+scatter) is done once per set of statistics (:class:`Prepared`, O(d³)); each α then
+costs O(d·q²) with q = rank H ≤ Σ_b (k_b − 1). Cross-validation keeps one per fold.
+
 Scale: k-means does not care about an overall factor, so every learned map except
 ``euclidean`` is rescaled so that the mapped training records have, on average over
 the components, unit pooled within-batch variance: ``tr(L G Lᵀ) / (N r) = 1``.
@@ -81,55 +85,95 @@ def fit_metric(
             raise CoreError("max_rank must be at least 1", "max_rank")
     if not isinstance(stats, BatchStats):
         raise TypeError("stats must be a BatchStats")
-    if stats.n_batches < 1 or stats.n < 2:
-        raise NotEnoughDataError("no labelled batches to learn from", "batches")
+    return fit_prepared(Prepared(stats), method, alpha, max_rank, rel_tol)
 
-    scales, warn_list, zero = _scales(stats)
-    G = stats.G / np.outer(scales, scales)
-    H = stats.H / np.outer(scales, scales)
-    G = (G + G.T) / 2.0
-    H = (H + H.T) / 2.0
-    d = stats.n_features
-    lam = alpha * float(np.trace(G)) / d
+
+class Prepared:
+    """The α-independent part of a fit, O(d³) once; each α then costs O(d·q²).
+
+    (q = rank of H ≤ Σ_b (k_b − 1).) Private to the core: cross-validation keeps one
+    per fold and fits every candidate from it. Emits the zero-spread warning.
+    """
+
+    def __init__(self, stats: BatchStats) -> None:
+        if stats.n_batches < 1 or stats.n < 2:
+            raise NotEnoughDataError("no labelled batches to learn from", "batches")
+        self.stats = stats
+        self.scales, self.warnings, self.zero = _scales(stats)
+        outer = np.outer(self.scales, self.scales)
+        G, H = stats.G / outer, stats.H / outer
+        self.G, self.H = (G + G.T) / 2.0, (H + H.T) / 2.0
+        self.ridge_unit = float(np.trace(self.G)) / stats.n_features  # λ = α · this
+        self.max_rank = max(int(stats.n_groups) - int(stats.n_batches), 1)
+        self._range: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+        self._within: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+
+    def range_parts(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(V, γ, F)``: basis of range(G), its eigenvalues, and ``VᵀHV = F Fᵀ``."""
+        if self._range is None:
+            gam, V = scipy.linalg.eigh(self.G)
+            keep = gam > _NULL_TOL * max(float(gam[-1]), 0.0)
+            V, gam = V[:, keep], gam[keep]
+            Hr = V.T @ self.H @ V
+            h, Q = scipy.linalg.eigh((Hr + Hr.T) / 2.0)
+            pos = h > _NULL_TOL * max(float(h[-1]) if h.size else 0.0, 0.0)
+            self._range = (V, gam, Q[:, pos] * np.sqrt(h[pos]))
+        return self._range
+
+    def within_parts(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(Q, ω, QᵀF)`` with ``diag(γ) − VᵀHV = Q diag(ω) Qᵀ`` (within-group scatter)."""
+        if self._within is None:
+            _, gam, F = self.range_parts()
+            Wt = np.diag(gam) - F @ F.T
+            om, Q = scipy.linalg.eigh((Wt + Wt.T) / 2.0)
+            self._within = (Q, om, Q.T @ F)
+        return self._within
+
+
+def fit_prepared(
+    prep: Prepared,
+    method: str,
+    alpha: float,
+    max_rank: int | None = None,
+    rel_tol: float = 1e-8,
+) -> FittedMetric:
+    """Fit one learner from prepared statistics; arguments already validated."""
+    d = prep.stats.n_features
+    lam = alpha * prep.ridge_unit
     info: dict[str, Any] = {
         "lambda": lam,
-        "n_batches": int(stats.n_batches),
-        "n_records": int(stats.n),
-        "zero_spread_features": zero,
-        "warnings": warn_list,
+        "n_batches": int(prep.stats.n_batches),
+        "n_records": int(prep.stats.n),
+        "zero_spread_features": list(prep.zero),
+        "warnings": list(prep.warnings),
     }
-    max_r = max(int(stats.n_groups) - int(stats.n_batches), 1)
-    if max_rank is not None:
-        max_r = min(max_r, int(max_rank))
-
+    max_r = prep.max_rank if max_rank is None else min(prep.max_rank, int(max_rank))
     if method == "euclidean":
         L = np.eye(d)
         alpha = 0.0
         info["lambda"] = 0.0
     elif method == "diagonal":
-        L, weights = _diagonal(G, H, lam, rel_tol, max_r)
+        L, weights = _diagonal(prep.G, prep.H, lam, rel_tol)
         info["weights"] = weights.tolist()
     else:
-        V, gam = _range_basis(G)
-        Gr = gam
-        Hr = V.T @ H @ V
-        Hr = (Hr + Hr.T) / 2.0
+        V, gam, F = prep.range_parts()
         if method == "closed_form":
-            Lr, eig = _closed_form(Gr, Hr, lam, rel_tol, max_r)
+            Lr, eig = _closed_form(gam, F, lam, rel_tol, max_r)
         else:
-            Lr, eig = _discriminant(Gr, Hr, lam, rel_tol, max_r)
+            Q, om, QtF = prep.within_parts()
+            Lr, eig = _discriminant(Q, om, QtF, lam, float(gam.max()), rel_tol, max_r)
         L = Lr @ V.T
         info["eigenvalues"] = eig.tolist()
     if method != "euclidean":
-        L = _normalise(L, G, stats.n)
+        L = _normalise(L, prep.G, prep.stats.n)
     if L.shape[0] == 0:  # no between-group signal at all: fall back to a zero map
         L = np.zeros((1, d))
         info["warnings"].append("no between-group spread: the learned map is zero")
     return FittedMetric(
         method=method,
         alpha=float(alpha),
-        scales=scales,
-        mean=stats.mean.copy(),
+        scales=prep.scales,
+        mean=prep.stats.mean.copy(),
         components=L,
         info=info,
     )
@@ -162,57 +206,55 @@ def _scales(stats: BatchStats) -> tuple[np.ndarray, list[str], list[int]]:
             f"feature(s) {', '.join(map(str, zero))} have no spread within batches; "
             "they carry no signal and get scale 1"
         )
-        warnings.warn(msg, ZeroSpreadWarning, stacklevel=3)
+        warnings.warn(msg, ZeroSpreadWarning, stacklevel=4)
         msgs.append(msg)
     s = np.where(zero_mask, 1.0, s)
     return s, msgs, zero
 
 
-def _range_basis(G: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Eigenvectors and eigenvalues of G over its numerical range (exact null dropped)."""
-    gam, V = scipy.linalg.eigh(G)
-    keep = gam > _NULL_TOL * max(float(gam[-1]), 0.0)
-    return V[:, keep], gam[keep]
-
-
 def _closed_form(
-    gam: np.ndarray, H: np.ndarray, lam: float, rel_tol: float, max_r: int
+    gam: np.ndarray, F: np.ndarray, lam: float, rel_tol: float, max_r: int
 ) -> tuple[np.ndarray, np.ndarray]:
-    """``L`` with ``LᵀL = A⁻¹ H A⁻¹`` (A = diag(gam) + λI), square-root form."""
-    h, Q = scipy.linalg.eigh(H)
-    pos = h > 0
-    F_t = Q[:, pos] * np.sqrt(h[pos])  # H = F_t F_tᵀ
-    if F_t.shape[1] == 0:
+    """``L`` with ``LᵀL = A⁻¹ F Fᵀ A⁻¹`` (A = diag(γ) + λI), square-root form."""
+    if F.shape[1] == 0:
         return np.zeros((0, gam.shape[0])), np.zeros(0)
-    W = F_t / (gam + lam)[:, None]
+    W = F / (gam + lam)[:, None]
     U, sig, _ = scipy.linalg.svd(W, full_matrices=False)
-    eig = sig**2  # eigenvalues of M
-    return _top((U * sig).T, eig, rel_tol, max_r)
+    return _top((U * sig).T, sig**2, rel_tol, max_r)  # eigenvalues of M: σ²
 
 
 def _discriminant(
-    gam: np.ndarray, H: np.ndarray, lam: float, rel_tol: float, max_r: int
+    Q: np.ndarray,
+    om: np.ndarray,
+    QtF: np.ndarray,
+    lam: float,
+    gam_max: float,
+    rel_tol: float,
+    max_r: int,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Generalised eigenvectors of H against the regularised within-group scatter."""
-    Wt = np.diag(gam) - H + lam * np.eye(gam.shape[0])
-    Wt = (Wt + Wt.T) / 2.0
-    # Whiten by hand (equivalent to eigh(H, Wt)) so that a within-group scatter that is
-    # singular up to rounding — groups that are perfectly separated — stays solvable.
-    om, Q = scipy.linalg.eigh(Wt)
-    floor = max(lam, _NULL_TOL * float(gam.max()))
-    S = Q / np.sqrt(np.maximum(om, floor))
-    B = S.T @ H @ S
-    mu, E = scipy.linalg.eigh((B + B.T) / 2.0)
-    mu, E = mu[::-1], E[:, ::-1]
-    V = S @ E  # columns: vᵀ Wt v = 1
-    weights = np.sqrt(np.clip(mu, 0.0, None) / (1.0 + np.clip(mu, 0.0, None)))
+    """Generalised eigenvectors of H against the regularised within-group scatter.
+
+    Whitened by hand — equivalent to ``scipy.linalg.eigh(H, W + λI)`` — so that a
+    within-group scatter that is singular up to rounding (perfectly separated groups)
+    stays solvable, and in factored form: the whitened between scatter is ``P Pᵀ``
+    with ``P = (Ω + λI)^{-1/2} Qᵀ F``, so an SVD of P (r × q) gives its eigenpairs.
+    """
+    if QtF.shape[1] == 0:
+        return np.zeros((0, Q.shape[0])), np.zeros(0)
+    floor = max(lam, _NULL_TOL * gam_max)
+    inv_sqrt = 1.0 / np.sqrt(np.maximum(om + lam, floor))
+    P = QtF * inv_sqrt[:, None]
+    E, sig, _ = scipy.linalg.svd(P, full_matrices=False)
+    mu = sig**2
+    V = Q @ (E * inv_sqrt[:, None])  # columns: vᵀ (W + λI) v = 1
+    weights = np.sqrt(mu / (1.0 + mu))
     return _top((V * weights).T, mu, rel_tol, max_r)
 
 
 def _diagonal(
-    G: np.ndarray, H: np.ndarray, lam: float, rel_tol: float, max_r: int
+    G: np.ndarray, H: np.ndarray, lam: float, rel_tol: float
 ) -> tuple[np.ndarray, np.ndarray]:
-    del max_r  # a diagonal map keeps one row per informative feature
+    """One row per informative feature (``max_rank`` does not apply)."""
     g, h = np.diag(G), np.clip(np.diag(H), 0.0, None)
     within = np.clip(g - h, 0.0, None)
     weights = np.sqrt(h / (within + max(lam, _NULL_TOL * float(g.max()))))
