@@ -42,6 +42,7 @@ import numpy as np
 
 from . import kchoice
 from ._cv import Candidate, CrossValidation, make_folds
+from .clustering import validated_inner_loop
 from .errors import CoreError, NotEnoughDataError
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
@@ -101,6 +102,10 @@ class MetricSelector:
     def fit(
         self, batches: Sequence[Batch], stats: Sequence[BatchStats] | None = None
     ) -> MetricSelector:
+        with validated_inner_loop():
+            return self._fit(batches, stats)
+
+    def _fit(self, batches: Sequence[Batch], stats: Sequence[BatchStats] | None) -> MetricSelector:
         self._check_params()
         batches = _check_batches(batches)
         self._report_progress("statistics", 0.0)
@@ -146,7 +151,8 @@ class MetricSelector:
         if method not in METHODS:
             raise CoreError(f"unknown method {method!r}", "method")
         cand = Candidate(method, 0.0 if method == "euclidean" else float(alpha))
-        self._cv.run([cand])
+        with validated_inner_loop():
+            self._cv.run([cand])
         res = self._cv.summary(cand)
         base = self._cv.summary(Candidate("euclidean", 0.0))
         return {
