@@ -69,10 +69,13 @@ def _wait(predicate, timeout: float, what: str, proc: subprocess.Popen | None = 
     raise AssertionError(f"timed out after {timeout}s waiting for {what}")
 
 
-def _start(env: dict, tmp: Path) -> tuple[subprocess.Popen, str]:
+def _start(
+    env: dict, tmp: Path, data_dir: Path | None = None
+) -> tuple[subprocess.Popen, str]:
     """Start ``likewise run``; return the process and its base URL once /readyz says ready."""
     port = _free_port()
-    full = {**os.environ, **env, "LIKEWISE_PORT": str(port), "LIKEWISE_DATA_DIR": str(tmp)}
+    full = {**os.environ, **env, "LIKEWISE_PORT": str(port),
+            "LIKEWISE_DATA_DIR": str(data_dir or tmp)}
     log = open(tmp / "launcher.log", "ab")  # noqa: SIM115 - lives as long as the process
     proc = subprocess.Popen([sys.executable, "-m", "service.cli", "run"], env=full,
                             stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
