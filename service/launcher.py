@@ -33,18 +33,32 @@ def _say(message: str) -> None:
 def ensure_admin_token(settings: Settings) -> tuple[str, bool]:
     """The admin token: from the settings, else read or create ``<data dir>/admin-token``.
 
-    Returns ``(token, created)``. A created file has mode 600.
+    Returns ``(token, created)``. A created file has mode 600. An empty file (which
+    would leave the service with no admin token at all) is replaced by a new token.
     """
     if settings.admin_token:
         return settings.admin_token, False
     path = Path(settings.data_dir) / TOKEN_FILE
-    if path.exists():
-        return path.read_text().strip(), False
+    replace_empty = path.exists()
+    if replace_empty:
+        existing = path.read_text().strip()
+        if existing:
+            return existing, False
     path.parent.mkdir(parents=True, exist_ok=True)
     token = secrets.token_urlsafe(32)
-    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-    with os.fdopen(fd, "w") as fh:
-        fh.write(token + "\n")
+    # written beside it with mode 600 from the start; a new file is linked in only if
+    # none appeared meanwhile (like O_EXCL), an empty one is renamed over
+    tmp = path.with_name(f".{TOKEN_FILE}.{os.getpid()}")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    try:
+        with os.fdopen(fd, "w") as fh:
+            fh.write(token + "\n")
+        if replace_empty:
+            os.replace(tmp, path)
+        else:
+            os.link(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
     return token, True
 
 

@@ -428,6 +428,10 @@ class Storage:
     def dedupe_key(self, name: str, params_hash: str) -> str:
         return self._m(name, "dedupe", params_hash)
 
+    def dedupe_fit_id(self, dedupe_key: str) -> str | None:
+        """The fit id a dedupe key points at (a queued/running fit with those params)."""
+        return _s(self.redis.get(dedupe_key))
+
     def create_fit(self, name: str, uid: str, record: dict[str, Any],
                    enqueue: Callable[[Pipeline], None]) -> tuple[str, bool]:
         """Store a new fit and enqueue its job in one EXEC, unless the dedupe key points

@@ -40,8 +40,17 @@ def test_workers_can_scale():
     assert "container_name" not in worker
     assert "ports" not in worker
     assert worker["command"] == ["likewise", "worker"]
-    assert "healthcheck" in worker
     assert worker["depends_on"]["redis"]["condition"] == "service_healthy"
+
+
+def test_worker_image_is_built_here_and_its_healthcheck_checks_the_worker():
+    services = _compose()["services"]
+    worker, api = services["worker"], services["api"]
+    # an image only the api builds would be pulled from a registry for the worker
+    assert worker.get("build") == api["build"] and worker["image"] == api["image"]
+    # a Redis ping says nothing about the worker; the check looks for this host's worker
+    check = " ".join(worker["healthcheck"]["test"])
+    assert "Worker.all" in check and "gethostname" in check
 
 
 def test_image_runs_the_same_entry_point():

@@ -158,6 +158,8 @@ def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
         data = request.get_json()
     except BadRequest as exc:
         raise MalformedRequest("The body is not valid JSON.") from exc
+    except RecursionError as exc:  # the parser recurses once per nesting level
+        raise MalformedRequest("The body's JSON is nested too deeply.") from exc
     if not isinstance(data, dict):
         raise MalformedRequest("The body must be a JSON object.")
     return schema.load(data)

@@ -8,16 +8,16 @@ import secrets
 from collections import Counter
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
+
 from service.core import BatchStats, CoreError
-from service.errors import NotFound, from_core
+from service.errors import InvalidInput, NotFound, from_core
 from service.storage import pack_json, pack_matrix, utcnow
 from service.tables import check_groups, to_matrix
 
 from .metrics import require_metric
 
 if TYPE_CHECKING:
-    import numpy as np
-
     from service.context import Context
 
 BATCH_ID_LEN = 16
@@ -45,10 +45,17 @@ def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any])
     s = ctx.settings
     X = to_matrix(metric["features"], table, s.max_batch_records, s.max_batch_bytes)
     labels = check_groups(groups, X.shape[0])
+    field = "records" if "records" in table else "rows"
     try:
-        stats = BatchStats.from_batch(X, labels)
+        with np.errstate(over="ignore", invalid="ignore"):
+            stats = BatchStats.from_batch(X, labels)
     except CoreError as exc:
-        raise from_core(exc) from exc
+        raise from_core(exc, default_field=field) from exc
+    if not all(np.isfinite(a).all() for a in (stats.G, stats.H, stats.sums)):
+        # finite values whose squares overflow float64 would poison every later fit
+        raise InvalidInput.field(
+            field, "values too large: the batch's scatter overflows float64 "
+                   "(rescale the feature, e.g. to other units)")
     batch_id = secrets.token_hex(BATCH_ID_LEN // 2)
     sizes = Counter(labels)
     meta = {

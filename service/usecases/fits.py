@@ -20,7 +20,7 @@ from service.errors import Conflict, InvalidInput, NotFound
 from service.storage import utcnow
 
 from .fit_exec import PUBLIC_FIELDS, execute_fit, reconcile
-from .metrics import require_metric
+from .metrics import NAME_RE, require_metric
 
 if TYPE_CHECKING:
     from redis.client import Pipeline
@@ -114,9 +114,9 @@ def request_fit(
                        "(cross-validation holds batches out)")
     digest = hashlib.sha256(json.dumps(p, sort_keys=True).encode()).hexdigest()[:32]
     dkey = ctx.storage.dedupe_key(name, digest)
-    current = ctx.storage.redis.get(dkey)
+    current = ctx.storage.dedupe_fit_id(dkey)
     if current is not None:  # let a dead fit release the dedupe slot first
-        existing = ctx.storage.get_fit(current.decode())
+        existing = ctx.storage.get_fit(current)
         if existing is not None:
             reconcile(ctx, existing)
     fit_id = secrets.token_hex(10)
@@ -153,6 +153,9 @@ def list_fits(
     if status is not None and status not in STATUSES:
         raise InvalidInput.field("status", "one of " + ", ".join(STATUSES))
     if metric is not None:
+        if not isinstance(metric, str) or not NAME_RE.fullmatch(metric):
+            raise InvalidInput.field("metric", "a metric name: 1 to 64 lowercase letters, "
+                                     "digits, '-' or '_'", f"invalid metric name {metric!r}")
         require_metric(ctx, metric)
     out = []
     for fit_id in reversed(ctx.storage.fit_ids(metric)):

@@ -30,16 +30,22 @@ def _check_k(k: Any) -> int | None:
     return k
 
 
-def load_version_metric(ctx: Context, metric: dict[str, Any], n: int) -> FittedMetric:
+def load_version_metric(
+    ctx: Context, metric: dict[str, Any], n: int
+) -> tuple[FittedMetric, list[str]]:
+    """Version ``n``'s fitted map and the features it was fitted on, in its column order
+    (the metric's features may have been reordered or renamed since, once its batches
+    were deleted)."""
     key = (metric["name"], metric["uid"], n)
-    fitted = ctx.cache.get(key)
-    if fitted is None:
+    loaded = ctx.cache.get(key)
+    if loaded is None:
         doc = ctx.storage.get_version(metric["name"], n, ("metric",))
         if doc is None:
             raise NotFound(f"metric {metric['name']!r} has no version {n}")
-        fitted = FittedMetric.from_dict(doc["metric"])
-        ctx.cache.put(key, fitted)
-    return fitted
+        features = list(doc["metric"].get("features") or metric["features"])
+        loaded = (FittedMetric.from_dict(doc["metric"]), features)
+        ctx.cache.put(key, loaded)
+    return loaded
 
 
 def group(
@@ -57,9 +63,9 @@ def group(
             raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
     else:
         check_version_number(version)
-    fitted = load_version_metric(ctx, metric, version)
+    fitted, features = load_version_metric(ctx, metric, version)
     s = ctx.settings
-    X = to_matrix(metric["features"], table, s.max_batch_records, s.max_batch_bytes)
+    X = to_matrix(features, table, s.max_batch_records, s.max_batch_bytes)
     try:
         g = group_records(fitted, X, k=k_value)
     except CoreError as exc:

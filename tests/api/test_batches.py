@@ -86,6 +86,9 @@ def _no_batches(api: SpecClient) -> None:
         {"data": "{}"},
         {"data": "{records", "content_type": "application/json"},
         {"json": [1, 2]},
+        # nesting deeper than the JSON parser recurses (was a 500)
+        {"data": '{"records": ' + "[" * 100_000 + "]" * 100_000 + "}",
+         "content_type": "application/json"},
     ],
 )
 def test_post_malformed_is_400(api: SpecClient, metric: str, unchanged, kwargs: dict) -> None:
@@ -130,10 +133,15 @@ def _bodies(X, labels):
         ({"records": recs, "groups": [0] * len(recs)}, "groups"),
         ({"records": recs, "groups": [0, "a", *groups[2:]]}, "groups"),
         (nan_text, "records[0]"),
+        # finite values whose squares overflow float64: the statistics would be inf/nan
+        ({"records": [{**recs[0], "sepal_length": 1e200}, *recs[1:]], "groups": groups},
+         "records"),
+        ({"columns": IRIS_FEATURES, "rows": [[-1e200, 1, 1, 1], *rows[1:]], "groups": groups},
+         "rows"),
     ]
 
 
-@pytest.mark.parametrize("case", range(20))
+@pytest.mark.parametrize("case", range(22))
 def test_post_invalid_is_422_naming_the_field(
     api: SpecClient, metric: str, unchanged, batch, case: int
 ) -> None:

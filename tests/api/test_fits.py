@@ -189,7 +189,7 @@ def test_fit_invalid_params_are_422(
     ("query", "status", "field"),
     [
         ("?status=done", 422, "status"),
-        ("?metric=Bad!", 422, "name"),
+        ("?metric=Bad!", 422, "metric"),  # the query parameter at fault, not "name"
         ("?colour=red", 422, "colour"),
         ("?metric=nothing", 404, None),
     ],

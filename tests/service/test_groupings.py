@@ -10,7 +10,7 @@ from sklearn.metrics import adjusted_rand_score
 
 from service.context import Context
 from service.errors import Conflict, InvalidInput, NotFound
-from service.usecases import fits, groupings, metrics, versions
+from service.usecases import batches, fits, groupings, metrics, versions
 
 from ._data import as_table, open_batches, setup_metric
 
@@ -79,3 +79,24 @@ def test_grouping_errors(ctx: Context, run_worker_burst) -> None:
     with pytest.raises(InvalidInput):
         groupings.group(ctx, "m", table, k=2, version="1")
     assert len(ctx.cache) == 1  # version 1, loaded once; failures cached nothing else
+
+
+def test_grouping_reads_columns_in_the_versions_feature_order(
+        ctx: Context, run_worker_burst) -> None:
+    """A version keeps the features it was fitted on: after the metric's features are
+    reordered (allowed once its batches are gone) records still map to the right
+    columns, and a renamed feature is refused instead of silently misread."""
+    feats, data, ids = setup_metric(ctx, "m", n=2)
+    _fit(ctx, run_worker_burst, {"method": "diagonal"})
+    X = data[0][0]
+    before = groupings.group(ctx, "m", as_table(feats, X), k=2)
+    for batch_id in ids:
+        batches.delete_batch(ctx, "m", batch_id)
+    metrics.put_metric(ctx, "m", list(reversed(feats)))
+    ctx.cache.clear()
+    after = groupings.group(ctx, "m", as_table(feats, X), k=2)
+    assert after["labels"] == before["labels"] and after["distances"] == before["distances"]
+    metrics.put_metric(ctx, "m", [*feats[:-1], "renamed"])
+    with pytest.raises(InvalidInput) as err:
+        groupings.group(ctx, "m", as_table([*feats[:-1], "renamed"], X), k=2)
+    assert err.value.errors[0]["field"] == "columns"
