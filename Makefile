@@ -25,6 +25,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python bench/fit.py
+	$(BIN)/python bench/few_batches.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .
