@@ -22,7 +22,7 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     if not settings.redis_url:
         print("likewise worker: set LIKEWISE_REDIS_URL", file=sys.stderr)
         return 2
-    run_worker(settings, burst=args.burst, name=args.name)
+    run_worker(settings, burst=args.burst, name=args.name, logging_level="INFO")
     return 0
 
 

@@ -45,9 +45,10 @@ def run_worker(
     simple: bool = False,
     max_jobs: int | None = None,
     connection: redis.Redis | None = None,
+    logging_level: str = "WARNING",
 ) -> Worker:
     """Build a worker and work (until stopped, or until the queue is empty with
     ``burst``); returns the worker."""
     worker = build_worker(settings, name, simple=simple, connection=connection)
-    worker.work(burst=burst, max_jobs=max_jobs, logging_level="WARNING")
+    worker.work(burst=burst, max_jobs=max_jobs, logging_level=logging_level)
     return worker
