@@ -17,7 +17,7 @@ from .grouping import group_records
 from .learners import Prepared, fit_prepared
 from .metric import FittedMetric
 from .scores import agreement
-from .stats import BatchStats
+from .stats import BatchStats, without
 
 _KEYS = ("ari", "nmi", "rand")
 
@@ -127,8 +127,15 @@ class CrossValidation:
         return self._held[b]
 
     def train_stats(self, i: int) -> BatchStats:
-        """``total − held-out``: O(d²), recomputed rather than kept (d² floats per fold)."""
-        return self.total - BatchStats.sum([self.stats[b] for b in self.folds[i].held_out])
+        """``total − held-out``: O(d²), recomputed rather than kept (d² floats per fold).
+
+        Summed from the training batches instead when the subtraction cancels
+        (:func:`service.core.stats.without`).
+        """
+        fold = self.folds[i]
+        held = BatchStats.sum([self.stats[b] for b in fold.held_out])
+        train = [self.stats[b] for b in fold.train]
+        return without(self.total, held, lambda: BatchStats.sum(train))
 
     def fold_metric(self, i: int, cand: Candidate) -> FittedMetric | None:
         """The candidate fitted on fold ``i``'s training batches (None if it cannot be)."""
@@ -187,10 +194,12 @@ class CrossValidation:
     # -------------------------------------------------------------- summaries
     def per_batch(self, cand: Candidate, keys: Sequence[str] = _KEYS) -> dict[str, list[float]]:
         """Each batch's scores averaged over the repeats in which it was held out."""
-        table = self._scores[cand]
+        by_batch: dict[int, list[_Scored]] = {}
+        for (_, bb), v in self._scores[cand].items():  # one pass: O(folds), not O(b²)
+            by_batch.setdefault(bb, []).append(v)
         out: dict[str, list[float]] = {key: [] for key in keys}
         for b in range(len(self.batches)):
-            rows = [v for (_, bb), v in table.items() if bb == b]
+            rows = by_batch[b]
             for key in keys:
                 out[key].append(float(np.mean([r.get(key) for r in rows])))
         return out

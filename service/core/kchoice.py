@@ -34,7 +34,7 @@ from . import kcurves
 from .errors import CoreError
 from .learners import fit_metric
 from .metric import FittedMetric
-from .stats import BatchStats
+from .stats import BatchStats, without
 from .validation import check_batch, check_matrix
 
 RULES = ("silhouette", "calinski_harabasz", "spread", "explained")
@@ -48,17 +48,26 @@ def calibrate_k_rule(
     k_max: int = DEFAULT_K_MAX,
     random_state: int | None = 0,
     total: BatchStats | None = None,
+    stats: Sequence[BatchStats] | None = None,
 ) -> dict[str, Any]:
     """Calibrate the rule for unknown k on labelled batches; a JSON-safe dict.
 
     ``total``: the summed statistics ``metric`` was fitted from, which include every
-    batch given here; defaults to the sum over ``batches``. Batch b is mapped by the
-    learner refitted on ``total − stats(b)``; when that is impossible (a single batch,
-    a method the learners do not know) by ``metric`` itself.
+    batch given here; defaults to the sum over ``batches``. ``stats``: each batch's
+    own statistics, when ``batches`` are subsamples of the batches that were summed;
+    defaults to the statistics of ``batches``. Batch b is mapped by the learner
+    refitted on ``total − stats(b)``; when that is impossible (a single batch, a
+    method the learners do not know) by ``metric`` itself.
     """
     k_max = _check_k_max(k_max)
     data = [check_batch(X, groups, metric.n_features) for X, groups in batches]
-    maps, mapping = _out_of_batch_maps(metric, data, total)
+    if stats is not None:
+        stats = list(stats)
+        if len(stats) != len(data) or any(
+            not isinstance(s, BatchStats) or s.n_features != metric.n_features for s in stats
+        ):
+            raise CoreError("stats must be one BatchStats per batch, same features", "stats")
+    maps, mapping = _out_of_batch_maps(metric, data, total, stats)
     curves = [
         kcurves.curves(m.transform(X), k_max, random_state)
         for m, (X, _) in zip(maps, data, strict=True)
@@ -114,7 +123,10 @@ def _check_k_max(k_max) -> int:
 
 
 def _out_of_batch_maps(
-    metric: FittedMetric, data: list[tuple[np.ndarray, np.ndarray]], total: BatchStats | None
+    metric: FittedMetric,
+    data: list[tuple[np.ndarray, np.ndarray]],
+    total: BatchStats | None,
+    parts: list[BatchStats] | None,
 ) -> tuple[list[FittedMetric], str]:
     """Per batch, the learner refitted without it; else ``metric`` (in sample).
 
@@ -124,8 +136,11 @@ def _out_of_batch_maps(
     in_sample = [metric] * len(data), "in_sample"
     if not data or (total is None and len(data) < 2):
         return in_sample
-    parts = [BatchStats.from_batch(X, codes) for X, codes in data]
+    if parts is None:
+        parts = [BatchStats.from_batch(X, codes) for X, codes in data]
     total = total if total is not None else BatchStats.sum(parts)
+    # the other batches are all known when the parts make up the whole total
+    complete = sum(p.n_batches for p in parts) == total.n_batches
     alpha = metric.alpha if metric.alpha > 0 else 1.0  # α is unused by "euclidean"
 
     def refit(stats: BatchStats) -> FittedMetric:
@@ -137,8 +152,13 @@ def _out_of_batch_maps(
             if not _same_map(refit(total), metric):
                 return in_sample
             maps = []
-            for part in parts:
-                rest = total - part
+            for i, part in enumerate(parts):
+                others = _without(parts, i)
+                rest = (
+                    without(total, part, lambda others=others: BatchStats.sum(others))
+                    if complete
+                    else total - part
+                )
                 if rest.n_batches < 1:
                     return in_sample
                 maps.append(refit(rest))

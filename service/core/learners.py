@@ -23,11 +23,14 @@ Learners:
     The generalised eigenproblem ``H v = μ (G − H + λI) v`` (within-group whitened).
     Components are the eigenvectors with ``μ`` above ``rel_tol`` × the largest,
     normalised to unit regularised within-group variance and weighted by the
-    canonical correlation ``sqrt(μ / (1 + μ))``. Whitened directions alone give every
-    retained direction the same weight however weakly it separates groups; the
-    canonical-correlation weight is the one the regression form implicitly uses
-    (ESL §4.3 / Hastie, Buja & Tibshirani 1995), bounded in [0, 1], so weak
-    directions cannot swamp k-means with within-group noise.
+    canonical correlation ``ρ = sqrt(μ / (1 + μ))``. Whitened directions alone give
+    every retained direction the same weight however weakly it separates groups; ρ is
+    bounded in [0, 1] and grows with μ, so weak directions cannot swamp k-means with
+    within-group noise (our choice). Same directions as ``closed_form``, other
+    weights: with ``G + λI = (G − H + λI) + H`` the closed form is
+    ``M = V diag(μ / (1 + μ)²) Vᵀ`` over the same eigenvectors, i.e. weights
+    ``sqrt(μ) / (1 + μ) = ρ · sqrt(1 − ρ²)``, which fall again for μ > 1 (strongly
+    separating directions get *less* weight). A test checks both against scipy.
 ``diagonal``
     Per-feature weights only: ``w_j² = H_jj / (G_jj − H_jj + λ)``, a regularised
     between/within variance ratio of feature j (an F-ratio up to degrees of freedom).
@@ -61,7 +64,11 @@ from .stats import BatchStats
 
 METHODS = ("closed_form", "discriminant", "diagonal", "euclidean")
 
-_SPREAD_TOL = 1e-10  # relative to |mean|: below this a feature has no spread
+# numerical tolerances (our choice, no source), a few orders above float64 rounding:
+# a feature constant within every batch has exactly zero scatter (stats.py centres
+# it exactly), so _SPREAD_TOL only has to reject variation at the rounding level
+# (~500 ulps) and can keep real spread on a large offset (spread 1 on 1e12: 1e-12)
+_SPREAD_TOL = 1e-13  # relative to |mean|: below this a feature has no spread
 _NULL_TOL = 1e-12  # eigenvalues of G below this × the largest are exact zeros
 
 

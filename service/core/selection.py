@@ -134,7 +134,9 @@ class MetricSelector:
             metric = fit_metric(self._cv.total, winner.method, winner.alpha or 1.0, self.max_rank)
         for w in caught:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-        metric = metric.with_k_rule(self._calibrate(metric, range(len(batches))))
+        metric = metric.with_k_rule(
+            self._calibrate(metric, range(len(batches)), self._cv.total)
+        )
         self.metric_ = metric
         self.report_ = self._report(cands, winner, reason, best, k_acc, k_trials, metric)
         self._report_progress("done", 1.0)
@@ -246,7 +248,7 @@ class MetricSelector:
             metric = self._cv.fold_metric(i, winner)
             if metric is None:
                 continue
-            rule = self._calibrate(metric, fold.train)
+            rule = self._calibrate(metric, fold.train, self._cv.train_stats(i))
             for b in fold.held_out:
                 X, codes = self._cv.held_out_data(b)
                 k_hat = kchoice.choose_k(metric.transform(X), rule, self.random_state)
@@ -254,14 +256,25 @@ class MetricSelector:
             self._report_progress("k-rule", 0.8 + 0.14 * done / len(folds))
         return (float(np.mean(hits)) if hits else None), len(hits)
 
-    def _calibrate(self, metric: FittedMetric, which: Sequence[int]) -> dict[str, Any]:
-        """The k rule from (at most ``max_k_batches``, evenly spread) batches."""
+    def _calibrate(
+        self, metric: FittedMetric, which: Sequence[int], total: BatchStats
+    ) -> dict[str, Any]:
+        """The k rule from (at most ``max_k_batches``, evenly spread) batches.
+
+        ``total``: the statistics ``metric`` was fitted from. With it and each batch's
+        full statistics, every batch is mapped by the learner refitted without it,
+        even when only a subsample of its records is grouped or only some batches
+        are used (otherwise calibration fell back to in-sample maps there).
+        """
         which = list(which)
         if len(which) > self.max_k_batches:
             pick = np.linspace(0, len(which) - 1, self.max_k_batches).round().astype(int)
             which = [which[j] for j in pick]
         data = [self._cv.held_out_data(b) for b in which]
-        return kchoice.calibrate_k_rule(metric, data, self.k_max, self.random_state)
+        return kchoice.calibrate_k_rule(
+            metric, data, self.k_max, self.random_state,
+            total=total, stats=[self._cv.stats[b] for b in which],
+        )
 
     def _report_progress(self, stage: str, fraction: float) -> None:
         if self.progress is not None:

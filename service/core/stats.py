@@ -13,6 +13,7 @@ records were posted, and a fold of cross-validation is ``total − held_out``.
 from __future__ import annotations
 
 import struct
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -22,6 +23,9 @@ from .errors import CoreError
 from .validation import check_batch
 
 _MAGIC = b"LWS1"
+# a removal that leaves less than this share of a feature's spread is redone by summing
+# (it would keep only ~10 of 16 digits); our choice, no source
+_CANCEL_TOL = 1e-6
 _HEADER = struct.Struct("<4sIqqq")  # magic, d, n_batches, n, n_groups
 
 
@@ -63,12 +67,17 @@ class BatchStats:
         mean = sums / n
         gram = X.T @ X
         G = gram - n * np.outer(mean, mean)
-        if np.any(np.diag(G) < 1e-6 * np.diag(gram)):
-            # large offsets cancel in the shortcut: centre first (exact, one more pass)
-            centred = X - mean
-            G = centred.T @ centred
         # Σ_c n_c m_c m_cᵀ with m_c the centred group means = Σ_c s_c s_cᵀ / n_c
         group_sums = raw_group_sums - counts[:, None] * mean
+        # 1e-6: loses at most ~6 of 16 digits to cancellation (our choice, no source)
+        if np.any(np.diag(G) < 1e-6 * np.diag(gram)):
+            # large offsets cancel in the shortcut: centre first (one more pass), for
+            # the group sums too (they cancel the same way). Shift by the first record
+            # before taking the mean, so a constant feature centres to exact zeros.
+            shifted = X - X[0]
+            centred = shifted - shifted.mean(axis=0)
+            G = centred.T @ centred
+            group_sums = np.asarray(member.T @ centred)
         H = (group_sums / counts[:, None]).T @ group_sums
         G = (G + G.T) / 2.0
         H = (H + H.T) / 2.0
@@ -151,3 +160,19 @@ class BatchStats:
         H = body[d * d : 2 * d * d].reshape(d, d)
         sums = body[2 * d * d :]
         return cls(int(n_batches), int(n), int(n_groups), G, H, sums)
+
+
+def without(
+    total: BatchStats, removed: BatchStats, kept: Callable[[], BatchStats]
+) -> BatchStats:
+    """``total − removed``; ``kept()`` (the sum of the other batches) when that cancels.
+
+    The subtraction is O(d²), but a feature whose spread in the remaining batches is
+    tiny beside its spread in the removed ones keeps only rounding noise (relative
+    error ≈ ε · G_removed / G_rest), which standardisation would blow up to unit
+    variance. Then the remaining batches are summed afresh (O(b·d²), no cancellation).
+    """
+    rest = total - removed
+    if np.any(np.diag(rest.G) < _CANCEL_TOL * np.diag(removed.G)):
+        return kept()
+    return rest

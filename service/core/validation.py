@@ -41,7 +41,12 @@ def check_batch(X, groups, n_features: int | None = None) -> tuple[np.ndarray, n
         )
     if arr.shape[0] < 2:
         raise NotEnoughDataError("a batch needs at least two records", "records")
-    codes = _group_codes(labels)
+    if labels.dtype.kind in "fc" and not np.isfinite(labels).all():
+        raise CoreError("groups contain NaN or infinity", "groups")
+    try:
+        codes = _group_codes(labels)
+    except TypeError as exc:  # e.g. None among text labels: no order to sort them by
+        raise CoreError(f"groups must be labels of one kind ({exc})", "groups") from exc
     if codes.max() < 1:
         raise NotEnoughDataError("a batch needs at least two groups", "groups")
     return arr, codes.astype(np.intp)
@@ -53,7 +58,10 @@ def _group_codes(labels: np.ndarray) -> np.ndarray:
     if labels.dtype.kind in "iu":
         lo, hi = int(labels.min()), int(labels.max())
         if hi - lo <= 2 * n:
-            offset = labels.astype(np.int64) - lo
+            # widen first (int8 differences overflow), keep unsigned unsigned (a cast
+            # of labels ≥ 2**63 to int64 overflows); the range is ≤ 2n, so it fits
+            wide = labels.astype(np.int64 if labels.dtype.kind == "i" else np.uint64)
+            offset = (wide - wide.min()).astype(np.intp)
             present = np.bincount(offset) > 0
             return (np.cumsum(present) - 1)[offset]
     _, codes = np.unique(labels, return_inverse=True)

@@ -42,6 +42,7 @@ def wine():
 
 
 def test_identity_metric_equals_sklearn_kmeans_from_same_centres(wine) -> None:
+    # reference: scikit-learn KMeans on the standardised records (METHOD.md, M = I)
     batches, (X, y) = wine
     metric = euclidean_metric(batches)
     standardised = (X - metric.mean) / metric.scales
@@ -64,6 +65,7 @@ def test_identity_metric_equals_sklearn_kmeans_plus_plus_with_same_seed(wine) ->
 
 
 def test_rank_one_map_uses_the_exact_solver(wine) -> None:
+    # Wang & Song (2011): 1-D k-means has an exact optimum; KMeans is the heuristic
     batches, (X, _) = wine
     base = euclidean_metric(batches)
     w = np.random.default_rng(1).normal(size=(1, base.n_features))

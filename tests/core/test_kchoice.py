@@ -121,6 +121,19 @@ def test_choose_k_bounds() -> None:
     assert choose_k(four, {"rule": "spread", "params": {"threshold": None}, "k_max": 6}) == 4
 
 
+def test_curves_ignore_a_large_common_offset() -> None:
+    # k-means is translation invariant, so are its curves; mapped records of a batch
+    # far from the pooled mean sit at a large offset in the learned space
+    from service.core.kcurves import curves
+
+    rng = np.random.default_rng(0)
+    Z = rng.normal(size=(60, 2)) * 0.3
+    Z[:, 0] += 4.0 * (np.arange(60) % 3)
+    near, far = curves(Z, 6), curves(Z + 1e9, 6)
+    np.testing.assert_allclose(far["inertia"], near["inertia"], rtol=1e-6)
+    np.testing.assert_allclose(far["silhouette"][1:], near["silhouette"][1:], rtol=1e-6)
+
+
 @pytest.mark.parametrize(
     "rule",
     [{"rule": "guess"}, {"rule": "silhouette", "k_max": 1}, {"rule": "spread", "k_max": 2.5}],
@@ -158,11 +171,15 @@ def test_invalid_batches_are_rejected() -> None:
         calibrate_k_rule(identity_metric(5), [(np.zeros((4, 3)), [0, 0, 1, 1])])
     with pytest.raises(CoreError):
         calibrate_k_rule(identity_metric(5), [blob_batch(1)], k_max=1)
+    with pytest.raises(CoreError) as info:  # per-batch statistics must match the batches
+        calibrate_k_rule(identity_metric(5), [blob_batch(1), blob_batch(2)],
+                         stats=[BatchStats.from_batch(*blob_batch(1))])
+    assert info.value.field == "stats"
 
 
 def test_curves_building_blocks_match_scipy_and_sklearn() -> None:
     # references: scipy's cut_tree for cutting a Ward tree, scikit-learn's
-    # silhouette_score for the silhouette (Rousseeuw 1987)
+    # silhouette_score for the silhouette
     from scipy.cluster.hierarchy import cut_tree, linkage
     from scipy.spatial.distance import pdist, squareform
     from sklearn.metrics import adjusted_rand_score, silhouette_score

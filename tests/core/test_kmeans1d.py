@@ -141,3 +141,34 @@ def test_invalid_input(x, k, field: str) -> None:
     with pytest.raises(CoreError) as info:
         kmeans_1d(x, k)
     assert info.value.field == field
+
+
+def quadratic_dp_cost(x: np.ndarray, k: int) -> float:
+    """The plain O(k·n²) dynamic programme of Wang & Song (2011), no speed-ups."""
+    s = np.sort(x)
+    n = s.size
+    c1 = np.concatenate(([0.0], np.cumsum(s)))
+    c2 = np.concatenate(([0.0], np.cumsum(s * s)))
+
+    def cost(i: int, j: int) -> float:  # values s[i:j]
+        return c2[j] - c2[i] - (c1[j] - c1[i]) ** 2 / (j - i)
+
+    D = [0.0] + [cost(0, j) for j in range(1, n + 1)]
+    for m in range(2, k + 1):
+        best = [min(D[i] + cost(i, j) for i in range(m - 1, j)) for j in range(m, n + 1)]
+        D = [np.inf] * m + best
+    return float(D[n])
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_equals_the_plain_dynamic_programme_on_medium_inputs(seed: int) -> None:
+    # brute force stops at ~11 values; this checks the divide-and-conquer layers on
+    # 60–150 values (ties included) against the recurrence evaluated in full
+    rng = np.random.default_rng(100 + seed)
+    n = int(rng.integers(60, 150))
+    x = rng.normal(rng.integers(-5, 5, size=n).astype(float), 0.7)
+    if seed % 2:
+        x = np.round(x, 1)  # many ties
+    for k in (2, 3, 5, 9):
+        _, _, cost = kmeans_1d(x, k)
+        assert cost == pytest.approx(quadratic_dp_cost(x, k), rel=1e-9, abs=1e-9)

@@ -7,7 +7,8 @@
   "Penalized discriminant analysis", Ann. Statist. Reference implementation:
   scikit-learn ``LinearDiscriminantAnalysis(solver="eigen")``.
 * k = 2: the map is rank one along Fisher's direction (G + λI)⁻¹(μ₁ − μ₂)
-  (ESL Ex. 4.2).
+  (ESL Ex. 4.2); as λ → 0, scikit-learn's LDA direction on breast cancer Wisconsin
+  diagnostic (UCI, Wolberg et al.).
 * Exact recovery with n − 1 ≤ d generic records (a fact of the method, METHOD.md).
 Data: scikit-learn's bundled wine (UCI, Forina et al.) and optical digits (UCI,
 Alpaydin & Kaynak). ARI: Hubert & Arabie (1985), via scikit-learn.
@@ -20,6 +21,7 @@ import warnings
 
 import numpy as np
 import pytest
+import scipy.linalg
 from numpy.testing import assert_allclose
 from scipy.linalg import subspace_angles
 from sklearn.discriminant_analysis import LinearDiscriminantAnalysis
@@ -44,6 +46,8 @@ def _raw_row_space(metric) -> np.ndarray:
 @pytest.mark.parametrize("name", ["wine", "digits"])
 @pytest.mark.parametrize("method", ["closed_form", "discriminant"])
 def test_subspace_equals_the_lda_subspace(name: str, method: str) -> None:
+    # Source: ESL §4.3 and Ex. 4.3; Hastie, Buja & Tibshirani (1995). Reference
+    # implementation: scikit-learn LinearDiscriminantAnalysis(solver="eigen").
     X, y = load_open(name)
     # digits has pixels that are 0 in every image: LDA's within-class scatter is
     # singular there, so scikit-learn gets only the pixels that vary; our learner keeps
@@ -78,6 +82,45 @@ def test_two_groups_give_rank_one_along_fishers_direction(alpha: float) -> None:
     assert cos == pytest.approx(1.0, abs=1e-9)
 
 
+@pytest.mark.parametrize("alpha", [1e-3, 0.5])
+def test_closed_form_and_discriminant_weigh_the_same_directions_differently(
+    alpha: float,
+) -> None:
+    # Derivation (ours): with W = G − H + λI and the generalised eigenpairs
+    # H V = W V diag(μ), VᵀWV = I, we have G + λI = W + H, so
+    #   (G + λI)⁻¹ H (G + λI)⁻¹ = V diag(μ / (1 + μ)²) Vᵀ        (closed form)
+    # and the discriminant learner's weights ρ = sqrt(μ / (1 + μ)) give
+    #   V diag(μ / (1 + μ)) Vᵀ.                                   (discriminant)
+    # Reference eigensolver: scipy.linalg.eigh(H, W). (The closed form's weight
+    # ρ·sqrt(1 − ρ²) is the optimal-scoring ↔ LDA factor of ESL §12.5 — from memory.)
+    # Both maps are rescaled by _normalise, so compare up to one positive factor.
+    X, y = load_open("wine")
+    stats = BatchStats.from_batch(X, y)
+    closed = fit_metric(stats, "closed_form", alpha=alpha)
+    discr = fit_metric(stats, "discriminant", alpha=alpha)
+    s = closed.scales
+    G, H = stats.G / np.outer(s, s), stats.H / np.outer(s, s)
+    lam = alpha * np.trace(G) / G.shape[0]
+    mu, V = scipy.linalg.eigh(H, G - H + lam * np.eye(G.shape[0]))
+    mu, V = mu[-2:], V[:, -2:]  # three groups: two non-zero eigenvalues
+    for metric, weights in ((closed, mu / (1 + mu) ** 2), (discr, mu / (1 + mu))):
+        ref = V @ np.diag(weights) @ V.T
+        factor = np.sum(metric.matrix * ref) / np.sum(ref * ref)
+        assert factor > 0
+        assert_allclose(metric.matrix, factor * ref, atol=1e-10 * np.abs(ref * factor).max())
+
+
+def test_two_groups_match_scikit_learns_fisher_direction() -> None:
+    # As λ → 0 the rank-1 map must be LDA's single discriminant direction S_W⁻¹(μ₁ − μ₂)
+    # (ESL Ex. 4.2), computed independently by scikit-learn's LDA (eigen solver).
+    X, y = load_open("breast_cancer")
+    metric = fit_metric(BatchStats.from_batch(X, y), "closed_form", alpha=1e-10)
+    assert metric.rank == 1
+    lda = LinearDiscriminantAnalysis(solver="eigen").fit(X, y)
+    angle = subspace_angles(_raw_row_space(metric), lda.scalings_[:, :1])
+    assert np.degrees(angle).max() < 1e-4  # ~0: tolerance for rounding only
+
+
 def test_exact_recovery_when_records_are_linearly_independent() -> None:
     # A fact of the method (METHOD.md): with n − 1 ≤ d generic records the centred
     # records are linearly independent, the regression fits the normalised assignment
@@ -110,6 +153,20 @@ def test_zero_spread_feature_warns_and_gets_scale_one() -> None:
     assert_allclose(metric.components[:, 1], 0.0, atol=1e-12)
 
 
+def test_real_spread_on_a_huge_offset_is_kept() -> None:
+    # spread ~1 on values ~1e12 (ulp 1.2e-4) is real variation, not rounding: the fit
+    # must match the fit of the unshifted records (translation invariance, METHOD.md)
+    X, y = load_open("iris")
+    plain = fit_metric(BatchStats.from_batch(X, y), "closed_form", alpha=0.01)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ZeroSpreadWarning)
+        shifted = fit_metric(BatchStats.from_batch(X + 1e12, y), "closed_form", alpha=0.01)
+    assert shifted.info["zero_spread_features"] == []
+    # tolerances: storing iris + 1e12 already rounds each value by up to ~1e-4
+    assert_allclose(shifted.scales, plain.scales, rtol=1e-3)
+    assert_allclose(shifted.matrix, plain.matrix, rtol=1e-2, atol=1e-2 * np.abs(plain.matrix).max())
+
+
 def test_no_feature_with_spread_is_an_error() -> None:
     X = np.tile([[1.0, 2.0]], (6, 1))
     with pytest.raises(CoreError) as info:
@@ -137,6 +194,12 @@ def test_rank_is_bounded_by_the_groups_and_by_max_rank() -> None:
     for method in ("closed_form", "discriminant"):
         assert fit_metric(stats, method, alpha=0.01).rank == 4
         assert fit_metric(stats, method, alpha=0.01, max_rank=2).rank == 2
+    # and by d when the batches hold more groups than features: Σ (k_b − 1) = 6 > d = 3
+    few = BatchStats.sum(
+        BatchStats.from_batch(rng.normal(size=(40, 3)), np.arange(40) % 4) for _ in range(2)
+    )
+    for method in ("closed_form", "discriminant"):
+        assert fit_metric(few, method, alpha=0.01).rank == 3
 
 
 def test_diagonal_weights_follow_each_features_separation() -> None:

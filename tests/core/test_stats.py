@@ -91,8 +91,11 @@ def test_bytes_round_trip_exactly() -> None:
         ([[0.0, 1.0], [1.0, 2.0], [3.0, 1.0]], [0, 0, 0], NotEnoughDataError, "groups"),
         ([[0.0, 1.0]], [0], NotEnoughDataError, "records"),
         ([[0.0, 1.0], [1.0, 2.0]], [0, 1, 1], CoreError, "groups"),
+        ([[0.0, 1.0], [1.0, 2.0]], [None, "a"], CoreError, "groups"),
+        ([[0.0, 1.0], [1.0, 2.0]], [0.5, np.nan], CoreError, "groups"),
     ],
-    ids=["nan", "inf", "ragged", "one-group", "one-record", "label-count"],
+    ids=["nan", "inf", "ragged", "one-group", "one-record", "label-count", "unsortable-labels",
+         "nan-label"],
 )
 def test_invalid_batches_raise_domain_errors(X, groups, error, field) -> None:
     with pytest.raises(error) as info:
