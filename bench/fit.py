@@ -189,7 +189,7 @@ def scaling_table(sizes: list[int], d: int, batch_records: int, seed: int) -> No
     )
 
 
-def kmeans1d_table(sizes: list[int], k: int, seed: int) -> None:
+def optimal1d_table(sizes: list[int], k: int, seed: int) -> None:
     print(f"\n3. Exact 1-D k-means vs scikit-learn KMeans (k = {k}, k-means++, n_init=3)")
     print(f"{'records':>10}{'exact s':>10}{'KMeans s':>10}{'cost ratio':>12}")
     rng = np.random.default_rng(seed)
@@ -226,7 +226,7 @@ def main(argv: list[str] | None = None) -> None:
             n_train=8 if args.quick else 20, n_test=10 if args.quick else 40, seed=args.seed
         )
         scaling_table(sizes, d=50, batch_records=5_000, seed=args.seed)
-        kmeans1d_table(sizes, k=5, seed=args.seed)
+        optimal1d_table(sizes, k=5, seed=args.seed)
     print(f"\ntotal {time.perf_counter() - started:.1f} s")
 
 

@@ -16,6 +16,7 @@ LIKEWISE_FIT_TIMEOUT        fit_timeout (seconds)          1800
 LIKEWISE_FIT_RETRIES        fit_retries                    2
 LIKEWISE_MAX_BATCH_RECORDS  max_batch_records              100000
 LIKEWISE_MAX_BATCH_FEATURES max_batch_features             1000
+LIKEWISE_MAX_GROUPS         max_groups (largest k asked for) 100
 LIKEWISE_MAX_BATCH_BYTES    max_batch_bytes (raw float64)  64 MiB
 LIKEWISE_MAX_REQUEST_BYTES  max_request_bytes              64 MiB
 LIKEWISE_HOST               host                           ``127.0.0.1``
@@ -69,6 +70,7 @@ class Settings:
     fit_retries: int = 2
     max_batch_records: int = 100_000
     max_batch_features: int = 1000
+    max_groups: int = 100
     max_batch_bytes: int = 64 * MIB
     max_request_bytes: int = 64 * MIB
     host: str = "127.0.0.1"
@@ -81,7 +83,7 @@ class Settings:
             raise ValueError("key_prefix must be a non-empty string without whitespace")
         if not self.queue_name:
             object.__setattr__(self, "queue_name", f"{self.key_prefix}-fits")
-        for name in ("fit_timeout", "max_batch_records", "max_batch_features",
+        for name in ("fit_timeout", "max_batch_records", "max_batch_features", "max_groups",
                      "max_batch_bytes", "max_request_bytes", "workers"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")

@@ -5,9 +5,9 @@ Nothing here imports flask, redis, rq or marshmallow (a test checks it).
 
 from .errors import CoreError, NotEnoughDataError, ZeroSpreadWarning
 from .grouping import Grouping, group_records
-from .kmeans1d import kmeans_1d
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
+from .optimal1d import kmeans_1d
 from .scores import agreement
 from .selection import MetricSelector, select_metric
 from .stats import BatchStats

@@ -16,7 +16,7 @@ from sklearn.cluster import KMeans
 from sklearn.exceptions import ConvergenceWarning
 from threadpoolctl import ThreadpoolController
 
-from .kmeans1d import kmeans_1d
+from .optimal1d import kmeans_1d
 
 # rows per block when measuring distances to every centre (bounded memory)
 _BLOCK_ELEMENTS = 1 << 22

@@ -3,7 +3,7 @@
 Records are mapped into the learned space (``z = L · ((x − mean) / scales)``) and
 grouped by k-means there: k-means++ with several restarts and a fixed seed, so the
 same input always gives the same output. A rank-1 map groups with the exact
-one-dimensional solver (:func:`service.core.kmeans1d.kmeans_1d`), the global
+one-dimensional solver (:func:`service.core.optimal1d.kmeans_1d`), the global
 optimum. Groups are numbered in order of their first record.
 """
 

@@ -22,11 +22,14 @@ if TYPE_CHECKING:
     from service.context import Context
 
 
-def _check_k(k: Any) -> int | None:
+def _check_k(k: Any, limit: int) -> int | None:
     if k is None or k == "auto":
         return None
     if isinstance(k, bool) or not isinstance(k, int) or k < 1:
         raise InvalidInput.field("k", 'a whole number ≥ 1 or "auto"')
+    if k > limit:
+        # exact and heuristic k-means both cost O(k·n) per pass: cap what one request asks
+        raise InvalidInput.field("k", f"at most {limit} groups per request (LIKEWISE_MAX_GROUPS)")
     return k
 
 
@@ -56,7 +59,7 @@ def group(
     version: int | None = None,
 ) -> dict[str, Any]:
     metric = require_metric(ctx, name)
-    k_value = _check_k(k)
+    k_value = _check_k(k, ctx.settings.max_groups)
     if version is None:
         version = ctx.storage.active_version(name)
         if version is None:

@@ -134,3 +134,9 @@ def test_every_error_of_a_fitted_metric(
     limited = SpecClient(create_app(context=small), ctx.settings.admin_token)
     with unchanged():
         assert_problem(limited.post(URL, json={"records": records}), 413, "records")
+    # k is capped per request (LIKEWISE_MAX_GROUPS): k-means costs grow with k·n
+    capped = Context.build(ctx.settings.replace(max_groups=3), connection=ctx.redis)
+    capped_api = SpecClient(create_app(context=capped), ctx.settings.admin_token)
+    with unchanged():
+        assert_problem(capped_api.post(URL, json={"records": records, "k": 4}), 422, "k")
+    assert capped_api.post(URL, json={"records": records, "k": 3}).status_code == 200
