@@ -14,6 +14,9 @@ from typing import Any
 from flask import Flask, Response, json, request
 from marshmallow import ValidationError
 from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import OutOfMemoryError as RedisOutOfMemoryError
+from redis.exceptions import ReadOnlyError as RedisReadOnlyError
+from redis.exceptions import ResponseError as RedisResponseError
 from redis.exceptions import TimeoutError as RedisTimeoutError
 from werkzeug.exceptions import HTTPException, MethodNotAllowed
 
@@ -134,6 +137,20 @@ def _redis_down(exc: Exception) -> Response:
     )
 
 
+def _redis_refused(exc: Exception) -> Response:
+    """Redis answers but refuses writes: a replica, out of memory, or it cannot persist
+    (MISCONF). Nothing was written; the client may retry later."""
+    if isinstance(exc, RedisResponseError) and not isinstance(
+        exc, (RedisReadOnlyError, RedisOutOfMemoryError)
+    ) and not str(exc).startswith("MISCONF"):
+        return _unexpected(exc)
+    log.error("Redis refuses writes: %s", exc)
+    return problem_response(
+        503, "Service unavailable", "The data store refuses writes right now; try again later.",
+        "unavailable", headers=_STATUS_HEADERS[503],
+    )
+
+
 def _unexpected(exc: Exception) -> Response:
     if isinstance(exc, HTTPException):
         return _http_error(exc)
@@ -151,4 +168,5 @@ def register_problem_handlers(app: Flask) -> None:
     app.register_error_handler(HTTPException, _http_error)
     app.register_error_handler(RedisConnectionError, _redis_down)
     app.register_error_handler(RedisTimeoutError, _redis_down)
+    app.register_error_handler(RedisResponseError, _redis_refused)
     app.register_error_handler(Exception, _unexpected)

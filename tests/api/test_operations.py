@@ -10,6 +10,7 @@ import time
 from collections.abc import Callable, Iterator
 
 import pytest
+import redis
 
 from service.api import create_app
 from service.config import Settings
@@ -175,6 +176,35 @@ def test_unexpected_exception_is_500_problem_without_trace(ctx: Context) -> None
     assert body["type"] == "https://likewise.dev/problems/internal-error"
     text = resp.get_data(as_text=True)
     assert "secret internals" not in text and "Traceback" not in text
+
+
+@pytest.mark.parametrize("exc", [
+    redis.exceptions.ReadOnlyError("READONLY You can't write against a read only replica."),
+    redis.exceptions.OutOfMemoryError("OOM command not allowed when used memory > 'maxmemory'."),
+    redis.exceptions.ResponseError("MISCONF Redis is configured to save RDB snapshots, but..."),
+])
+def test_redis_refusing_writes_is_503_problem(ctx: Context, exc: Exception) -> None:
+    # Fault injection: a real Redis refusing writes cannot be provoked on the shared server.
+    app = create_app(context=ctx)
+
+    @app.post("/refuse")
+    def refuse() -> str:
+        raise exc
+
+    resp = app.test_client().post("/refuse")
+    assert resp.status_code == 503 and resp.mimetype == "application/problem+json"
+    assert resp.headers["Retry-After"] == "5"
+    assert resp.get_json()["type"].endswith("/unavailable")
+
+
+def test_other_redis_errors_stay_500(ctx: Context) -> None:
+    app = create_app(context=ctx)
+
+    @app.get("/wrongtype")
+    def wrongtype() -> str:
+        raise redis.exceptions.ResponseError("WRONGTYPE Operation against a key ...")
+
+    assert app.test_client().get("/wrongtype").status_code == 500
 
 
 def test_redis_down_is_503_problem() -> None:
