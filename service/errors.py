@@ -1,7 +1,7 @@
 """Service errors: one family, each carrying what an RFC 9457 problem body needs.
 
 Use cases raise these; the HTTP layer turns them into ``application/problem+json``
-(``type`` = ``https://likewise.dev/problems/<slug>``).
+(``type`` = ``urn:likewise:problem:<slug>``).
 """
 
 from __future__ import annotations
@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from service.core.errors import CoreError
 
-PROBLEM_BASE = "https://likewise.dev/problems/"
+PROBLEM_BASE = "urn:likewise:problem:"
 
 
 class ServiceError(Exception):

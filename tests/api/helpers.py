@@ -13,7 +13,7 @@ from .spec import SpecClient
 
 # Iris (Fisher 1936), as bundled with scikit-learn; the feature names are ours.
 IRIS_FEATURES = ["sepal_length", "sepal_width", "petal_length", "petal_width"]
-PROBLEM_BASE = "https://likewise.dev/problems/"
+PROBLEM_BASE = "urn:likewise:problem:"
 SLUGS = {
     400: {"malformed-request"}, 401: {"unauthorized"}, 404: {"not-found"},
     405: {"method-not-allowed"}, 409: {"conflict"}, 413: {"payload-too-large"},

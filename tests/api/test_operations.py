@@ -173,7 +173,7 @@ def test_unexpected_exception_is_500_problem_without_trace(ctx: Context) -> None
     assert resp.mimetype == "application/problem+json"
     body = resp.get_json()
     assert body["status"] == 500 and body["instance"] == "/boom"
-    assert body["type"] == "https://likewise.dev/problems/internal-error"
+    assert body["type"] == "urn:likewise:problem:internal-error"
     text = resp.get_data(as_text=True)
     assert "secret internals" not in text and "Traceback" not in text
 
@@ -194,7 +194,7 @@ def test_redis_refusing_writes_is_503_problem(ctx: Context, exc: Exception) -> N
     resp = app.test_client().post("/refuse")
     assert resp.status_code == 503 and resp.mimetype == "application/problem+json"
     assert resp.headers["Retry-After"] == "5"
-    assert resp.get_json()["type"].endswith("/unavailable")
+    assert resp.get_json()["type"] == "urn:likewise:problem:unavailable"
 
 
 def test_other_redis_errors_stay_500(ctx: Context) -> None:

@@ -49,7 +49,7 @@ def test_errors_carry_problem_fields() -> None:
     assert isinstance(err, InvalidInput) and err.status == 422
     assert err.errors == [{"field": "k", "message": err.detail}]
     body = NotFound("metric 'x' does not exist").to_problem("/v1/metrics/x")
-    assert body == {"type": "https://likewise.dev/problems/not-found", "title": "Not found",
+    assert body == {"type": "urn:likewise:problem:not-found", "title": "Not found",
                     "status": 404, "detail": "metric 'x' does not exist",
                     "instance": "/v1/metrics/x"}
 
