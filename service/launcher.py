@@ -14,6 +14,7 @@ import socket
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -120,9 +121,77 @@ def _stop(procs: list[tuple[str, subprocess.Popen]], timeout: float = 15.0) -> N
             proc.wait(timeout=timeout)
 
 
+class _Child:
+    """One supervised child process; fit workers are restarted when they die."""
+
+    def __init__(self, name: str, proc: subprocess.Popen, env: dict[str, str] | None = None,
+                 restart: bool = False) -> None:
+        self.name, self.proc, self.env, self.restart = name, proc, env, restart
+        self.restarts: list[float] = []
+
+    @classmethod
+    def start(cls, name: str, cmd: list[str], env: dict[str, str],
+              restart: bool = False) -> _Child:
+        return cls(name, subprocess.Popen(cmd, env=env), env, restart)
+
+    def respawn(self, cmd: list[str]) -> bool:
+        """Start again unless it died too often (RESTART_LIMIT within RESTART_WINDOW s)."""
+        now = time.monotonic()
+        self.restarts = [t for t in self.restarts if now - t < RESTART_WINDOW_SECONDS]
+        if len(self.restarts) >= RESTART_LIMIT:
+            return False
+        self.restarts.append(now)
+        self.proc = subprocess.Popen(cmd, env=self.env)
+        return True
+
+
+RESTART_LIMIT = 5
+RESTART_WINDOW_SECONDS = 60.0
+
+
+def _worker_cmd(slot: int) -> list[str]:
+    # a fresh name per start: a killed worker's registration may linger until it expires
+    name = f"worker-{os.getpid()}-{slot}-{secrets.token_hex(2)}"
+    return [sys.executable, "-m", "service.cli", "worker", "--name", name]
+
+
+def _stop(children: list[_Child], timeout: float = 15.0) -> None:
+    """Stop children in reverse start order: server, workers, then Redis last."""
+    for child in reversed(children):
+        proc = child.proc
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(timeout=timeout)
+
+
+def _supervise(children: list[_Child], stopped: Callable[[], bool]) -> bool:
+    """Watch the children until asked to stop; returns True if one failed for good.
+
+    A fit worker that dies (killed, out of memory) is started again — its fit is
+    re-queued by the queue's own retry — unless it keeps dying. Redis or the HTTP
+    server dying stops everything.
+    """
+    while not stopped():
+        for slot, child in enumerate(children):
+            code = child.proc.poll()
+            if code is None:
+                continue
+            if child.restart and child.respawn(_worker_cmd(slot)):
+                _say(f"{child.name} exited with code {code}; started it again")
+                continue
+            _say(f"{child.name} exited with code {code}; stopping everything")
+            return True
+        time.sleep(0.2)
+    return False
+
+
 def run(settings: Settings) -> int:
     """Start Redis (unless given), workers and the HTTP server; block until stopped."""
-    procs: list[tuple[str, subprocess.Popen]] = []
+    children: list[_Child] = []
     env = dict(os.environ)
     stopping = False
 
@@ -139,7 +208,7 @@ def run(settings: Settings) -> int:
             _say(f"using Redis at {url}")
         else:
             proc, url = start_embedded_redis(settings.data_dir)
-            procs.append(("redis", proc))
+            children.append(_Child("redis", proc))
             _say(f"embedded Redis persisting under {Path(settings.data_dir).resolve() / 'redis'}")
         env["LIKEWISE_REDIS_URL"] = url
 
@@ -153,9 +222,8 @@ def run(settings: Settings) -> int:
              if not settings.admin_token else "admin token taken from LIKEWISE_ADMIN_TOKEN")
 
         for i in range(settings.workers):
-            name = f"worker-{os.getpid()}-{i}"
-            cmd = [sys.executable, "-m", "service.cli", "worker", "--name", name]
-            procs.append((f"worker-{i}", subprocess.Popen(cmd, env=env)))
+            slot = len(children)
+            children.append(_Child.start(f"worker-{i}", _worker_cmd(slot), env, restart=True))
         bind = f"{settings.host}:{settings.port}"
         gunicorn = [
             sys.executable, "-m", "gunicorn",
@@ -165,18 +233,9 @@ def run(settings: Settings) -> int:
             "--no-control-socket",  # several deployments may share a host
             "service.api:create_app()",
         ]
-        procs.append(("http", subprocess.Popen(gunicorn, env=env)))
+        children.append(_Child.start("http", gunicorn, env))
         _say(f"serving on http://{bind}  ({settings.workers} fit worker(s)); Ctrl-C stops all")
-
-        crashed = False
-        while not stopping:
-            for name, proc in procs:
-                if proc.poll() is not None:
-                    _say(f"{name} exited with code {proc.returncode}; stopping everything")
-                    stopping = crashed = True
-                    break
-            time.sleep(0.2)
-        return 1 if crashed else 0
+        return 1 if _supervise(children, lambda: stopping) else 0
     finally:
-        _stop(procs)
+        _stop(children)
         _say("stopped")

@@ -220,3 +220,42 @@ def test_embedded_redis_token_file_and_persistence(tmp_path):
         assert status == 200 and body["features"] == ["a", "b"]
     finally:
         assert _stop(proc2) == 0
+
+
+def _worker_pids(launcher_pid: int) -> set[int]:
+    out = subprocess.run(["ps", "-o", "pid=,args=", "--ppid", str(launcher_pid)],
+                         capture_output=True, text=True)
+    return {int(line.split()[0]) for line in out.stdout.splitlines()
+            if "service.cli worker" in line}
+
+
+@pytest.mark.timeout(300)
+def test_a_killed_fit_worker_is_started_again(settings, tmp_path):
+    env = {
+        "LIKEWISE_REDIS_URL": settings.redis_url,
+        "LIKEWISE_KEY_PREFIX": settings.key_prefix,
+        "LIKEWISE_QUEUE": settings.queue_name,
+        "LIKEWISE_ADMIN_TOKEN": TOKEN,
+        "LIKEWISE_WORKERS": "1",
+    }
+    proc, base = _start(env, tmp_path)
+    http = Http(base)
+
+    def worker_names() -> set[str]:
+        status, queues, _ = http("GET", "/v1/queues")
+        assert status == 200
+        return {w["name"] for w in queues["workers"]}
+
+    try:
+        (old,) = _wait(lambda: _worker_pids(proc.pid), 30, "a worker process", proc)
+        before = _wait(worker_names, 30, "a registered worker", proc)
+        os.kill(old, signal.SIGKILL)
+        new = _wait(lambda: _worker_pids(proc.pid) - {old}, 30, "a new worker process", proc)
+        assert old not in new and proc.poll() is None
+        # the replacement registers under a fresh name (the killed one may linger until
+        # its registration expires)
+        _wait(lambda: worker_names() - before, 30, "the new worker to register", proc)
+        assert http("GET", "/readyz")[0] == 200
+    finally:
+        assert _stop(proc) == 0
+    assert _children_gone(proc.pid)

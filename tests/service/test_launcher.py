@@ -1,7 +1,10 @@
-"""The launcher's admin token: generated once (mode 600), then reused; never empty."""
+"""The launcher: its admin token (generated once, mode 600, never empty) and the
+restart limit of fit workers."""
 
 from __future__ import annotations
 
+import os
+import sys
 from pathlib import Path
 
 from service.config import Settings
@@ -31,3 +34,19 @@ def test_an_empty_token_file_is_replaced_not_used(tmp_path: Path) -> None:
     token, created = ensure_admin_token(Settings(data_dir=str(tmp_path)))
     assert created and token and path.read_text().strip() == token
     assert path.stat().st_mode & 0o777 == 0o600
+
+
+def test_a_worker_that_keeps_dying_is_given_up_after_the_restart_limit():
+    from service import launcher
+
+    cmd = [sys.executable, "-c", "raise SystemExit(3)"]
+    child = launcher._Child.start("worker-0", cmd, dict(os.environ), restart=True)
+    child.proc.wait(timeout=30)
+    restarted = 0
+    while child.respawn(cmd):
+        child.proc.wait(timeout=30)
+        restarted += 1
+        assert restarted <= launcher.RESTART_LIMIT
+    assert restarted == launcher.RESTART_LIMIT
+    # supervision then reports a failure for good (and the launcher stops everything)
+    assert launcher._supervise([child], stopped=lambda: False) is True
