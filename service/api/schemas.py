@@ -15,10 +15,12 @@ from marshmallow import Schema, ValidationError, fields, validate, validates_sch
 from werkzeug.exceptions import BadRequest
 
 from service.errors import MalformedRequest
+from service.usecases import fits
 
-FIT_METHODS = ("auto", "closed_form", "discriminant", "diagonal", "euclidean")
-ACTIVATE_POLICIES = ("if_better", "always", "never")
-FIT_STATUSES = ("queued", "running", "succeeded", "failed")
+# one source of truth: the use case's lists (the methods come from the core's learners)
+FIT_METHODS = fits.METHODS
+ACTIVATE_POLICIES = fits.ACTIVATE
+FIT_STATUSES = fits.STATUSES
 
 
 class JSONArray(fields.Field):

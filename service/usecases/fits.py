@@ -16,6 +16,7 @@ import time
 from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
+from service.core import METHODS as LEARNERS
 from service.errors import Conflict, InvalidInput, NotFound
 from service.storage import utcnow
 
@@ -30,7 +31,7 @@ if TYPE_CHECKING:
 JOB_FUNC = "workers.jobs.run_fit"
 FAILURE_CALLBACK = "workers.jobs.on_fit_failure"
 STATUSES = ("queued", "running", "succeeded", "failed")
-METHODS = ("auto", "closed_form", "discriminant", "diagonal", "euclidean")
+METHODS = ("auto", *LEARNERS)  # a new learner registered in the core is offered here
 ACTIVATE = ("if_better", "always", "never")
 DEFAULTS: dict[str, Any] = {
     "method": "auto", "activate": "if_better", "alphas": None, "n_folds": 5,

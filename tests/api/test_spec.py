@@ -48,6 +48,19 @@ def test_v1_operations_require_bearer_and_probes_do_not() -> None:
                 assert op.get("security") == [], f"{method} {path} is meant to be open"
 
 
+def test_spec_enums_follow_the_code() -> None:
+    """Learners, activation policies and fit states are listed once in code; the spec
+    must say the same (adding a learner to the core must show up here)."""
+    from service.core import METHODS
+    from service.usecases import fits
+
+    schemas = load_spec()["components"]["schemas"]
+    assert schemas["FitMethod"]["enum"] == ["auto", *METHODS]
+    assert schemas["LearnedMethod"]["enum"] == list(METHODS)
+    assert schemas["ActivatePolicy"]["enum"] == list(fits.ACTIVATE)
+    assert schemas["FitStatus"]["enum"] == list(fits.STATUSES)
+
+
 def test_every_error_response_is_problem_json() -> None:
     spec = load_spec()
     responses = spec["components"]["responses"]
