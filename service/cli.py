@@ -27,9 +27,13 @@ def _cmd_worker(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import run_demo
+    from .demo import DemoError, run_demo
 
-    return run_demo(url=args.url, token=args.token, weeks=args.weeks, seed=args.seed)
+    try:
+        return run_demo(url=args.url, token=args.token, weeks=args.weeks, seed=args.seed)
+    except DemoError as exc:
+        print(f"likewise demo: {exc}", file=sys.stderr)
+        return 1
 
 
 def build_parser() -> argparse.ArgumentParser:

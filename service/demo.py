@@ -53,6 +53,11 @@ class Client:
             except ValueError:
                 payload = raw.decode(errors="replace")
             return exc.code, payload
+        except urllib.error.URLError as exc:
+            raise DemoError(
+                f"cannot reach {self.base_url} ({exc.reason}); is `likewise run` serving "
+                "there? Pass --url or set LIKEWISE_HOST/LIKEWISE_PORT as for `likewise run`"
+            ) from exc
 
     def expect(self, method: str, path: str, body: Any = None, ok=(200, 201, 202, 204)) -> Any:
         status, payload = self.call(method, path, body)
@@ -71,7 +76,8 @@ def _default_token() -> str:
     if path.exists():
         return path.read_text().strip()
     raise DemoError(
-        "no token: pass --token, set LIKEWISE_ADMIN_TOKEN or start `likewise run` first"
+        f"no token: {path} does not exist; pass --token, set LIKEWISE_ADMIN_TOKEN, or run "
+        "the demo from the directory where `likewise run` keeps its data (LIKEWISE_DATA_DIR)"
     )
 
 

@@ -69,6 +69,22 @@ def _free_port() -> int:
         return int(s.getsockname()[1])
 
 
+def port_in_use(host: str, port: int) -> bool:
+    """True if ``host:port`` cannot be bound (another server listens there)."""
+    try:
+        infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)
+    except OSError:
+        return False  # let the HTTP server report a bad host itself
+    family, _, _, _, addr = infos[0]
+    with socket.socket(family, socket.SOCK_STREAM) as s:
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as the server will
+        try:
+            s.bind(addr)
+        except OSError:
+            return True
+    return False
+
+
 def _wait_for_redis(url: str, proc: subprocess.Popen | None) -> None:
     deadline = time.monotonic() + READY_TIMEOUT_SECONDS
     client = Redis.from_url(url, socket_connect_timeout=0.5)
@@ -107,18 +123,6 @@ def start_embedded_redis(data_dir: str) -> tuple[subprocess.Popen, str]:
     url = f"redis://127.0.0.1:{port}/0"
     _wait_for_redis(url, proc)
     return proc, url
-
-
-def _stop(procs: list[tuple[str, subprocess.Popen]], timeout: float = 15.0) -> None:
-    """Stop children in reverse start order: server, workers, then Redis last."""
-    for _, proc in reversed(procs):
-        if proc.poll() is None:
-            proc.send_signal(signal.SIGTERM)
-        try:
-            proc.wait(timeout=timeout)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=timeout)
 
 
 class _Child:
@@ -190,7 +194,15 @@ def _supervise(children: list[_Child], stopped: Callable[[], bool]) -> bool:
 
 
 def run(settings: Settings) -> int:
-    """Start Redis (unless given), workers and the HTTP server; block until stopped."""
+    """Start Redis (unless given), workers and the HTTP server; block until stopped.
+
+    Returns 0 when stopped by a signal, 1 when a child failed for good, 2 when the
+    HTTP port is already taken (checked before anything is started).
+    """
+    if port_in_use(settings.host, settings.port):
+        _say(f"{settings.host}:{settings.port} is already in use; choose another port, "
+             f"e.g.  LIKEWISE_PORT={settings.port + 1} make run")
+        return 2
     children: list[_Child] = []
     env = dict(os.environ)
     stopping = False
@@ -209,7 +221,8 @@ def run(settings: Settings) -> int:
         else:
             proc, url = start_embedded_redis(settings.data_dir)
             children.append(_Child("redis", proc))
-            _say(f"embedded Redis persisting under {Path(settings.data_dir).resolve() / 'redis'}")
+            _say(f"embedded Redis at {url} (a new port each start), persisting under "
+                 f"{Path(settings.data_dir).resolve() / 'redis'}")
         env["LIKEWISE_REDIS_URL"] = url
 
         token, created = ensure_admin_token(settings)

@@ -162,7 +162,7 @@ def fit_prepared(
     elif method == "diagonal":
         L, weights = _diagonal(prep.G, prep.H, lam, rel_tol)
         info["weights"] = weights.tolist()
-    else:
+    elif method in ("closed_form", "discriminant"):
         V, gam, F = prep.range_parts()
         if method == "closed_form":
             Lr, eig = _closed_form(gam, F, lam, rel_tol, max_r)
@@ -171,6 +171,8 @@ def fit_prepared(
             Lr, eig = _discriminant(Q, om, QtF, lam, float(gam.max()), rel_tol, max_r)
         L = Lr @ V.T
         info["eigenvalues"] = eig.tolist()
+    else:  # a name in METHODS without a branch here is a programming error
+        raise CoreError(f"no learner implements method {method!r}", "method")
     if method != "euclidean":
         L = _normalise(L, prep.G, prep.stats.n)
     if L.shape[0] == 0:  # no between-group signal at all: fall back to a zero map

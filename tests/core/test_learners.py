@@ -240,3 +240,15 @@ def test_invalid_parameters_raise_domain_errors(kwargs, field) -> None:
     with pytest.raises(CoreError) as info:
         fit_metric(stats, **kwargs)
     assert info.value.field == field
+
+
+def test_a_method_without_a_learner_fails_loudly():
+    """An unknown name must never fall through to another learner (own check, no source)."""
+    from sklearn.datasets import load_iris
+
+    from service.core.learners import Prepared, fit_prepared
+
+    X, y = load_iris(return_X_y=True)
+    with pytest.raises(CoreError) as err:
+        fit_prepared(Prepared(BatchStats.from_batch(X, y)), "nearest_shrunken", 1e-3)
+    assert err.value.field == "method"

@@ -50,3 +50,21 @@ def test_a_worker_that_keeps_dying_is_given_up_after_the_restart_limit():
     assert restarted == launcher.RESTART_LIMIT
     # supervision then reports a failure for good (and the launcher stops everything)
     assert launcher._supervise([child], stopped=lambda: False) is True
+
+
+def test_a_taken_port_stops_the_launcher_before_it_starts_anything(tmp_path: Path, capsys):
+    import socket
+
+    from service import launcher
+
+    with socket.socket() as busy:
+        busy.bind(("127.0.0.1", 0))
+        busy.listen()
+        port = busy.getsockname()[1]
+        assert launcher.port_in_use("127.0.0.1", port)
+        settings = Settings(data_dir=str(tmp_path / "var"), port=port)
+        assert launcher.run(settings) == 2
+    out = capsys.readouterr().out
+    assert f"127.0.0.1:{port} is already in use" in out and "LIKEWISE_PORT=" in out
+    assert not (tmp_path / "var").exists()  # no Redis, no token: nothing was started
+    assert not launcher.port_in_use("127.0.0.1", port)  # free again once closed
