@@ -7,7 +7,9 @@ numeric matrix inside a batch or grouping request is validated as a whole by num
 
 from __future__ import annotations
 
+import json
 import math
+import re
 from typing import Any
 
 from flask import request
@@ -142,11 +144,25 @@ class FitQuerySchema(_Strict):
     status = fields.String(validate=validate.OneOf(FIT_STATUSES))
 
 
+# a \uD800-\uDFFF escape in the raw text: json.loads pairs the valid ones up, but keeps
+# an unpaired one as a lone surrogate, which is not Unicode text (Redis writes fail)
+_SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F][0-9a-fA-F]{2}")
+
+
+def _has_lone_surrogate(data: Any) -> bool:
+    try:
+        json.dumps(data, ensure_ascii=False).encode("utf-8")
+    except UnicodeEncodeError:
+        return True
+    return False
+
+
 def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
     """Read the request's JSON object and load it with ``schema``.
 
     Wrong content type or malformed JSON → 400 (MalformedRequest); a body that is
-    valid JSON but not an object → 400; envelope errors → marshmallow's ValidationError
+    valid JSON but not an object → 400; a string with an unpaired surrogate escape → 400
+    (it cannot be stored or echoed as UTF-8); envelope errors → marshmallow's ValidationError
     (422 via the problem handlers). ``empty_ok`` lets a body-less request mean ``{}``.
     """
     if empty_ok and not request.get_data(cache=True):
@@ -164,6 +180,10 @@ def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
         raise MalformedRequest("The body's JSON is nested too deeply.") from exc
     if not isinstance(data, dict):
         raise MalformedRequest("The body must be a JSON object.")
+    if _SURROGATE_ESCAPE.search(request.get_data(cache=True)) and _has_lone_surrogate(data):
+        raise MalformedRequest(
+            "The body has a string with an unpaired \\uD800-\\uDFFF escape, which is not "
+            "Unicode text.")
     return schema.load(data)
 
 

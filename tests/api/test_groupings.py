@@ -106,6 +106,11 @@ def _invalid(X: np.ndarray) -> list[tuple[dict, str]]:
         ({"columns": IRIS_FEATURES[:3], "rows": X[:, :3].tolist()}, "columns"),
         ({"columns": IRIS_FEATURES, "rows": [[1, 2, 3]]}, "rows[0]"),
         ({"columns": IRIS_FEATURES}, "rows"),
+        # finite but too large once rescaled by the metric: k-means refused them (a 500)
+        # and k=1 answered distances of Infinity (found by schemathesis-driven probing)
+        ({"records": [dict.fromkeys(IRIS_FEATURES, 1e308)] * 3, "k": 2}, "records[0]"),
+        ({"records": [dict.fromkeys(IRIS_FEATURES, -1e308)] * 3, "k": 1}, "records[0]"),
+        ({"columns": IRIS_FEATURES, "rows": [X[0].tolist(), [1e308] * 4], "k": 1}, "rows[1]"),
     ]
 
 

@@ -69,6 +69,12 @@ def test_list_get_delete(api: SpecClient, with_batches: list[str]) -> None:
         ({"data": '{"features": [', "content_type": "application/json"}, "malformed JSON"),
         ({"json": ["a", "b"]}, "not an object"),
         ({"data": b"", "content_type": "application/json"}, "empty body"),
+        # an unpaired surrogate escape is valid JSON syntax but not Unicode text: storing
+        # it raised UnicodeEncodeError (a 500, found by schemathesis-driven probing)
+        ({"data": '{"features": ["a"], "description": "\\ud800"}',
+          "content_type": "application/json"}, "lone surrogate in a string"),
+        ({"data": '{"features": ["\\udc00x"]}', "content_type": "application/json"},
+         "lone low surrogate in a feature"),
     ],
 )
 def test_put_malformed_body_is_400(api: SpecClient, unchanged, kwargs: dict, why: str) -> None:
@@ -103,6 +109,16 @@ def test_put_invalid_is_422_naming_the_field(
         resp = api.put(path, json=body)
     assert_problem(resp, 422, field)
     assert api.get("/v1/metrics").get_json() == {"metrics": []}
+
+
+def test_escaped_surrogate_pairs_are_text(api: SpecClient) -> None:
+    """A paired escape is one character (U+1F600 here) and round-trips; only unpaired
+    halves are refused (above)."""
+    body = '{"features": ["t\\ud83d\\ude00"], "description": "\\ud83d\\ude00"}'
+    resp = api.put("/v1/metrics/pairs", data=body, content_type="application/json")
+    assert resp.status_code == 201, resp.get_json()
+    got = api.get("/v1/metrics/pairs").get_json()
+    assert (got["features"], got["description"]) == (["t\U0001f600"], "\U0001f600")
 
 
 def test_put_too_many_features_is_422(api: SpecClient, ctx: Context, unchanged) -> None:
