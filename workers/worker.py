@@ -34,7 +34,20 @@ def build_worker(
     ctx = Context.build(settings, connection=connection)
     jobs.worker_settings = settings
     cls = SimpleWorker if simple else Worker
-    return cls([ctx.queue], connection=ctx.redis, name=name)
+    ttl = heartbeat_ttl(settings.worker_seen_seconds)
+    return cls([ctx.queue], connection=ctx.redis, name=name, worker_ttl=ttl,
+               job_monitoring_interval=min(30, ttl - 15))
+
+
+def heartbeat_ttl(seen_seconds: int) -> int:
+    """The worker TTL that keeps ``/readyz`` true for a healthy idle worker.
+
+    RQ renews an idle worker's heartbeat once per ``worker_ttl − 15`` s (420 s by
+    default); readiness wants one within ``LIKEWISE_WORKER_SEEN_SECONDS``. Beating at
+    least twice per window keeps an idle worker visible; a busy one reports at the job
+    monitoring interval, capped the same way.
+    """
+    return max(20, seen_seconds // 2 + 15)
 
 
 def run_worker(

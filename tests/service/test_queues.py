@@ -70,6 +70,32 @@ def test_readiness_needs_a_live_worker(ctx: Context) -> None:
     assert queues.readiness(ctx) == (False, {"redis": True, "workers_seen": 0})
 
 
+def test_an_idle_worker_stays_ready_past_the_seen_window(ctx: Context) -> None:
+    """Readiness wants a heartbeat within ``worker_seen_seconds``; an idle worker must
+    renew it in time (RQ's default renews every 405 s). Window of 10 s here; the check
+    runs for 1.5 windows after the worker is first seen."""
+    seen = 10
+    s = ctx.settings.replace(worker_seen_seconds=seen)
+    short = Context.build(s, connection=ctx.redis)
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "LIKEWISE_REDIS_URL": s.redis_url,
+           "LIKEWISE_KEY_PREFIX": s.key_prefix, "LIKEWISE_QUEUE": s.queue_name,
+           "LIKEWISE_WORKER_SEEN_SECONDS": str(seen)}
+    script = ("import sys\nfrom service.config import Settings\n"
+              "from workers.worker import run_worker\n"
+              "run_worker(Settings.from_env(), name=sys.argv[1])\n")
+    proc = subprocess.Popen([sys.executable, "-c", script, f"{s.key_prefix}-idle"], env=env,
+                            cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    try:
+        assert _wait(lambda: queues.readiness(short)[0]), proc.stderr
+        until = time.monotonic() + 1.5 * seen
+        while time.monotonic() < until:  # the worker stays idle all along
+            assert queues.readiness(short)[0], "idle worker dropped out of readiness"
+            time.sleep(0.5)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        proc.wait(timeout=30)
+
+
 def test_readiness_without_redis(ctx: Context) -> None:
     dead = Context.build(ctx.settings.replace(redis_url="redis://127.0.0.1:1/0"))
     try:
