@@ -3,7 +3,7 @@
 Nothing here imports flask, redis, rq or marshmallow (a test checks it).
 """
 
-from .errors import CoreError, NotEnoughDataError, ZeroSpreadWarning
+from .errors import CoreError, NotEnoughDataError, RecordOverflowError, ZeroSpreadWarning
 from .grouping import Grouping, group_records
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
@@ -21,6 +21,7 @@ __all__ = [
     "Grouping",
     "MetricSelector",
     "NotEnoughDataError",
+    "RecordOverflowError",
     "ZeroSpreadWarning",
     "agreement",
     "check_batch",

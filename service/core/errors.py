@@ -20,5 +20,13 @@ class NotEnoughDataError(CoreError):
     """Valid input, but too little of it for the requested operation."""
 
 
+class RecordOverflowError(CoreError):
+    """Finite records whose values overflow float64 once mapped; ``row`` is the first."""
+
+    def __init__(self, message: str, row: int) -> None:
+        super().__init__(message, "records")
+        self.row = row
+
+
 class ZeroSpreadWarning(UserWarning):
     """A feature has no spread within batches; it carries no signal and gets scale 1."""

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .clustering import cluster, own_and_runner_up, single_threaded
-from .errors import CoreError
+from .errors import CoreError, RecordOverflowError
 from .kchoice import choose_k
 from .metric import FittedMetric
 from .validation import check_k, check_matrix
@@ -63,7 +63,13 @@ def _group(
     metric: FittedMetric, X: np.ndarray, k: int | None, random_state: int | None, n_init: int, init
 ) -> Grouping:
     n = X.shape[0]
-    Z = metric.transform(X)
+    with np.errstate(over="ignore", invalid="ignore"):
+        Z = metric.transform(X)
+    if not np.isfinite(Z).all():
+        row = int(np.flatnonzero(~np.isfinite(Z).all(axis=1))[0])
+        raise RecordOverflowError(
+            f"records are too large to map (row {row} overflows in the learned space)", row
+        )
     chosen = k is None
     if chosen:
         k = choose_k(Z, metric.k_rule, random_state)

@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from service.core import CoreError, FittedMetric, group_records
+from service.core import CoreError, FittedMetric, RecordOverflowError, group_records
 from service.errors import Conflict, InvalidInput, NotFound, from_core
 from service.tables import to_matrix
 
@@ -83,10 +83,10 @@ def group(
     X = to_matrix(features, table, s.max_batch_records, s.max_batch_bytes)
     try:
         g = group_records(fitted, X, k=k_value)
+    except RecordOverflowError as exc:
+        raise _overflow(fitted, X, table) from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
-    except ValueError as exc:  # k-means refusing non-finite input: see _overflow
-        raise _overflow(fitted, X, table) from exc
     if not np.isfinite(g.distances).all():
         raise _overflow(fitted, X, table)
     return {

@@ -150,3 +150,19 @@ def test_invalid_input(X, kwargs, field: str) -> None:
         group_records(metric, X, **kwargs)
     assert info.value.field == field
     assert info.value.message
+
+
+def test_values_that_overflow_in_the_learned_space_are_a_core_error():
+    """Finite input whose mapped values overflow float64 is the caller's error, named
+    as such, not a scikit-learn ValueError (own check; float64 limits per IEEE 754)."""
+    from sklearn.datasets import load_iris
+
+    from service.core import BatchStats, fit_metric
+
+    X, y = load_iris(return_X_y=True)
+    metric = fit_metric(BatchStats.from_batch(X, y), "closed_form", 1e-3)
+    huge = np.full((5, 4), 1e308)
+    for k in (1, 2):
+        with pytest.raises(CoreError) as err:
+            group_records(metric, huge, k)
+        assert err.value.field == "records" and "row 0" in err.value.message
