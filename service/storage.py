@@ -329,15 +329,7 @@ class Storage:
             if dedupe:
                 self._drop_dedupe(pipe, dedupe, fit_id)
 
-        for _ in range(_WATCH_RETRIES):
-            try:
-                with self._watching(mkey, akey, fkey) as pipe:
-                    body(pipe)
-                    pipe.execute()
-                    return
-            except redis_lib.WatchError:
-                continue
-        raise Conflict("too many concurrent changes while saving the version")
+        self._transact([mkey, akey, fkey], body)
 
     def version_numbers(self, name: str) -> list[int]:
         return [int(v) for v in self.redis.zrange(self._m(name, "versions"), 0, -1)]

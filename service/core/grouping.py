@@ -65,8 +65,12 @@ def _group(
     n = X.shape[0]
     with np.errstate(over="ignore", invalid="ignore"):
         Z = metric.transform(X)
-    if not np.isfinite(Z).all():
-        row = int(np.flatnonzero(~np.isfinite(Z).all(axis=1))[0])
+        # k-means and the distances work with squared distances between records, up to
+        # 4·‖z‖²: they must stay finite too, not only the mapped coordinates
+        reach = 4.0 * np.einsum("ij,ij->i", Z, Z)
+    overflow = ~np.isfinite(reach)
+    if overflow.any():
+        row = int(np.argmax(overflow))
         raise RecordOverflowError(
             f"records are too large to map (row {row} overflows in the learned space)", row
         )

@@ -68,7 +68,7 @@ def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any])
     }
     ctx.storage.add_batch(name, metric["uid"], batch_id, meta, stats.to_bytes(),
                           pack_matrix(X), pack_json(labels))
-    return {k: meta[k] for k in ("batch_id", "records", "groups", "created_at", "sha256")}
+    return _summary(meta)
 
 
 def _summary(meta: dict[str, Any]) -> dict[str, Any]:

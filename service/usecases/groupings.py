@@ -51,18 +51,6 @@ def load_version_metric(
     return loaded
 
 
-def _overflow(fitted: FittedMetric, X: np.ndarray, table: dict[str, Any]) -> InvalidInput:
-    """422 for records whose learned coordinates or distances overflow float64: finite
-    numbers (each passed the table checks) can still be too large once rescaled."""
-    form = "records" if "records" in table else "rows"
-    with np.errstate(over="ignore", invalid="ignore"):
-        Z = fitted.transform(X)
-        bad = ~np.isfinite(np.einsum("ij,ij->i", Z, Z))
-    i = int(np.argmax(bad)) if bad.any() else 0
-    message = "values too large: their distances under this metric overflow float64 (rescale)"
-    return InvalidInput.field(f"{form}[{i}]", message, f"{form}[{i}]: {message}")
-
-
 def group(
     ctx: Context,
     name: str,
@@ -84,11 +72,12 @@ def group(
     try:
         g = group_records(fitted, X, k=k_value)
     except RecordOverflowError as exc:
-        raise _overflow(fitted, X, table) from exc
+        # finite numbers (each passed the table checks) can still overflow once rescaled
+        field = f"{'records' if 'records' in table else 'rows'}[{exc.row}]"
+        message = "values too large: their distances under this metric overflow float64"
+        raise InvalidInput.field(field, message, f"{field}: {message}") from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
-    if not np.isfinite(g.distances).all():
-        raise _overflow(fitted, X, table)
     return {
         "version": version,
         "k": int(g.k),

@@ -14,18 +14,12 @@ import sys
 
 import pytest
 
-from .test_flow import TOKEN, _start, _stop
+from .test_flow import TOKEN, _start, _stop, launcher_env
 
 
 @pytest.mark.timeout(300)
 def test_demo_runs_the_whole_flow_and_reports_held_out_ari(settings, tmp_path):
-    env = {
-        "LIKEWISE_REDIS_URL": settings.redis_url,
-        "LIKEWISE_KEY_PREFIX": settings.key_prefix,
-        "LIKEWISE_QUEUE": settings.queue_name,
-        "LIKEWISE_ADMIN_TOKEN": TOKEN,
-        "LIKEWISE_WORKERS": "1",
-    }
+    env = launcher_env(settings)
     proc, base = _start(env, tmp_path)
     try:
         out = subprocess.run(

@@ -86,6 +86,17 @@ def _start(
     return proc, base
 
 
+def launcher_env(settings, admin_token: str = TOKEN) -> dict[str, str]:
+    """Environment for ``likewise run`` on this test's Redis, key prefix and queue."""
+    return {
+        "LIKEWISE_REDIS_URL": settings.redis_url,
+        "LIKEWISE_KEY_PREFIX": settings.key_prefix,
+        "LIKEWISE_QUEUE": settings.queue_name,
+        "LIKEWISE_ADMIN_TOKEN": admin_token,
+        "LIKEWISE_WORKERS": "1",
+    }
+
+
 def _stop(proc: subprocess.Popen) -> int:
     if proc.poll() is None:
         proc.send_signal(signal.SIGINT)  # what Ctrl-C sends
@@ -124,14 +135,7 @@ def _post_batch(http: Http, name: str, features: list[str], X: np.ndarray, y: np
 
 @pytest.mark.timeout(600)
 def test_whole_flow_through_the_launcher(settings, tmp_path):
-    env = {
-        "LIKEWISE_REDIS_URL": settings.redis_url,
-        "LIKEWISE_KEY_PREFIX": settings.key_prefix,
-        "LIKEWISE_QUEUE": settings.queue_name,
-        "LIKEWISE_ADMIN_TOKEN": TOKEN,
-        "LIKEWISE_WORKERS": "1",
-    }
-    proc, base = _start(env, tmp_path)
+    proc, base = _start(launcher_env(settings), tmp_path)
     http = Http(base)
     try:
         rng = np.random.default_rng(2026)
@@ -231,14 +235,7 @@ def _worker_pids(launcher_pid: int) -> set[int]:
 
 @pytest.mark.timeout(300)
 def test_a_killed_fit_worker_is_started_again(settings, tmp_path):
-    env = {
-        "LIKEWISE_REDIS_URL": settings.redis_url,
-        "LIKEWISE_KEY_PREFIX": settings.key_prefix,
-        "LIKEWISE_QUEUE": settings.queue_name,
-        "LIKEWISE_ADMIN_TOKEN": TOKEN,
-        "LIKEWISE_WORKERS": "1",
-    }
-    proc, base = _start(env, tmp_path)
+    proc, base = _start(launcher_env(settings), tmp_path)
     http = Http(base)
 
     def worker_names() -> set[str]:

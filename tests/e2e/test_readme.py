@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from .test_flow import _start, _stop
+from .test_flow import _start, _stop, launcher_env
 
 README = Path(__file__).resolve().parents[2] / "README.md"
 
@@ -34,14 +34,8 @@ def test_walkthrough_has_commands():
 @pytest.mark.timeout(300)
 def test_walkthrough_commands_work_as_written(settings, tmp_path):
     data_dir = tmp_path / "var"  # the README reads the token from var/admin-token
-    env = {
-        "LIKEWISE_REDIS_URL": settings.redis_url,
-        "LIKEWISE_KEY_PREFIX": settings.key_prefix,
-        "LIKEWISE_QUEUE": settings.queue_name,
-        "LIKEWISE_ADMIN_TOKEN": "",
-        "LIKEWISE_WORKERS": "1",
-    }
-    proc, base = _start(env, tmp_path, data_dir=data_dir)
+    # no admin token: the launcher generates var/admin-token, as on a fresh machine
+    proc, base = _start(launcher_env(settings, admin_token=""), tmp_path, data_dir=data_dir)
     try:
         script = "set -euo pipefail\n"
         for block in _walkthrough_blocks():
