@@ -9,14 +9,13 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import sklearn
-from sklearn.metrics import adjusted_rand_score
 
-from .errors import CoreError
-from .grouping import group_records
+from ._stacked import chunk_size, kmeans_stacked
+from .clustering import cluster
+from .errors import CoreError, RecordOverflowError
 from .learners import Prepared, fit_prepared
 from .metric import FittedMetric
-from .scores import agreement
+from .scores import agreement_codes
 from .stats import BatchStats, without
 
 _KEYS = ("ari", "nmi", "rand")
@@ -57,27 +56,16 @@ def make_folds(
     return folds
 
 
-def group_labels(
-    metric: FittedMetric, X: np.ndarray, k: int, random_state: int | None, n_init: int
-) -> np.ndarray:
-    """Labels of ``X`` grouped at ``k`` in ``metric`` (the service's own grouping)."""
-    return group_records(metric, X, k, random_state=random_state, n_init=n_init).labels
-
-
 class _Scored:
-    """Expert and predicted labels of one held-out batch; scores computed on demand."""
+    """Expert and predicted labels of one held-out batch, with their scores."""
 
-    __slots__ = ("pred", "scores", "truth")
+    __slots__ = ("pred", "scores")
 
     def __init__(self, truth: np.ndarray, pred: np.ndarray) -> None:
-        self.truth = truth
         self.pred = np.asarray(pred, dtype=np.int32)
-        self.scores: dict[str, float] = {"ari": adjusted_rand_score(truth, self.pred)}
+        self.scores = agreement_codes(truth, self.pred)
 
     def get(self, key: str) -> float:
-        if key not in self.scores:
-            with sklearn.config_context(assume_finite=True, skip_parameter_validation=True):
-                self.scores.update(agreement(self.truth, self.pred))
         return self.scores[key]
 
 
@@ -106,8 +94,7 @@ class CrossValidation:
         self.n_init = max(int(n_init), 1)
         self._held: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self._prepared: dict[int, Prepared | None] = {}
-        # per candidate, per (fold, batch): predicted labels and the scores computed so
-        # far (ARI at once for the choice; NMI and Rand only when a report needs them)
+        # per candidate, per (fold, batch): predicted labels and their scores
         self._scores: dict[Candidate, dict[tuple[int, int], _Scored]] = {}
         self._raw: dict[int, _Scored] = {}
 
@@ -155,40 +142,91 @@ class CrossValidation:
     def run(
         self, cands: Sequence[Candidate], progress: Callable[[float], None] | None = None
     ) -> None:
-        # inputs are validated once at the edge; skip scikit-learn's per-call checks
-        with sklearn.config_context(assume_finite=True, skip_parameter_validation=True):
-            self._run(cands, progress)
-
-    def _run(
-        self, cands: Sequence[Candidate], progress: Callable[[float], None] | None
-    ) -> None:
+        """Score ``cands`` on every fold (cached: a candidate is scored once per fold)."""
         for i, fold in enumerate(self.folds):
-            for cand in cands:
-                table = self._scores.setdefault(cand, {})
-                if (i, fold.held_out[0]) in table:
-                    continue
-                metric = self.fold_metric(i, cand)
+            todo = [c for c in cands if (i, fold.held_out[0]) not in self._scores.get(c, {})]
+            if todo:
+                metrics = [self.fold_metric(i, c) for c in todo]
                 for b in fold.held_out:
-                    table[(i, b)] = self._score(metric, b)
+                    # the raw baseline rides along the first time its batch is grouped
+                    raw = [] if b in self._raw else [self._raw_metric(b)]
+                    preds = self._group_all(metrics + raw, b, (0, i, b))
+                    codes = self.held_out_data(b)[1]
+                    if raw:
+                        self._raw[b] = _Scored(codes, preds.pop())
+                    for cand, pred in zip(todo, preds, strict=True):
+                        self._scores.setdefault(cand, {})[(i, b)] = _Scored(codes, pred)
             if progress is not None:
                 progress((i + 1) / len(self.folds))
-            self._prepared.pop(i, None)  # O(d²) each: keep one fold's at a time
+            self.forget(i)
 
-    def _score(self, metric: FittedMetric | None, b: int) -> _Scored:
+    def forget(self, i: int) -> None:
+        """Drop fold ``i``'s prepared statistics (O(d²) each: keep one fold's at a time)."""
+        self._prepared.pop(i, None)
+
+    def _group_all(
+        self, metrics: Sequence[FittedMetric | None], b: int, stream: tuple[int, ...]
+    ) -> list[np.ndarray]:
+        """Held-out batch ``b`` grouped at its true k in each metric.
+
+        Metrics of rank ≥ 2 are grouped together by :func:`kmeans_stacked` (k-means++,
+        ``n_init`` restarts, the same random numbers for every metric); rank 1 by the
+        exact one-dimensional solver, as the service groups; a metric that could not
+        be fitted (None) or of rank 0 puts every record in one group.
+        """
         X, codes = self.held_out_data(b)
-        k = int(codes.max()) + 1
-        if metric is None:
-            pred = np.zeros(X.shape[0], dtype=np.int32)
-        else:
-            pred = group_labels(metric, X, k, self.random_state, self.n_init)
-        return _Scored(codes, pred)
+        n, k = X.shape[0], int(codes.max()) + 1
+        preds: list[np.ndarray | None] = [None] * len(metrics)
+        stacked = []
+        for j, metric in enumerate(metrics):
+            if metric is None or metric.rank == 0:
+                preds[j] = np.zeros(n, dtype=np.intp)
+            elif metric.rank == 1:
+                preds[j] = cluster(self._mapped(metric, X, b), k, self.random_state)[0]
+            else:
+                stacked.append(j)
+        if not stacked:
+            return preds  # type: ignore[return-value]
+        r = max(metrics[j].rank for j in stacked)  # type: ignore[union-attr]
+        seed = None if self.random_state is None else [int(self.random_state), *stream]
+        step = chunk_size(n, r, self.n_init)
+        for lo in range(0, len(stacked), step):
+            part = stacked[lo : lo + step]
+            Zs = np.zeros((len(part), n, r))
+            for q, j in enumerate(part):
+                Z = self._mapped(metrics[j], X, b)
+                Zs[q, :, : Z.shape[1]] = Z  # zero columns add nothing to distances
+            labels, _ = kmeans_stacked(Zs, k, self.n_init, seed)
+            for q, j in enumerate(part):
+                preds[j] = labels[q]
+        return preds  # type: ignore[return-value]
+
+    @staticmethod
+    def _mapped(metric: FittedMetric, X: np.ndarray, b: int) -> np.ndarray:
+        """``metric.transform(X)``; a named error when squared distances would overflow."""
+        with np.errstate(over="ignore", invalid="ignore"):
+            Z = metric.transform(X)
+            reach = 4.0 * np.einsum("ij,ij->i", Z, Z)
+        if not np.isfinite(reach).all():
+            row = int(np.argmax(~np.isfinite(reach)))
+            raise RecordOverflowError(
+                f"records of batch {b} are too large to map (row {row} overflows in the "
+                "learned space)",
+                row,
+            )
+        return Z
+
+    def _raw_metric(self, b: int) -> FittedMetric:
+        """Euclidean distance on raw units: the second baseline (reported only)."""
+        X, _ = self.held_out_data(b)
+        d = X.shape[1]
+        return FittedMetric("euclidean", 0.0, np.ones(d), X.mean(axis=0), np.eye(d))
 
     def _raw_scores(self, b: int) -> _Scored:
-        if b not in self._raw:
-            X, _ = self.held_out_data(b)
-            d = X.shape[1]
-            raw = FittedMetric("euclidean", 0.0, np.ones(d), X.mean(axis=0), np.eye(d))
-            self._raw[b] = self._score(raw, b)
+        if b not in self._raw:  # normally filled by ``run``; same random numbers here
+            i = next(i for i, f in enumerate(self.folds) if b in f.held_out)
+            codes = self.held_out_data(b)[1]
+            self._raw[b] = _Scored(codes, self._group_all([self._raw_metric(b)], b, (0, i, b))[0])
         return self._raw[b]
 
     # -------------------------------------------------------------- summaries

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -42,15 +43,42 @@ _THRESHOLD_RULES = ("spread", "explained")
 DEFAULT_K_MAX = 10
 
 
-def calibrate_k_rule(
+@dataclass(frozen=True)
+class KEvidence:
+    """What the k rules are calibrated on: per labelled batch, the curves over k in the
+    learned space (each batch mapped by the learner refitted without it where
+    possible, see ``mapping``) and the batch's number of expert groups."""
+
+    curves: list[dict[str, np.ndarray]]
+    truths: list[int]
+    k_max: int
+    mapping: str  # "leave_one_batch_out", "out_of_fold" or "in_sample"
+
+    def subset(self, which: Sequence[int]) -> KEvidence:
+        return KEvidence(
+            [self.curves[i] for i in which], [self.truths[i] for i in which],
+            self.k_max, self.mapping,
+        )
+
+
+def calibrate_k_rule(*args: Any, **kwargs: Any) -> dict[str, Any]:
+    """Calibrate the rule for unknown k on labelled batches; a JSON-safe dict.
+
+    Parameters as :func:`k_evidence` (metric, batches, k_max, random_state, total,
+    stats); the rule is chosen by :func:`rule_from_evidence`.
+    """
+    return rule_from_evidence(k_evidence(*args, **kwargs))
+
+
+def k_evidence(
     metric: FittedMetric,
     batches: Sequence[tuple[np.ndarray, np.ndarray]],
     k_max: int = DEFAULT_K_MAX,
     random_state: int | None = 0,
     total: BatchStats | None = None,
     stats: Sequence[BatchStats] | None = None,
-) -> dict[str, Any]:
-    """Calibrate the rule for unknown k on labelled batches; a JSON-safe dict.
+) -> KEvidence:
+    """The curves over k of labelled batches that the k rules are calibrated on.
 
     ``total``: the summed statistics ``metric`` was fitted from, which include every
     batch given here; defaults to the sum over ``batches``. ``stats``: each batch's
@@ -68,22 +96,53 @@ def calibrate_k_rule(
         ):
             raise CoreError("stats must be one BatchStats per batch, same features", "stats")
     maps, mapping = _out_of_batch_maps(metric, data, total, stats)
+    return evidence_from_maps(maps, data, k_max, random_state, mapping)
+
+
+def evidence_from_maps(
+    maps: Sequence[FittedMetric],
+    data: Sequence[tuple[np.ndarray, np.ndarray]],
+    k_max: int,
+    random_state: int | None,
+    mapping: str,
+) -> KEvidence:
+    """Curves of each (validated) batch seen through its own map; ``mapping`` names
+    how the maps were obtained (e.g. ``"out_of_fold"`` from cross-validation)."""
+    k_max = _check_k_max(k_max)
     curves = [
         kcurves.curves(m.transform(X), k_max, random_state)
         for m, (X, _) in zip(maps, data, strict=True)
     ]
     truths = [int(codes.max()) + 1 for _, codes in data]
+    return KEvidence(curves, truths, k_max, mapping)
+
+
+def rule_from_evidence(ev: KEvidence) -> dict[str, Any]:
+    """Score every rule leave-one-batch-out on ``ev``; the winner refitted on all of it."""
+    curves, truths = ev.curves, ev.truths
+    m = len(curves)
     candidates: dict[str, dict[str, Any]] = {}
     for rule in RULES:
-        if rule in _THRESHOLD_RULES and len(curves) < 2:
-            continue  # a threshold cannot be checked held-out on a single batch
+        if rule in _THRESHOLD_RULES:
+            if m < 2:
+                continue  # a threshold cannot be checked held-out on a single batch
+            lo, hi = _bounds(rule, curves, truths)
+            every = np.ones(m, dtype=bool)
+            held_params = []
+            for i in range(m):
+                every[i] = False
+                held_params.append(_threshold(lo[every], hi[every]))
+                every[i] = True
+            params = _threshold(lo, hi)
+        else:
+            held_params, params = [{}] * m, {}
         hits = [
-            _pick(rule, c, _fit_params(rule, _without(curves, i), _without(truths, i))) == t
-            for i, (c, t) in enumerate(zip(curves, truths, strict=True))
+            _pick(rule, c, p) == t
+            for c, t, p in zip(curves, truths, held_params, strict=True)
         ]
         candidates[rule] = {
             "held_out_hit_rate": float(np.mean(hits)) if hits else None,
-            "params": _fit_params(rule, curves, truths),
+            "params": params,
         }
     winner = max(
         candidates,
@@ -92,13 +151,35 @@ def calibrate_k_rule(
     return {
         "rule": winner,
         "params": candidates[winner]["params"],
-        "k_max": k_max,
+        "k_max": ev.k_max,
         "held_out_hit_rate": candidates[winner]["held_out_hit_rate"],
         "n_batches": len(curves),
-        "mapping": mapping,
+        "mapping": ev.mapping,
         "candidates": candidates,
         "sample_cap": kcurves.SAMPLE_CAP,
     }
+
+
+def held_out_k_hits(ev: KEvidence, n_folds: int = 5) -> list[bool]:
+    """Per batch of ``ev``: does k̂ equal its expert k when the whole calibration (which
+    rule, its threshold) is redone without the batch's fold?
+
+    Folds are contiguous runs of batches, ``n_folds`` of them (one batch per fold
+    when there are fewer batches). Every batch is seen through the learner refitted
+    without it (``ev.mapping``), so the batch being judged never shaped its own map;
+    it did contribute to the maps of the batches the rule was calibrated on.
+    """
+    m = len(ev.curves)
+    if m < 2:
+        return []
+    hits: list[bool] = []
+    for part in np.array_split(np.arange(m), min(max(int(n_folds), 2), m)):
+        train = [i for i in range(m) if i not in set(part.tolist())]
+        rule = rule_from_evidence(ev.subset(train))
+        hits += [
+            _pick(rule["rule"], ev.curves[i], rule["params"]) == ev.truths[i] for i in part
+        ]
+    return hits
 
 
 def choose_k(Z: np.ndarray, rule: dict[str, Any] | None, random_state: int | None = 0) -> int:
@@ -207,16 +288,29 @@ def _fit_params(rule: str, curves: list, truths: list[int]) -> dict[str, Any]:
     """Threshold τ hitting the most batches; ``{}`` for rules without parameters."""
     if rule not in _THRESHOLD_RULES:
         return {}
-    # a batch is hit when stat[k_true] ≤ τ < stat[k] for every 2 ≤ k < k_true
-    lows, highs = [], []
-    for c, t in zip(curves, truths, strict=True):
+    lo, hi = _bounds(rule, curves, truths)
+    return _threshold(lo, hi)
+
+
+def _bounds(rule: str, curves: list, truths: list[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Per batch, the interval [lo, hi) of thresholds that hit its k (NaN: none can).
+
+    A batch is hit when stat[k_true] ≤ τ < stat[k] for every 2 ≤ k < k_true.
+    """
+    lo, hi = np.full(len(curves), np.nan), np.full(len(curves), np.nan)
+    for i, (c, t) in enumerate(zip(curves, truths, strict=True)):
         stat = _statistic(rule, c)
         if t < 2 or t > stat.shape[0]:
             continue  # k out of reach: no threshold can hit this batch
-        lows.append(stat[t - 1])
-        highs.append(np.min(stat[1 : t - 1]) if t > 2 else np.inf)
-    lo, hi = np.asarray(lows), np.asarray(highs)
-    ok = lo < hi
+        lo[i] = stat[t - 1]
+        hi[i] = np.min(stat[1 : t - 1]) if t > 2 else np.inf
+    return lo, hi
+
+
+def _threshold(lo: np.ndarray, hi: np.ndarray) -> dict[str, Any]:
+    """The threshold inside the most [lo, hi) intervals (widest such stretch on a log
+    scale); NaN intervals are skipped."""
+    ok = lo < hi  # False for NaN
     lo, hi = lo[ok], hi[ok]
     if lo.size == 0:
         return {"threshold": None}

@@ -57,7 +57,7 @@ DEFAULT_LEARNER = "discriminant"
 _SCORE_KEYS = ("ari", "nmi", "rand")
 # a smaller mean held-out ARI gain is not called "better" (rule of thumb, no source)
 MIN_GAIN = 0.02
-_K_FOLDS = 5  # folds used to estimate how often the k rule finds the true k
+_K_FOLDS = 5  # folds of the calibration batches behind the k-accuracy estimate
 
 
 class MetricSelector:
@@ -126,17 +126,19 @@ class MetricSelector:
         cands = self._candidates()
         self._cv.run(cands, lambda f: self._report_progress("cross-validation", 0.05 + 0.75 * f))
         winner, reason, best = self._select(cands)
-        self._report_progress("k-rule", 0.8)
-        k_acc, k_trials = self._k_accuracy(winner) if self.estimate_k else (None, 0)
-        self._report_progress("refit", 0.95)
+        self._report_progress("refit", 0.8)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             metric = fit_metric(self._cv.total, winner.method, winner.alpha or 1.0, self.max_rank)
         for w in caught:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-        metric = metric.with_k_rule(
-            self._calibrate(metric, range(len(batches)), self._cv.total)
-        )
+        self._report_progress("k-rule", 0.85)
+        evidence = self._k_evidence(winner)
+        metric = metric.with_k_rule(kchoice.rule_from_evidence(evidence))
+        k_acc, k_trials = None, 0
+        if self.estimate_k:
+            hits = kchoice.held_out_k_hits(evidence, _K_FOLDS)
+            k_acc, k_trials = (float(np.mean(hits)) if hits else None), len(hits)
         self.metric_ = metric
         self.report_ = self._report(cands, winner, reason, best, k_acc, k_trials, metric)
         self._report_progress("done", 1.0)
@@ -236,45 +238,37 @@ class MetricSelector:
             best,
         )
 
-    def _k_accuracy(self, winner: Candidate) -> tuple[float | None, int]:
-        """How often the k rule, calibrated on the training folds, finds the true k.
+    def _k_evidence(self, winner: Candidate) -> kchoice.KEvidence:
+        """Curves for the k rule from (at most ``max_k_batches``, evenly spread) batches.
 
-        Uses the first repetition's folds, at most ``_K_FOLDS`` of them, each rule
-        calibrated on at most ``max_k_batches`` training batches.
+        Each batch is seen through the winning candidate as fitted in the
+        cross-validation fold that held the batch out (first repetition), so no batch
+        shaped its own map; when that fold could not be fitted, through the learner
+        refitted without the batch. The batches' records are the subsamples scored in
+        cross-validation.
         """
-        hits: list[bool] = []
-        folds = [(i, f) for i, f in enumerate(self._cv.folds) if f.repeat == 0][:_K_FOLDS]
-        for done, (i, fold) in enumerate(folds, start=1):
-            metric = self._cv.fold_metric(i, winner)
-            if metric is None:
-                continue
-            rule = self._calibrate(metric, fold.train, self._cv.train_stats(i))
-            for b in fold.held_out:
-                X, codes = self._cv.held_out_data(b)
-                k_hat = kchoice.choose_k(metric.transform(X), rule, self.random_state)
-                hits.append(int(k_hat) == int(codes.max()) + 1)
-            self._report_progress("k-rule", 0.8 + 0.14 * done / len(folds))
-        return (float(np.mean(hits)) if hits else None), len(hits)
-
-    def _calibrate(
-        self, metric: FittedMetric, which: Sequence[int], total: BatchStats
-    ) -> dict[str, Any]:
-        """The k rule from (at most ``max_k_batches``, evenly spread) batches.
-
-        ``total``: the statistics ``metric`` was fitted from. With it and each batch's
-        full statistics, every batch is mapped by the learner refitted without it,
-        even when only a subsample of its records is grouped or only some batches
-        are used (otherwise calibration fell back to in-sample maps there).
-        """
-        which = list(which)
+        which = list(range(len(self._cv.batches)))
         if len(which) > self.max_k_batches:
             pick = np.linspace(0, len(which) - 1, self.max_k_batches).round().astype(int)
             which = [which[j] for j in pick]
+        fold_of = {
+            b: i for i, f in enumerate(self._cv.folds) if f.repeat == 0 for b in f.held_out
+        }
+        fitted: dict[int, FittedMetric | None] = {}
+        maps: list[FittedMetric] = []
+        for b in which:
+            i = fold_of[b]
+            if i not in fitted:
+                fitted[i] = self._cv.fold_metric(i, winner)
+                self._cv.forget(i)
+            m = fitted[i]
+            if m is None:  # rare: refit from all statistics but this batch's
+                rest = BatchStats.sum([s for j, s in enumerate(self._cv.stats) if j != b])
+                m = fit_metric(rest, winner.method, winner.alpha or 1.0, self.max_rank)
+            maps.append(m)
         data = [self._cv.held_out_data(b) for b in which]
-        return kchoice.calibrate_k_rule(
-            metric, data, self.k_max, self.random_state,
-            total=total, stats=[self._cv.stats[b] for b in which],
-        )
+        mapping = "leave_one_batch_out" if self._cv.leave_one_out else "out_of_fold"
+        return kchoice.evidence_from_maps(maps, data, self.k_max, self.random_state, mapping)
 
     def _report_progress(self, stage: str, fraction: float) -> None:
         if self.progress is not None:
