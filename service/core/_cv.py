@@ -15,7 +15,7 @@ from .clustering import cluster
 from .errors import CoreError, RecordOverflowError
 from .learners import Prepared, fit_prepared
 from .metric import FittedMetric
-from .scores import agreement_codes
+from .scores import agreement_many
 from .stats import BatchStats, without
 
 _KEYS = ("ari", "nmi", "rand")
@@ -57,16 +57,21 @@ def make_folds(
 
 
 class _Scored:
-    """Expert and predicted labels of one held-out batch, with their scores."""
+    """Predicted labels of one held-out batch, with their scores against the experts'."""
 
     __slots__ = ("pred", "scores")
 
-    def __init__(self, truth: np.ndarray, pred: np.ndarray) -> None:
+    def __init__(self, pred: np.ndarray, scores: dict[str, float]) -> None:
         self.pred = np.asarray(pred, dtype=np.int32)
-        self.scores = agreement_codes(truth, self.pred)
+        self.scores = scores
 
     def get(self, key: str) -> float:
         return self.scores[key]
+
+
+def _scored(truth: np.ndarray, preds: list[np.ndarray]) -> list[_Scored]:
+    scores = agreement_many(truth, np.stack(preds))
+    return [_Scored(p, s) for p, s in zip(preds, scores, strict=True)]
 
 
 class CrossValidation:
@@ -151,11 +156,11 @@ class CrossValidation:
                     # the raw baseline rides along the first time its batch is grouped
                     raw = [] if b in self._raw else [self._raw_metric(b)]
                     preds = self._group_all(metrics + raw, b, (0, i, b))
-                    codes = self.held_out_data(b)[1]
+                    scored = _scored(self.held_out_data(b)[1], preds)
                     if raw:
-                        self._raw[b] = _Scored(codes, preds.pop())
-                    for cand, pred in zip(todo, preds, strict=True):
-                        self._scores.setdefault(cand, {})[(i, b)] = _Scored(codes, pred)
+                        self._raw[b] = scored.pop()
+                    for cand, one in zip(todo, scored, strict=True):
+                        self._scores.setdefault(cand, {})[(i, b)] = one
             if progress is not None:
                 progress((i + 1) / len(self.folds))
             self.forget(i)
@@ -205,7 +210,8 @@ class CrossValidation:
     def _mapped(metric: FittedMetric, X: np.ndarray, b: int) -> np.ndarray:
         """``metric.transform(X)``; a named error when squared distances would overflow."""
         with np.errstate(over="ignore", invalid="ignore"):
-            Z = metric.transform(X)
+            # metric.transform without re-validating records checked at the edge
+            Z = ((X - metric.mean) / metric.scales) @ metric.components.T
             reach = 4.0 * np.einsum("ij,ij->i", Z, Z)
         if not np.isfinite(reach).all():
             row = int(np.argmax(~np.isfinite(reach)))
@@ -226,7 +232,8 @@ class CrossValidation:
         if b not in self._raw:  # normally filled by ``run``; same random numbers here
             i = next(i for i, f in enumerate(self.folds) if b in f.held_out)
             codes = self.held_out_data(b)[1]
-            self._raw[b] = _Scored(codes, self._group_all([self._raw_metric(b)], b, (0, i, b))[0])
+            preds = self._group_all([self._raw_metric(b)], b, (0, i, b))
+            self._raw[b] = _scored(codes, preds)[0]
         return self._raw[b]
 
     # -------------------------------------------------------------- summaries

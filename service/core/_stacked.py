@@ -104,26 +104,54 @@ def _seed(Z, sq, k, first, draws) -> np.ndarray:
 def _lloyd(Z, sq, centres, k, max_iter) -> tuple[np.ndarray, np.ndarray]:
     """Lloyd iterations from ``centres`` (P × (R·k) × r) until no label changes.
 
-    Returns labels P × n × R and inertia P × R.
+    Returns labels P × n × R and inertia P × R. A problem leaves the stack as soon
+    as none of its restarts changes a label, so the slowest one does not set the
+    pace for all. The nearest centre is found from ``‖c‖² − 2 zᵀc`` (``‖z‖²`` does
+    not change the arg-min; it is added for the cost).
     """
     P, n, _ = Z.shape
     R = centres.shape[1] // k
+    groups = np.arange(k)
+    labels_out = np.empty((P, n, R), dtype=np.intp)
+    cost_out = np.empty((P, R))
+    active = np.arange(P)
+
+    def finish(which: np.ndarray, labels: np.ndarray, score: np.ndarray) -> None:
+        nearest = np.take_along_axis(score, labels[..., None], axis=-1)[..., 0]
+        labels_out[active[which]] = labels
+        cost_out[active[which]] = np.maximum(nearest + sq[which][:, :, None], 0.0).sum(axis=1)
+
     labels = None
     for _ in range(max_iter):
-        d2 = _sq_dist(Z, sq, centres).reshape(P, n, R, k)
-        new = np.argmin(d2, axis=-1)  # P × n × R
-        if labels is not None and np.array_equal(new, labels):
-            break
+        score = _score(Z, centres).reshape(-1, n, R, k)
+        new = np.argmin(score, axis=-1)  # A × n × R
+        if labels is not None:
+            done = (new == labels).all(axis=(1, 2))
+            if done.any():
+                finish(done, new[done], score[done])
+                if done.all():
+                    return labels_out, cost_out
+                keep = ~done
+                active, Z, sq, centres, new = (
+                    active[keep], Z[keep], sq[keep], centres[keep], new[keep]
+                )
         labels = new
-        onehot = (labels[..., None] == np.arange(k)).reshape(P, n, R * k).astype(Z.dtype)
-        counts = onehot.sum(axis=1)  # P × (R·k)
-        sums = np.matmul(np.swapaxes(onehot, 1, 2), Z)  # P × (R·k) × r
+        onehot = (labels[..., None] == groups).reshape(-1, n, R * k).astype(Z.dtype)
+        counts = onehot.sum(axis=1)  # A × (R·k)
+        sums = np.matmul(np.swapaxes(onehot, 1, 2), Z)  # A × (R·k) × r
         empty = counts == 0
-        centres = np.where(
-            empty[..., None], centres, sums / np.where(empty, 1.0, counts)[..., None]
-        )
-    else:
-        d2 = _sq_dist(Z, sq, centres).reshape(P, n, R, k)
-        labels = np.argmin(d2, axis=-1)
-    cost = np.take_along_axis(d2, labels[..., None], axis=-1)[..., 0].sum(axis=1)
-    return labels, cost
+        if empty.any():
+            sums[empty] = centres[empty]
+            counts[empty] = 1.0
+        centres = sums / counts[..., None]
+    score = _score(Z, centres).reshape(-1, n, R, k)
+    finish(np.ones(active.size, dtype=bool), np.argmin(score, axis=-1), score)
+    return labels_out, cost_out
+
+
+def _score(Z: np.ndarray, centres: np.ndarray) -> np.ndarray:
+    """``‖c‖² − 2 zᵀc`` for every record and centre: P × n × m."""
+    out = np.matmul(Z, np.swapaxes(centres, 1, 2))
+    out *= -2.0
+    out += np.einsum("pmr,pmr->pm", centres, centres)[:, None, :]
+    return out

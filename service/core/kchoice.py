@@ -12,14 +12,19 @@ Calinski–Harabasz ratio. Four candidate rules read k̂ from those curves:
   learned space, learned from the training batches;
 * ``explained`` — the smallest k with ``W_k / W_1 ≤ τ`` (share of spread left).
 
-``calibrate_k_rule`` (called by the selector after a fit, on the training batches)
-scores every rule by leave-one-batch-out, twice over: each batch is mapped by the
-same learner refitted without it (from the statistics, O(d³) per batch), because a
-metric makes its own training batches look tighter than new ones; and thresholds are
-learned on the other batches. A held-out batch counts as a hit when k̂ equals its
-number of expert groups. The rule with the best held-out hit rate wins (ties go to the earlier rule
-in the list above) and is refitted on all batches. The result is a JSON-safe dict
-stored with the metric; ``choose_k`` applies it to records already mapped.
+Calibration reads :class:`KEvidence`: per labelled batch, its curves in the learned
+space and its number of expert groups. Each batch is seen through a map that was
+fitted without it, because a metric makes its own training batches look tighter
+than new ones: :func:`k_evidence` refits the learner without each batch (from the
+statistics, O(d³) per batch); the selector uses the map of the cross-validation
+fold that held the batch out. :func:`rule_from_evidence` scores every rule
+leave-one-batch-out (thresholds learned on the other batches); a held-out batch
+counts as a hit when k̂ equals its number of expert groups. The rule with the best
+held-out hit rate wins (ties go to the earlier rule in the list above) and is
+refitted on all batches. :func:`held_out_k_hits` repeats the whole calibration —
+the choice of rule included — without each fold of batches, for an honest hit rate.
+The result is a JSON-safe dict stored with the metric; ``choose_k`` applies it to
+records already mapped.
 """
 
 from __future__ import annotations

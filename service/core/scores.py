@@ -20,67 +20,47 @@ def agreement(labels_true, labels_pred) -> dict[str, float]:
     pred = np.unique(np.asarray(labels_pred).reshape(-1), return_inverse=True)[1].reshape(-1)
     if truth.shape != pred.shape:
         raise ValueError(f"{truth.size} expert labels but {pred.size} computed labels")
-    return _from_table(_contingency(truth, pred))
+    return agreement_many(truth, pred[None, :])[0]
 
 
-def agreement_codes(truth: np.ndarray, pred: np.ndarray) -> dict[str, float]:
-    """:func:`agreement` for labels already coded 0..a−1 and 0..b−1 (no relabelling)."""
-    return _from_table(_contingency(truth, pred))
-
-
-def _contingency(truth: np.ndarray, pred: np.ndarray) -> np.ndarray:
-    a = int(truth.max()) + 1 if truth.size else 0
-    b = int(pred.max()) + 1 if pred.size else 0
-    flat = np.bincount(truth.astype(np.int64) * b + pred, minlength=a * b)
-    table = flat.reshape(a, b)
-    return table[table.sum(axis=1) > 0][:, table.sum(axis=0) > 0]
-
-
-def _from_table(table: np.ndarray) -> dict[str, float]:
-    return {"ari": _ari(table), "nmi": _nmi(table), "rand": _rand(table)}
-
-
-def _pairs(table: np.ndarray) -> tuple[int, int, int, int]:
-    """Pair counts (tn, fp, fn, tp) over ordered pairs, as scikit-learn's
-    ``pair_confusion_matrix`` counts them."""
-    n = int(table.sum())
-    sum_sq = int(np.sum(table.astype(np.int64) ** 2))
-    rows_sq = int(np.sum(table.sum(axis=1).astype(np.int64) ** 2))
-    cols_sq = int(np.sum(table.sum(axis=0).astype(np.int64) ** 2))
-    tp = sum_sq - n
-    fp = cols_sq - sum_sq
-    fn = rows_sq - sum_sq
-    tn = n * n - fp - fn - sum_sq
-    return tn, fp, fn, tp
-
-
-def _ari(table: np.ndarray) -> float:
-    tn, fp, fn, tp = _pairs(table)
-    if fn == 0 and fp == 0:  # identical partitions (incl. both a single group)
-        return 1.0
-    return float(2.0 * (tp * tn - fn * fp) / ((tp + fn) * (fn + tn) + (tp + fp) * (fp + tn)))
-
-
-def _rand(table: np.ndarray) -> float:
-    tn, fp, fn, tp = _pairs(table)
+def agreement_many(truth: np.ndarray, preds: np.ndarray) -> list[dict[str, float]]:
+    """:func:`agreement` of one expert grouping against each row of ``preds``, for
+    labels already coded 0..a−1 (``truth``, n) and 0..b−1 (``preds``, P × n), computed
+    for all rows at once from P contingency tables."""
+    preds = np.asarray(preds, dtype=np.int64)
+    P, n = preds.shape
+    a = int(truth.max()) + 1 if n else 1
+    b = int(preds.max()) + 1 if n else 1
+    flat = (np.arange(P)[:, None] * (a * b) + truth.astype(np.int64) * b + preds).ravel()
+    tables = np.bincount(flat, minlength=P * a * b).reshape(P, a, b).astype(np.float64)
+    rows, cols = tables.sum(axis=2), tables.sum(axis=1)  # P × a, P × b
+    sum_sq = np.einsum("pij,pij->p", tables, tables)
+    rows_sq, cols_sq = np.einsum("pi,pi->p", rows, rows), np.einsum("pj,pj->p", cols, cols)
+    # pair counts (tn, fp, fn, tp) over ordered pairs, as scikit-learn's
+    # pair_confusion_matrix counts them (exact in float64 while n² < 2⁵³)
+    tp, fp, fn = sum_sq - n, cols_sq - sum_sq, rows_sq - sum_sq
+    tn = float(n) * n - fp - fn - sum_sq
+    same = (fn == 0) & (fp == 0)
+    denom = (tp + fn) * (fn + tn) + (tp + fp) * (fp + tn)
+    ari = np.where(same, 1.0, 2.0 * (tp * tn - fn * fp) / np.where(same, 1.0, denom))
     agree, total = tn + tp, tn + fp + fn + tp
-    if agree == total or total == 0:
-        return 1.0
-    return float(agree / total)
+    rand = np.where((agree == total) | (total == 0), 1.0, agree / np.maximum(total, 1.0))
+    nmi = _nmi_many(tables, rows, cols, float(n))
+    return [
+        {"ari": float(x), "nmi": float(y), "rand": float(z)}
+        for x, y, z in zip(ari, nmi, rand, strict=True)
+    ]
 
 
-def _nmi(table: np.ndarray) -> float:
-    a, b = table.shape
-    if a == b == 1 or a == b == 0:  # both groupings trivial: perfect agreement
-        return 1.0
-    n = float(table.sum())
-    rows, cols = table.sum(axis=1) / n, table.sum(axis=0) / n
-    nz = table > 0
-    p = table[nz] / n
-    outer = np.outer(rows, cols)[nz]
-    mi = float(max(np.sum(p * (np.log(p) - np.log(outer))), 0.0))
-    if mi == 0.0:
-        return 0.0
-    h_true = float(-np.sum(rows * np.log(rows)))
-    h_pred = float(-np.sum(cols * np.log(cols)))
-    return float(mi / max((h_true + h_pred) / 2.0, np.finfo("float64").eps))
+def _nmi_many(tables, rows, cols, n) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p, pr, pc = tables / n, rows / n, cols / n
+        outer = pr[:, :, None] * pc[:, None, :]
+        terms = np.where(p > 0, p * (np.log(p) - np.log(outer)), 0.0)
+        h_true = -np.where(pr > 0, pr * np.log(pr), 0.0).sum(axis=1)
+        h_pred = -np.where(pc > 0, pc * np.log(pc), 0.0).sum(axis=1)
+    mi = np.maximum(terms.sum(axis=(1, 2)), 0.0)
+    nmi = mi / np.maximum((h_true + h_pred) / 2.0, np.finfo("float64").eps)
+    nmi = np.where(mi == 0.0, 0.0, nmi)
+    trivial = ((rows > 0).sum(axis=1) <= 1) & ((cols > 0).sum(axis=1) <= 1)
+    return np.where(trivial, 1.0, nmi)

@@ -204,3 +204,28 @@ def test_curves_building_blocks_match_scipy_and_sklearn() -> None:
     a, b = curves(big, 4, random_state=1), curves(big, 4, random_state=1)
     assert float(a["n"]) == 1000
     np.testing.assert_array_equal(a["inertia"], b["inertia"])
+
+
+def test_held_out_hit_rate_recalibrates_without_each_fold(monkeypatch) -> None:
+    from service.core import kchoice
+
+    batches = [blob_batch(s) for s in range(10)]
+    metric = identity_metric(5)
+    ev = kchoice.k_evidence(metric, batches, k_max=10)
+    seen: list[set[int]] = []
+    real = kchoice.rule_from_evidence
+
+    def spy(sub):
+        seen.append({id(c) for c in sub.curves})
+        return real(sub)
+
+    monkeypatch.setattr(kchoice, "rule_from_evidence", spy)
+    hits = kchoice.held_out_k_hits(ev, n_folds=5)
+    assert len(hits) == 10 and len(seen) == 5
+    for fold, train in enumerate(seen):
+        # the batches judged in this fold were not among those the rule came from
+        judged = {id(ev.curves[i]) for i in range(2 * fold, 2 * fold + 2)}
+        assert not judged & train and len(train) == 8
+    assert np.mean(hits) >= 0.9  # separated blobs: rule of thumb, no source
+    # a single batch leaves nothing to calibrate on held out
+    assert kchoice.held_out_k_hits(ev.subset([0])) == []

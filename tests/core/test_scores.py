@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import adjusted_rand_score, normalized_mutual_info_score, rand_score
 
-from service.core.scores import agreement, agreement_codes
+from service.core.scores import agreement, agreement_many
 
 
 def _reference(truth, pred) -> dict[str, float]:
@@ -50,12 +50,20 @@ def test_edge_cases_match_scikit_learn(truth, pred) -> None:
         assert got[key] == pytest.approx(ref[key], abs=1e-12), key
 
 
-def test_coded_labels_skip_relabelling_with_the_same_result() -> None:
-    rng = np.random.default_rng(1)
-    truth, pred = rng.integers(0, 4, size=80), rng.integers(0, 3, size=80)
-    assert agreement_codes(truth, pred) == pytest.approx(agreement(truth, pred))
-
-
 def test_lengths_must_match() -> None:
     with pytest.raises(ValueError, match="expert labels"):
         agreement([0, 1, 1], [0, 1])
+
+
+def test_many_rows_at_once_equal_one_at_a_time() -> None:
+    # each row against scikit-learn too (reference), including one-group rows
+    rng = np.random.default_rng(2)
+    for n in (1, 2, 7, 90):
+        truth = rng.integers(0, 3, size=n)
+        preds = rng.integers(0, 4, size=(6, n))
+        preds[0] = 0
+        preds[1] = truth
+        for got, pred in zip(agreement_many(truth, preds), preds, strict=True):
+            ref = _reference(truth, pred)
+            for key in ref:
+                assert got[key] == pytest.approx(ref[key], abs=1e-12), (key, n)
