@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -58,11 +58,19 @@ class KEvidence:
     truths: list[int]
     k_max: int
     mapping: str  # "leave_one_batch_out", "out_of_fold" or "in_sample"
+    # per rule without parameters, the k it reads from each batch's curves
+    fixed: dict[str, list[int]] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        for rule in RULES:
+            if rule not in _THRESHOLD_RULES and rule not in self.fixed:
+                self.fixed[rule] = [_pick(rule, c, {}) for c in self.curves]
 
     def subset(self, which: Sequence[int]) -> KEvidence:
         return KEvidence(
             [self.curves[i] for i in which], [self.truths[i] for i in which],
             self.k_max, self.mapping,
+            {rule: [picks[i] for i in which] for rule, picks in self.fixed.items()},
         )
 
 
@@ -139,12 +147,10 @@ def rule_from_evidence(ev: KEvidence) -> dict[str, Any]:
                 held_params.append(_threshold(lo[every], hi[every]))
                 every[i] = True
             params = _threshold(lo, hi)
+            picks = [_pick(rule, c, p) for c, p in zip(curves, held_params, strict=True)]
         else:
-            held_params, params = [{}] * m, {}
-        hits = [
-            _pick(rule, c, p) == t
-            for c, t, p in zip(curves, truths, held_params, strict=True)
-        ]
+            picks, params = ev.fixed[rule], {}
+        hits = [k == t for k, t in zip(picks, truths, strict=True)]
         candidates[rule] = {
             "held_out_hit_rate": float(np.mean(hits)) if hits else None,
             "params": params,
