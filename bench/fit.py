@@ -174,9 +174,9 @@ def scaling_table(sizes: list[int], d: int, batch_records: int, seed: int) -> No
         blobs, t_stats, t_gram = [], 0.0, 0.0
         for _ in range(max(1, total_records // batch_records)):
             X, groups = synthetic_batch(rng, batch_records, d)
-            st, dt = timed(lambda X=X, groups=groups: BatchStats.from_batch(X, groups), 3)
+            st, dt = timed(lambda X=X, groups=groups: BatchStats.from_batch(X, groups), 5)
             t_stats += dt
-            t_gram += timed(lambda X=X: X.T @ X, 3)[1]
+            t_gram += timed(lambda X=X: X.T @ X, 5)[1]
             blobs.append(st.to_bytes())  # what storage keeps per batch
         total, t_sum = timed(
             lambda blobs=blobs: BatchStats.sum(BatchStats.from_bytes(b) for b in blobs), 3
@@ -189,7 +189,8 @@ def scaling_table(sizes: list[int], d: int, batch_records: int, seed: int) -> No
         )
     print(
         "stats = BatchStats.from_batch per batch (validation included); load = statistics "
-        "blobs read back (BatchStats.from_bytes); steps timed best of 3-5"
+        "blobs read back (BatchStats.from_bytes); statistics, X.T@X and fit timed best of "
+        "5, load+sum best of 3"
     )
     print(
         "target: fit from statistics flat in the records; statistics within 2x of X.T@X -> "

@@ -20,7 +20,7 @@ import numpy as np
 from scipy import sparse
 
 from .errors import CoreError
-from .validation import check_batch
+from .validation import check_batch, check_matrix
 
 _MAGIC = b"LWS1"
 # a removal that leaves less than this share of a feature's spread is redone by summing
@@ -56,16 +56,22 @@ class BatchStats:
     @classmethod
     def from_batch(cls, X, groups) -> BatchStats:
         """Statistics of one labelled batch; validates the batch first."""
-        X, codes = check_batch(X, groups)
+        # NaN or infinity anywhere makes its column's diagonal of XᵀX non-finite, so
+        # the scan of every value waits for the product (saves one pass over X)
+        X, codes = check_batch(X, groups, finite=False)
         n, d = X.shape
         k = int(codes.max()) + 1
         counts = np.bincount(codes, minlength=k).astype(float)
         # group sums with one sparse indicator product (np.add.at is several times slower)
-        member = sparse.csr_matrix((np.ones(n), codes, np.arange(n + 1)), shape=(n, k))
-        raw_group_sums = np.asarray(member.T @ X)
+        # (k × n, column j holds record j's group: the indicator's transpose, built as is)
+        member_t = sparse.csc_array((np.ones(n), codes, np.arange(n + 1)), shape=(k, n))
+        with np.errstate(invalid="ignore"):  # inf · 0 in a product: raised below
+            raw_group_sums = np.asarray(member_t @ X)
+            gram = X.T @ X
+        if not np.isfinite(np.diag(gram)).all():
+            check_matrix(X)  # names the first NaN or infinity; huge finite values pass
         sums = raw_group_sums.sum(axis=0)
         mean = sums / n
-        gram = X.T @ X
         G = gram - n * np.outer(mean, mean)
         # Σ_c n_c m_c m_cᵀ with m_c the centred group means = Σ_c s_c s_cᵀ / n_c
         group_sums = raw_group_sums - counts[:, None] * mean
@@ -77,7 +83,7 @@ class BatchStats:
             shifted = X - X[0]
             centred = shifted - shifted.mean(axis=0)
             G = centred.T @ centred
-            group_sums = np.asarray(member.T @ centred)
+            group_sums = np.asarray(member_t @ centred)
         H = (group_sums / counts[:, None]).T @ group_sums
         G = (G + G.T) / 2.0
         H = (H + H.T) / 2.0

@@ -7,8 +7,14 @@ import numpy as np
 from .errors import CoreError, NotEnoughDataError
 
 
-def check_matrix(X, field: str = "records", n_features: int | None = None) -> np.ndarray:
-    """A finite 2-D float64 matrix, with ``n_features`` columns when given."""
+def check_matrix(
+    X, field: str = "records", n_features: int | None = None, finite: bool = True
+) -> np.ndarray:
+    """A finite 2-D float64 matrix, with ``n_features`` columns when given.
+
+    ``finite=False`` leaves the scan for NaN and infinity to the caller (one that
+    reads every value anyway and calls again with ``finite=True`` when it finds one).
+    """
     try:
         arr = np.asarray(X, dtype=float)
     except (ValueError, TypeError) as exc:
@@ -21,7 +27,7 @@ def check_matrix(X, field: str = "records", n_features: int | None = None) -> np
         raise CoreError(
             f"{field} has {arr.shape[1]} feature(s), expected {n_features}", field
         )
-    if not np.isfinite(arr).all():
+    if finite and not np.isfinite(arr).all():
         bad = np.argwhere(~np.isfinite(arr))[0]
         raise CoreError(
             f"{field} contains NaN or infinity (first at row {bad[0]}, column {bad[1]})", field
@@ -29,9 +35,14 @@ def check_matrix(X, field: str = "records", n_features: int | None = None) -> np
     return arr
 
 
-def check_batch(X, groups, n_features: int | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Validate a labelled batch; returns the matrix and group codes 0..k-1."""
-    arr = check_matrix(X, "records", n_features)
+def check_batch(
+    X, groups, n_features: int | None = None, finite: bool = True
+) -> tuple[np.ndarray, np.ndarray]:
+    """Validate a labelled batch; returns the matrix and group codes 0..k-1.
+
+    ``finite`` as in :func:`check_matrix`.
+    """
+    arr = check_matrix(X, "records", n_features, finite)
     labels = np.asarray(groups)
     if labels.ndim != 1:
         raise CoreError("groups must be a flat list of labels", "groups")

@@ -111,3 +111,18 @@ def test_adding_statistics_with_other_feature_counts_fails() -> None:
     assert info.value.field == "features"
     with pytest.raises(CoreError):
         a - b
+
+
+def test_nan_or_infinity_anywhere_in_a_large_batch_is_named() -> None:
+    # the scan for non-finite values happens after XᵀX (whose diagonal catches them);
+    # every position of a batch large enough for the BLAS path must still be caught
+    rng = np.random.default_rng(5)
+    X = rng.normal(size=(300, 7))
+    groups = rng.integers(0, 3, size=300)
+    for bad in (np.nan, np.inf, -np.inf):
+        for row, col in ((0, 0), (299, 6), (137, 3)):
+            Y = X.copy()
+            Y[row, col] = bad
+            with pytest.raises(CoreError, match=f"row {row}, column {col}") as info:
+                BatchStats.from_batch(Y, groups)
+            assert info.value.field == "records"
