@@ -19,6 +19,7 @@ from .scores import agreement_many
 from .stats import BatchStats, without
 
 _KEYS = ("ari", "nmi", "rand")
+KEEP_ELEMENTS = 1 << 22  # 32 MB of float64
 
 
 @dataclass(frozen=True)
@@ -99,6 +100,10 @@ class CrossValidation:
         self.n_init = max(int(n_init), 1)
         self._held: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self._prepared: dict[int, Prepared | None] = {}
+        # fitted fold metrics of the first repetition, kept while they fit in
+        # KEEP_ELEMENTS floats: the k rule later reads the winner's again
+        self._kept: dict[tuple[int, Candidate], FittedMetric | None] = {}
+        self._kept_size = 0
         # per candidate, per (fold, batch): predicted labels and their scores
         self._scores: dict[Candidate, dict[tuple[int, int], _Scored]] = {}
         self._raw: dict[int, _Scored] = {}
@@ -131,6 +136,8 @@ class CrossValidation:
 
     def fold_metric(self, i: int, cand: Candidate) -> FittedMetric | None:
         """The candidate fitted on fold ``i``'s training batches (None if it cannot be)."""
+        if (i, cand) in self._kept:
+            return self._kept[(i, cand)]
         if i not in self._prepared:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")  # the final fit reports warnings once
@@ -139,9 +146,14 @@ class CrossValidation:
                 except CoreError:  # e.g. no spread left in this fold's training batches
                     self._prepared[i] = None
         prep = self._prepared[i]
-        if prep is None:
-            return None
-        return fit_prepared(prep, cand.method, cand.alpha or 1.0, self.max_rank)
+        metric = None
+        if prep is not None:
+            metric = fit_prepared(prep, cand.method, cand.alpha or 1.0, self.max_rank)
+        size = 0 if metric is None else metric.components.size + 2 * metric.n_features
+        if self.folds[i].repeat == 0 and self._kept_size + size <= KEEP_ELEMENTS:
+            self._kept[(i, cand)] = metric
+            self._kept_size += size
+        return metric
 
     # ---------------------------------------------------------------- scoring
     def run(
