@@ -195,11 +195,13 @@ class CrossValidation:
         n, k = X.shape[0], int(codes.max()) + 1
         preds: list[np.ndarray | None] = [None] * len(metrics)
         stacked = []
+        standard: dict[tuple[int, bytes], np.ndarray] = {}  # shared by a fold's metrics
         for j, metric in enumerate(metrics):
             if metric is None or metric.rank == 0:
                 preds[j] = np.zeros(n, dtype=np.intp)
             elif metric.rank == 1:
-                preds[j] = cluster(self._mapped(metric, X, b), k, self.random_state)[0]
+                Z = self._mapped(metric, X, b, standard)
+                preds[j] = cluster(Z, k, self.random_state)[0]
             else:
                 stacked.append(j)
         if not stacked:
@@ -211,7 +213,7 @@ class CrossValidation:
             part = stacked[lo : lo + step]
             Zs = np.zeros((len(part), n, r))
             for q, j in enumerate(part):
-                Z = self._mapped(metrics[j], X, b)
+                Z = self._mapped(metrics[j], X, b, standard)  # type: ignore[arg-type]
                 Zs[q, :, : Z.shape[1]] = Z  # zero columns add nothing to distances
             labels, _ = kmeans_stacked(Zs, k, self.n_init, seed)
             for q, j in enumerate(part):
@@ -219,11 +221,19 @@ class CrossValidation:
         return preds  # type: ignore[return-value]
 
     @staticmethod
-    def _mapped(metric: FittedMetric, X: np.ndarray, b: int) -> np.ndarray:
-        """``metric.transform(X)``; a named error when squared distances would overflow."""
+    def _mapped(
+        metric: FittedMetric, X: np.ndarray, b: int, standard: dict[tuple[int, bytes], np.ndarray]
+    ) -> np.ndarray:
+        """``metric.transform(X)``; a named error when squared distances would overflow.
+
+        ``standard`` caches ``(X − mean) / scales`` for metrics fitted on the same
+        statistics (records validated at the edge are not checked again).
+        """
+        key = (id(metric.scales), metric.mean.tobytes())
         with np.errstate(over="ignore", invalid="ignore"):
-            # metric.transform without re-validating records checked at the edge
-            Z = ((X - metric.mean) / metric.scales) @ metric.components.T
+            if key not in standard:
+                standard[key] = (X - metric.mean) / metric.scales
+            Z = standard[key] @ metric.components.T
             reach = 4.0 * np.einsum("ij,ij->i", Z, Z)
         if not np.isfinite(reach).all():
             row = int(np.argmax(~np.isfinite(reach)))

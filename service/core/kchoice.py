@@ -29,6 +29,7 @@ records already mapped.
 
 from __future__ import annotations
 
+import math
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -326,21 +327,24 @@ def _threshold(lo: np.ndarray, hi: np.ndarray) -> dict[str, Any]:
     if lo.size == 0:
         return {"threshold": None}
     cover = ((lo[None, :] <= lo[:, None]) & (lo[:, None] < hi[None, :])).sum(axis=1)
-    events = np.unique(np.concatenate([lo, hi]))
-    best, best_width, best_tau = -1, -np.inf, None
-    for start in np.unique(lo[cover == cover.max()]):
-        later = events[events > start]
-        end = later[0] if later.size else np.inf
+    top = int(cover.max())
+    starts = np.unique(lo[cover == top])
+    events = np.sort(np.concatenate([lo, hi]))
+    # each stretch runs from a start to the next event (an interval opening or closing)
+    after = np.searchsorted(events, starts, side="right")
+    ends = np.append(events, np.inf)[after]
+    best_width, best_tau = -math.inf, None
+    for start, end in zip(starts.tolist(), ends.tolist(), strict=True):
         tau, width = _inside(start, end)
         if width > best_width:
-            best, best_width, best_tau = int(cover.max()), width, tau
-    return {"threshold": best_tau, "training_hits": best}
+            best_width, best_tau = width, tau
+    return {"threshold": best_tau, "training_hits": top}
 
 
 def _inside(start: float, end: float) -> tuple[float, float]:
     """A point well inside [start, end) and the interval's width on a log scale."""
-    if not np.isfinite(end):
-        return float(2.0 * start) if start > 0 else 1.0, np.inf
+    if not math.isfinite(end):
+        return (2.0 * start if start > 0 else 1.0), math.inf
     if start > 0:
-        return float(np.sqrt(start * end)), float(np.log(end / start))
-    return float(end / 2.0), np.inf
+        return math.sqrt(start * end), math.log(end / start)
+    return end / 2.0, math.inf
