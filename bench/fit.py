@@ -8,6 +8,8 @@ Prints three tables, all measured in this one run:
    ``NeighborhoodComponentsAnalysis`` and ``LinearDiscriminantAnalysis`` on the same
    labelled batches. Held-out ARI (Hubert & Arabie 1985, ``sklearn.metrics``) on
    batches from a disjoint record pool, grouped at their true k by the same k-means.
+   1b: the speed target against NCA judged over five draws of batches (the
+   ratio moves with the draw: NCA's time with its record count and iterations).
 2. Fitting from stored statistics at 10k, 100k and 1M records (d = 50): the
    statistics step grows with the records, the fit from the summed statistics
    stays flat. The statistics step is compared with a plain ``X.T @ X`` on the
@@ -42,7 +44,8 @@ from tests.datasets import load_open, make_batches, split_pool  # noqa: E402
 
 Batch = tuple[np.ndarray, np.ndarray]
 NCA_MAX_ITER = 50  # scikit-learn's default; the table says so
-FIT_REPEATS = 3  # fit rows of table 1: best of this many runs, for every method
+FIT_REPEATS = 2  # fit rows of table 1: best of this many runs, for every method
+N_DRAWS = 5  # draws of training/held-out batches the speed target is judged over
 
 
 def timed(fn: Callable[[], object], repeats: int = 1) -> tuple[object, float]:
@@ -79,21 +82,49 @@ def stacked(batches: list[Batch], scales: np.ndarray) -> tuple[np.ndarray, np.nd
     return np.vstack(rows), np.concatenate(labels)
 
 
-def quality_table(n_train: int, n_test: int, seed: int) -> None:
+def draw(seed: int, n_train: int, n_test: int) -> tuple[int, list[Batch], list[Batch]]:
+    """Training batches from one half of digits, held-out batches from the other."""
     X, y = load_open("digits")
     rng = np.random.default_rng(seed)
     (Xf, yf), (Xs, ys) = split_pool(X, y, rng)
-    train = make_batches(Xf, yf, n_train, rng)
-    test = make_batches(Xs, ys, n_test, rng)
+    return X.shape[1], make_batches(Xf, yf, n_train, rng), make_batches(Xs, ys, n_test, rng)
+
+
+def cv_against_nca(train: list[Batch], test: list[Batch]) -> dict:
+    """The selector (closed form, CV and k rule included) and NCA on the same batches;
+    fit seconds (best of FIT_REPEATS runs each) and held-out ARI."""
+    sel, t_cv = timed(lambda: MetricSelector(method="closed_form").fit(train), FIT_REPEATS)
+    stats = BatchStats.sum(BatchStats.from_batch(a, b) for a, b in train)
+    euclid = fit_metric(stats, "euclidean")
+    Xst, yst = stacked(train, euclid.scales)
+    nca, t_nca = timed(
+        lambda: NeighborhoodComponentsAnalysis(max_iter=NCA_MAX_ITER, random_state=0).fit(
+            Xst, yst
+        ),
+        FIT_REPEATS,
+    )
+    return {
+        "sel": sel, "t_cv": t_cv, "ari_cv": held_out_ari(sel.metric_.transform, test),
+        "t_nca": t_nca, "ari_nca": held_out_ari(_standardised(nca.transform, euclid), test),
+        "euclid": euclid, "Xst": Xst, "yst": yst, "records": len(yst),
+    }
+
+
+def _standardised(f: Callable[[np.ndarray], np.ndarray], euclid) -> Callable:
+    return lambda A: f((A - euclid.mean) / euclid.scales)
+
+
+def quality_table(n_train: int, n_test: int, seed: int) -> dict:
+    d, train, test = draw(seed, n_train, n_test)
     n_records = sum(len(b[1]) for b in train)
     print(
-        f"\n1. Fit on digits (UCI optical digits, d = {X.shape[1]}): {n_train} training batches "
+        f"\n1. Fit on digits (UCI optical digits, d = {d}): {n_train} training batches "
         f"({n_records} records, 2-5 classes each); held-out ARI on {n_test} batches "
         "from a disjoint pool, k-means at the true k"
     )
-
     # every fit below: best of FIT_REPEATS runs (the same for every method, NCA included)
-    sel, t_cv = timed(lambda: MetricSelector(method="closed_form").fit(train), FIT_REPEATS)
+    res = cv_against_nca(train, test)
+    sel, t_cv, euclid = res["sel"], res["t_cv"], res["euclid"]
     sel_auto, t_auto = timed(lambda: MetricSelector(method="auto").fit(train), FIT_REPEATS)
     alpha = sel.metric_.alpha
 
@@ -102,34 +133,20 @@ def quality_table(n_train: int, n_test: int, seed: int) -> None:
         return fit_metric(stats, "closed_form", alpha)
 
     once, t_once = timed(closed_form_once, repeats=5)
-    stats = BatchStats.sum(BatchStats.from_batch(a, b) for a, b in train)
-    euclid = fit_metric(stats, "euclidean")
-    scales, mean = euclid.scales, euclid.mean
-    Xst, yst = stacked(train, scales)
-
-    nca, t_nca = timed(
-        lambda: NeighborhoodComponentsAnalysis(max_iter=NCA_MAX_ITER, random_state=0).fit(
-            Xst, yst
-        ),
+    lda, t_lda = timed(
+        lambda: LinearDiscriminantAnalysis(solver="svd").fit(res["Xst"], res["yst"]),
         FIT_REPEATS,
     )
-    lda, t_lda = timed(
-        lambda: LinearDiscriminantAnalysis(solver="svd").fit(Xst, yst), FIT_REPEATS
-    )
-
-    def standardised(f):
-        return lambda A: f((A - mean) / scales)
-
     rows = [
-        ("likewise closed_form + CV (selector)", t_cv, held_out_ari(sel.metric_.transform, test),
+        ("likewise closed_form + CV (selector)", t_cv, res["ari_cv"],
          f"alpha={alpha:g}, rank {sel.metric_.rank}, k rule included"),
         ("likewise auto + CV (selector)", t_auto, held_out_ari(sel_auto.metric_.transform, test),
          f"won: {sel_auto.metric_.method}"),
         ("likewise closed_form, one solve", t_once, held_out_ari(once.transform, test),
          "statistics + O(d^3) solve, same alpha"),
-        ("sklearn NCA", t_nca, held_out_ari(standardised(nca.transform), test),
-         f"max_iter={NCA_MAX_ITER}, all {len(yst)} records"),
-        ("sklearn LDA (svd)", t_lda, held_out_ari(standardised(lda.transform), test),
+        ("sklearn NCA", res["t_nca"], res["ari_nca"],
+         f"max_iter={NCA_MAX_ITER}, all {res['records']} records"),
+        ("sklearn LDA (svd)", t_lda, held_out_ari(_standardised(lda.transform, euclid), test),
          "labels unique per batch"),
         ("Euclidean (standardised) baseline", 0.0, held_out_ari(euclid.transform, test), "no fit"),
     ]
@@ -138,13 +155,35 @@ def quality_table(n_train: int, n_test: int, seed: int) -> None:
     for name, secs, ari, note in rows:
         ratio = f"{secs / t_cv:8.2f}x" if secs else f"{'-':>9}"
         print(f"{name:<38}{secs:9.3f}{ratio:>10}{ari:14.3f}  {note}")
-    ari_cv, ari_once, ari_nca = rows[0][2], rows[2][2], rows[3][2]
-    cv_ok = _verdict(t_nca / t_cv >= 100 and ari_cv >= ari_nca)
-    once_ok = _verdict(t_nca / t_once >= 100 and ari_once >= ari_nca)
+    ari_once = rows[2][2]
+    print(
+        f"one solve: {res['t_nca'] / t_once:.0f}x faster than NCA "
+        f"({_verdict(res['t_nca'] / t_once >= 100 and ari_once >= res['ari_nca'])})"
+    )
+    return res
+
+
+def draws_table(first: dict, seeds: list[int], n_train: int, n_test: int) -> None:
+    """The target, judged over several draws of batches (the first is table 1's)."""
+    print(
+        f"\n1b. Closed form + CV against NCA over {len(seeds)} draws of {n_train} training "
+        f"batches (seeds {', '.join(map(str, seeds))}; best of {FIT_REPEATS} runs each)"
+    )
+    print(f"{'seed':>6}{'records':>9}{'CV fit s':>10}{'NCA s':>9}{'ratio':>9}"
+          f"{'ARI CV':>9}{'ARI NCA':>9}")
+    ratios, better = [], []
+    for seed in seeds:
+        res = first if seed == seeds[0] else cv_against_nca(*draw(seed, n_train, n_test)[1:])
+        ratio = res["t_nca"] / res["t_cv"]
+        ratios.append(ratio)
+        better.append(res["ari_cv"] >= res["ari_nca"])
+        print(f"{seed:>6}{res['records']:>9}{res['t_cv']:10.3f}{res['t_nca']:9.2f}"
+              f"{ratio:8.1f}x{res['ari_cv']:9.3f}{res['ari_nca']:9.3f}")
+    med = float(np.median(ratios))
     print(
         "target: >= 100x faster than NCA at equal or better held-out ARI -> "
-        f"CV fit {t_nca / t_cv:.1f}x faster ({cv_ok}), "
-        f"one solve {t_nca / t_once:.0f}x faster ({once_ok})"
+        f"median {med:.0f}x (lowest {min(ratios):.0f}x), ARI better in "
+        f"{sum(better)} of {len(seeds)} draws ({_verdict(med >= 100 and all(better))})"
     )
 
 
@@ -231,9 +270,10 @@ def main(argv: list[str] | None = None) -> None:
     )
     with threadpool_limits(limits=threads), warnings.catch_warnings():
         warnings.simplefilter("ignore")  # digits has blank pixels: zero-spread warnings
-        quality_table(
-            n_train=8 if args.quick else 20, n_test=10 if args.quick else 40, seed=args.seed
-        )
+        n_train, n_test = (8, 10) if args.quick else (20, 40)
+        first = quality_table(n_train, n_test, seed=args.seed)
+        seeds = [args.seed + i for i in range(1 if args.quick else N_DRAWS)]
+        draws_table(first, seeds, n_train, n_test)
         scaling_table(sizes, d=50, batch_records=5_000, seed=args.seed)
         optimal1d_table(sizes, k=5, seed=args.seed)
     print(f"\ntotal {time.perf_counter() - started:.1f} s")
