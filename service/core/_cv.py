@@ -57,6 +57,11 @@ def make_folds(
     return folds
 
 
+def _padded_width(rank: int, d: int) -> int:
+    """The width a map of this rank is padded to when stacked: a power of two, ≤ d."""
+    return min(1 << max(rank - 1, 0).bit_length(), max(d, rank))
+
+
 class _Scored:
     """Predicted labels of one held-out batch, with their scores against the experts'."""
 
@@ -110,7 +115,8 @@ class CrossValidation:
 
     # ------------------------------------------------------------ data access
     def held_out_data(self, b: int) -> tuple[np.ndarray, np.ndarray]:
-        """Batch ``b`` as scored: at most ``max_records`` records, deterministic."""
+        """Batch ``b`` as scored: at most ``max_records`` records drawn (deterministic),
+        plus the first record of every expert group the draw missed."""
         if b not in self._held:
             X, codes = self.batches[b]
             if X.shape[0] > self.max_records:
@@ -150,7 +156,9 @@ class CrossValidation:
         if prep is not None:
             metric = fit_prepared(prep, cand.method, cand.alpha or 1.0, self.max_rank)
         size = 0 if metric is None else metric.components.size + 2 * metric.n_features
-        if self.folds[i].repeat == 0 and self._kept_size + size <= KEEP_ELEMENTS:
+        # the Euclidean map (d × d, quick to rebuild) would spend the budget first
+        keep = self.folds[i].repeat == 0 and cand.method != "euclidean"
+        if keep and self._kept_size + size <= KEEP_ELEMENTS:
             self._kept[(i, cand)] = metric
             self._kept_size += size
         return metric
@@ -186,8 +194,9 @@ class CrossValidation:
     ) -> list[np.ndarray]:
         """Held-out batch ``b`` grouped at its true k in each metric.
 
-        Metrics of rank ≥ 2 are grouped together by :func:`kmeans_stacked` (k-means++,
-        ``n_init`` restarts, the same random numbers for every metric); rank 1 by the
+        Metrics of rank ≥ 2 are grouped by :func:`kmeans_stacked` (k-means++, ``n_init``
+        restarts, the same random numbers for every metric; one stack per padded
+        width, see ``_padded_width``); rank 1 by the
         exact one-dimensional solver, as the service groups; a metric that could not
         be fitted (None) or of rank 0 puts every record in one group.
         """
@@ -204,21 +213,25 @@ class CrossValidation:
                 preds[j] = cluster(Z, k, self.random_state)[0]
             else:
                 stacked.append(j)
-        if not stacked:
-            return preds  # type: ignore[return-value]
-        r = max(metrics[j].rank for j in stacked)  # type: ignore[union-attr]
+        # stacked by padded width: a power of two at least the rank (at most d), so a
+        # candidate's arithmetic depends on its own rank only, and a low-rank one
+        # does not work at the full width of the Euclidean candidates
+        by_width: dict[int, list[int]] = {}
+        for j in stacked:
+            by_width.setdefault(_padded_width(metrics[j].rank, X.shape[1]), []).append(j)
         seed = None if self.random_state is None else [int(self.random_state), *stream]
-        step = chunk_size(n, r, self.n_init)
-        for lo in range(0, len(stacked), step):
-            part = stacked[lo : lo + step]
-            Zs = np.zeros((len(part), n, r))
-            for q, j in enumerate(part):
-                Z = self._mapped(metrics[j], X, b, standard)  # type: ignore[arg-type]
-                Zs[q, :, : Z.shape[1]] = Z  # zero columns add nothing to distances
-            widths = [metrics[j].rank for j in part]  # type: ignore[union-attr]
-            labels, _ = kmeans_stacked(Zs, k, self.n_init, seed, widths=widths)
-            for q, j in enumerate(part):
-                preds[j] = labels[q]
+        for r, group in sorted(by_width.items()):
+            step = chunk_size(n, r, self.n_init, k)
+            for lo in range(0, len(group), step):
+                part = group[lo : lo + step]
+                Zs = np.zeros((len(part), n, r))
+                for q, j in enumerate(part):
+                    Z = self._mapped(metrics[j], X, b, standard)  # type: ignore[arg-type]
+                    Zs[q, :, : Z.shape[1]] = Z  # zero columns add nothing to distances
+                widths = [metrics[j].rank for j in part]  # type: ignore[union-attr]
+                labels, _ = kmeans_stacked(Zs, k, self.n_init, seed, widths=widths)
+                for q, j in enumerate(part):
+                    preds[j] = labels[q]
         return preds  # type: ignore[return-value]
 
     @staticmethod

@@ -15,7 +15,9 @@ whose group empties keeps its place (scikit-learn moves it to a far record; with
 k-means++ seeds this is rare), and the random numbers are drawn once per restart
 and shared by every stacked problem, so candidates are compared on common random
 numbers and a candidate's result does not depend on which others are stacked with
-it.
+it. It does depend on its own shape: zero columns added as padding change the last
+bits of the distances, which matters at exact ties (duplicate records), so
+cross-validation pads each candidate to a width set by its own rank alone.
 """
 
 from __future__ import annotations
@@ -58,7 +60,7 @@ def kmeans_stacked(
     first = rng.integers(n, size=n_init)
     trials = 2 + int(math.log(k))
     draws = rng.random((k - 1, n_init, trials))
-    step = chunk_size(n, r, n_init)
+    step = chunk_size(n, r, n_init, k)
     labels = np.empty((P, n), dtype=np.intp)
     inertia = np.empty(P)
     for lo in range(0, P, step):
@@ -68,9 +70,10 @@ def kmeans_stacked(
     return labels, inertia
 
 
-def chunk_size(n: int, r: int, n_init: int) -> int:
-    """How many problems of n records × r columns to stack at once (bounded memory)."""
-    return max(1, CHUNK_ELEMENTS // max(n * max(r, 1) * n_init, 1))
+def chunk_size(n: int, r: int, n_init: int, k: int) -> int:
+    """How many problems of n records × r columns to stack at once (bounded memory:
+    the records, and the records × centres of every restart)."""
+    return max(1, CHUNK_ELEMENTS // max(n * max(r, n_init * k, 1), 1))
 
 
 def _best_of(Z, k, first, draws, max_iter, tol_abs) -> tuple[np.ndarray, np.ndarray]:

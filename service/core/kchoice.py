@@ -58,7 +58,8 @@ class KEvidence:
     curves: list[dict[str, np.ndarray]]
     truths: list[int]
     k_max: int
-    mapping: str  # "leave_one_batch_out", "out_of_fold" or "in_sample"
+    # "leave_one_batch_out", "out_of_fold", "in_sample" or "partly_in_sample"
+    mapping: str
     # per rule without parameters, the k it reads from each batch's curves
     fixed: dict[str, list[int]] = field(default_factory=dict)
 

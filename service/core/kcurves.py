@@ -29,6 +29,7 @@ from .clustering import single_threaded
 
 SAMPLE_CAP = 1000  # records used to draw the curves (pairwise distances are O(n²))
 LLOYD_ITERATIONS = 20
+_ZERO_SPREAD = 1e-12  # W_k below this share of W_1 is rounding, not spread (our choice)
 _BLOCK_ELEMENTS = 1 << 22  # bound on the temporary arrays of one batch of k values
 _CACHE_ELEMENTS = 1 << 14  # temporaries this small stay in a core's cache
 
@@ -75,8 +76,11 @@ def _fill(out: dict[str, list], Z: np.ndarray, k_hi: int, total: float) -> None:
             np.where(ks < n, _silhouettes(dist, labels, stack), np.nan).tolist()
         )
         for k, w in zip(ks.tolist(), within.tolist(), strict=True):
+            # W_k at rounding level (fewer distinct points than k): every group is
+            # tight, the ratio is infinite rather than noise over noise
             out["calinski_harabasz"].append(
-                (total - w) / (k - 1) * (n - k) / w if w > 0 and k < n else np.inf
+                (total - w) / (k - 1) * (n - k) / w if w > _ZERO_SPREAD * total and k < n
+                else np.inf
             )
 
 

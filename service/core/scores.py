@@ -26,16 +26,23 @@ def agreement(labels_true, labels_pred) -> dict[str, float]:
 def agreement_many(truth: np.ndarray, preds: np.ndarray) -> list[dict[str, float]]:
     """:func:`agreement` of one expert grouping against each row of ``preds``, for
     labels already coded 0..a−1 (``truth``, n) and 0..b−1 (``preds``, P × n), computed
-    for all rows at once from P contingency tables."""
+    for all rows at once from P contingency tables kept sparse (only the non-empty
+    cells: memory grows with the records, not with a × b)."""
     preds = np.asarray(preds, dtype=np.int64)
+    truth = np.asarray(truth, dtype=np.int64)
     P, n = preds.shape
     a = int(truth.max()) + 1 if n else 1
     b = int(preds.max()) + 1 if n else 1
-    flat = (np.arange(P)[:, None] * (a * b) + truth.astype(np.int64) * b + preds).ravel()
-    tables = np.bincount(flat, minlength=P * a * b).reshape(P, a, b).astype(np.float64)
-    rows, cols = tables.sum(axis=2), tables.sum(axis=1)  # P × a, P × b
-    sum_sq = np.einsum("pij,pij->p", tables, tables)
-    rows_sq, cols_sq = np.einsum("pi,pi->p", rows, rows), np.einsum("pj,pj->p", cols, cols)
+    # the non-empty cells of every table: key (table p, truth i, pred j) → count
+    keys = (np.arange(P)[:, None] * a + truth) * b + preds
+    cells, count = np.unique(keys.ravel(), return_counts=True)
+    table_of, row_of, col_of = cells // (a * b), (cells // b) % a, cells % b
+    count = count.astype(np.float64)
+    rows = np.bincount(truth, minlength=a).astype(np.float64)  # the same for every p
+    cols = np.bincount((np.arange(P)[:, None] * b + preds).ravel(), minlength=P * b)
+    cols = cols.reshape(P, b).astype(np.float64)
+    sum_sq = np.bincount(table_of, weights=count**2, minlength=P)
+    rows_sq, cols_sq = float(rows @ rows), np.einsum("pj,pj->p", cols, cols)
     # pair counts (tn, fp, fn, tp) over ordered pairs, as scikit-learn's
     # pair_confusion_matrix counts them (exact in float64 while n² < 2⁵³)
     tp, fp, fn = sum_sq - n, cols_sq - sum_sq, rows_sq - sum_sq
@@ -45,22 +52,27 @@ def agreement_many(truth: np.ndarray, preds: np.ndarray) -> list[dict[str, float
     ari = np.where(same, 1.0, 2.0 * (tp * tn - fn * fp) / np.where(same, 1.0, denom))
     agree, total = tn + tp, tn + fp + fn + tp
     rand = np.where((agree == total) | (total == 0), 1.0, agree / np.maximum(total, 1.0))
-    nmi = _nmi_many(tables, rows, cols, float(n))
+    nmi = _nmi_many(count, table_of, rows[row_of], cols[table_of, col_of], rows, cols, n, P)
     return [
         {"ari": float(x), "nmi": float(y), "rand": float(z)}
         for x, y, z in zip(ari, nmi, rand, strict=True)
     ]
 
 
-def _nmi_many(tables, rows, cols, n) -> np.ndarray:
+def _nmi_many(count, table_of, row_n, col_n, rows, cols, n: int, P: int) -> np.ndarray:
+    """NMI of every table from its non-empty cells (count, with their row and column
+    totals) and the totals themselves."""
+    if n == 0:
+        return np.ones(P)
+    # Σ p_ij log(p_ij / (p_i p_j)) over the non-empty cells, per table
+    terms = count / n * (np.log(count) + np.log(n) - np.log(row_n) - np.log(col_n))
+    mi = np.maximum(np.bincount(table_of, weights=terms, minlength=P), 0.0)
+    pr = rows[rows > 0] / n
+    h_true = float(-np.sum(pr * np.log(pr)))
     with np.errstate(divide="ignore", invalid="ignore"):
-        p, pr, pc = tables / n, rows / n, cols / n
-        outer = pr[:, :, None] * pc[:, None, :]
-        terms = np.where(p > 0, p * (np.log(p) - np.log(outer)), 0.0)
-        h_true = -np.where(pr > 0, pr * np.log(pr), 0.0).sum(axis=1)
+        pc = cols / n
         h_pred = -np.where(pc > 0, pc * np.log(pc), 0.0).sum(axis=1)
-    mi = np.maximum(terms.sum(axis=(1, 2)), 0.0)
     nmi = mi / np.maximum((h_true + h_pred) / 2.0, np.finfo("float64").eps)
     nmi = np.where(mi == 0.0, 0.0, nmi)
-    trivial = ((rows > 0).sum(axis=1) <= 1) & ((cols > 0).sum(axis=1) <= 1)
+    trivial = (np.count_nonzero(rows) <= 1) & ((cols > 0).sum(axis=1) <= 1)
     return np.where(trivial, 1.0, nmi)

@@ -145,7 +145,7 @@ class MetricSelector:
         for w in caught:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         self._report_progress("k-rule", 0.85)
-        evidence = self._k_evidence(winner)
+        evidence = self._k_evidence(winner, metric)
         metric = metric.with_k_rule(kchoice.rule_from_evidence(evidence))
         k_acc, k_trials = None, 0
         if self.estimate_k:
@@ -250,14 +250,16 @@ class MetricSelector:
             best,
         )
 
-    def _k_evidence(self, winner: Candidate) -> kchoice.KEvidence:
+    def _k_evidence(self, winner: Candidate, metric: FittedMetric) -> kchoice.KEvidence:
         """Curves for the k rule from (at most ``max_k_batches``, evenly spread) batches.
 
         Each batch is seen through the winning candidate as fitted in the
         cross-validation fold that held the batch out (first repetition), so no batch
         shaped its own map; when that fold could not be fitted, through the learner
-        refitted without the batch. The batches' records are the subsamples scored in
-        cross-validation.
+        refitted without the batch, and when that cannot be fitted either (e.g. the
+        other batches have no spread), through ``metric`` itself — then the mapping is
+        reported as ``partly_in_sample``. The batches' records are the subsamples
+        scored in cross-validation.
         """
         which = list(range(len(self._cv.batches)))
         if len(which) > self.max_k_batches:
@@ -268,6 +270,7 @@ class MetricSelector:
         }
         fitted: dict[int, FittedMetric | None] = {}
         maps: list[FittedMetric] = []
+        in_sample = False
         for b in which:
             i = fold_of[b]
             if i not in fitted:
@@ -276,10 +279,17 @@ class MetricSelector:
             m = fitted[i]
             if m is None:  # rare: refit from all statistics but this batch's
                 rest = BatchStats.sum([s for j, s in enumerate(self._cv.stats) if j != b])
-                m = fit_metric(rest, winner.method, winner.alpha or 1.0, self.max_rank)
+                try:
+                    with warnings.catch_warnings():
+                        warnings.simplefilter("ignore")  # the final fit warned already
+                        m = fit_metric(rest, winner.method, winner.alpha or 1.0, self.max_rank)
+                except CoreError:
+                    m, in_sample = metric, True
             maps.append(m)
         data = [self._cv.held_out_data(b) for b in which]
         mapping = "leave_one_batch_out" if self._cv.leave_one_out else "out_of_fold"
+        if in_sample:
+            mapping = "partly_in_sample"
         return kchoice.evidence_from_maps(maps, data, self.k_max, self.random_state, mapping)
 
     def _report_progress(self, stage: str, fraction: float) -> None:

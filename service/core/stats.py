@@ -20,7 +20,7 @@ import numpy as np
 from scipy import sparse
 
 from .errors import CoreError
-from .validation import check_batch, check_matrix
+from .validation import check_groups, check_matrix
 
 _MAGIC = b"LWS1"
 # a removal that leaves less than this share of a feature's spread is redone by summing
@@ -58,18 +58,19 @@ class BatchStats:
         """Statistics of one labelled batch; validates the batch first."""
         # NaN or infinity anywhere makes its column's diagonal of XᵀX non-finite, so
         # the scan of every value waits for the product (saves one pass over X)
-        X, codes = check_batch(X, groups, finite=False)
+        X = check_matrix(X, "records", finite=False)
+        with np.errstate(invalid="ignore"):  # inf · 0 in the product: raised below
+            gram = X.T @ X
+        if not np.isfinite(np.diag(gram)).all():
+            check_matrix(X)  # names the first NaN or infinity; huge finite values pass
+        codes = check_groups(X, groups)
         n, d = X.shape
         k = int(codes.max()) + 1
         counts = np.bincount(codes, minlength=k).astype(float)
         # group sums with one sparse indicator product (np.add.at is several times slower)
         # (k × n, column j holds record j's group: the indicator's transpose, built as is)
         member_t = sparse.csc_array((np.ones(n), codes, np.arange(n + 1)), shape=(k, n))
-        with np.errstate(invalid="ignore"):  # inf · 0 in a product: raised below
-            raw_group_sums = np.asarray(member_t @ X)
-            gram = X.T @ X
-        if not np.isfinite(np.diag(gram)).all():
-            check_matrix(X)  # names the first NaN or infinity; huge finite values pass
+        raw_group_sums = np.asarray(member_t @ X)
         sums = raw_group_sums.sum(axis=0)
         mean = sums / n
         G = gram - n * np.outer(mean, mean)

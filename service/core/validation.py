@@ -35,14 +35,14 @@ def check_matrix(
     return arr
 
 
-def check_batch(
-    X, groups, n_features: int | None = None, finite: bool = True
-) -> tuple[np.ndarray, np.ndarray]:
-    """Validate a labelled batch; returns the matrix and group codes 0..k-1.
+def check_batch(X, groups, n_features: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Validate a labelled batch; returns the matrix and group codes 0..k-1."""
+    arr = check_matrix(X, "records", n_features)
+    return arr, check_groups(arr, groups)
 
-    ``finite`` as in :func:`check_matrix`.
-    """
-    arr = check_matrix(X, "records", n_features, finite)
+
+def check_groups(arr: np.ndarray, groups) -> np.ndarray:
+    """Group codes 0..k-1 for the records of ``arr`` (a matrix checked already)."""
     labels = np.asarray(groups)
     if labels.ndim != 1:
         raise CoreError("groups must be a flat list of labels", "groups")
@@ -60,7 +60,7 @@ def check_batch(
         raise CoreError(f"groups must be labels of one kind ({exc})", "groups") from exc
     if codes.max() < 1:
         raise NotEnoughDataError("a batch needs at least two groups", "groups")
-    return arr, codes.astype(np.intp)
+    return codes.astype(np.intp)
 
 
 def _group_codes(labels: np.ndarray) -> np.ndarray:

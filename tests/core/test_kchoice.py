@@ -229,3 +229,17 @@ def test_held_out_hit_rate_recalibrates_without_each_fold(monkeypatch) -> None:
     assert np.mean(hits) >= 0.9  # separated blobs: rule of thumb, no source
     # a single batch leaves nothing to calibrate on held out
     assert kchoice.held_out_k_hits(ev.subset([0])) == []
+
+
+def test_calinski_harabasz_is_infinite_once_every_distinct_point_has_its_group() -> None:
+    # three distinct points repeated: from k = 3 on the within-group spread is zero up
+    # to rounding; the ratio must read as infinite there, not as rounding noise, so
+    # its rule picks k = 3 (the smallest such k), as the exact arithmetic would
+    from service.core.kcurves import curves
+
+    points = np.array([[0.0, 0.0], [5.0, 1.0], [1.0, 7.0]])
+    Z = np.repeat(points, [10, 7, 13], axis=0) + 1e3  # an offset for rounding to act on
+    c = curves(Z, k_max=6)
+    assert np.isfinite(c["calinski_harabasz"][1]) and np.all(np.isinf(c["calinski_harabasz"][2:]))
+    rule = {"rule": "calinski_harabasz", "params": {}, "k_max": 6}
+    assert choose_k(Z, rule) == 3

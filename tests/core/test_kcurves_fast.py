@@ -138,7 +138,8 @@ def assert_same_curves(new: dict, ref: dict) -> None:
     np.testing.assert_allclose(new["inertia"], ref["inertia"], rtol=1e-9, atol=1e-12 * total)
     np.testing.assert_allclose(new["silhouette"], ref["silhouette"], rtol=1e-9, atol=1e-12)
     # the ratio divides by W_k: where W_k is rounding noise (fewer distinct points
-    # than k) both ratios are noise over noise, only their size is meaningful
+    # than k) the reference's ratio is noise over noise (only its size means
+    # anything); the new code calls it infinite below 1e-12 of W_1
     meaningful = ref["inertia"] > 1e-9 * total
     np.testing.assert_allclose(
         new["calinski_harabasz"][meaningful], ref["calinski_harabasz"][meaningful], rtol=1e-9

@@ -67,3 +67,13 @@ def test_many_rows_at_once_equal_one_at_a_time() -> None:
             ref = _reference(truth, pred)
             for key in ref:
                 assert got[key] == pytest.approx(ref[key], abs=1e-12), (key, n)
+
+
+def test_many_groups_cost_memory_in_records_not_groups_squared() -> None:
+    # 20,000 singleton groups: a dense table would hold 4·10⁸ cells (3.2 GB); the
+    # values are scikit-learn's for identical partitions and for one group vs many
+    n = 20_000
+    for pred in (np.arange(n)[::-1], np.zeros(n, dtype=int)):
+        got, ref = agreement(np.arange(n), pred), _reference(np.arange(n), pred)
+        for key in ref:
+            assert got[key] == pytest.approx(ref[key], abs=1e-12), key

@@ -188,3 +188,15 @@ def test_few_batch_rule_is_no_worse_than_naive_argmax_held_out() -> None:
     # margins: rules of thumb (common practice, no source); 0.01 allows one trial's noise
     assert mean["one_se"] >= mean["argmax"] - 0.01
     assert mean["one_se"] > mean["euclidean"] + 0.05
+
+
+def test_a_batch_without_spread_does_not_break_the_k_rule() -> None:
+    # two batches, one of identical records: the fold holding out the other batch has
+    # nothing to learn from, so that batch is seen through the final metric instead
+    rng = np.random.default_rng(0)
+    X0 = np.r_[rng.normal(0, 1, (20, 3)), rng.normal(4, 1, (20, 3))]
+    y0 = np.r_[[0] * 20, [1] * 20]
+    X1, y1 = np.ones((10, 3)), np.r_[[0] * 5, [1] * 5]
+    sel = MetricSelector(alphas=ALPHAS, random_state=0).fit([(X0, y0), (X1, y1)])
+    assert sel.metric_.k_rule["mapping"] == "partly_in_sample"
+    assert sel.report_["k_trials"] == 2

@@ -126,3 +126,11 @@ def test_nan_or_infinity_anywhere_in_a_large_batch_is_named() -> None:
             with pytest.raises(CoreError, match=f"row {row}, column {col}") as info:
                 BatchStats.from_batch(Y, groups)
             assert info.value.field == "records"
+
+
+def test_nan_is_named_before_the_group_checks() -> None:
+    # a batch wrong twice (NaN and a single group): the records' error comes first,
+    # as the order of the checks promises
+    with pytest.raises(CoreError, match="NaN or infinity") as info:
+        BatchStats.from_batch([[np.nan, 1.0], [0.0, 2.0]], [0, 0])
+    assert info.value.field == "records"
