@@ -228,8 +228,7 @@ class CrossValidation:
                 for q, j in enumerate(part):
                     Z = self._mapped(metrics[j], X, b, standard)  # type: ignore[arg-type]
                     Zs[q, :, : Z.shape[1]] = Z  # zero columns add nothing to distances
-                widths = [metrics[j].rank for j in part]  # type: ignore[union-attr]
-                labels, _ = kmeans_stacked(Zs, k, self.n_init, seed, widths=widths)
+                labels, _ = kmeans_stacked(Zs, k, self.n_init, seed)
                 for q, j in enumerate(part):
                     preds[j] = labels[q]
         return preds  # type: ignore[return-value]

@@ -9,8 +9,9 @@ operation over all of them.
 
 The algorithm is scikit-learn's (the reference in the tests): greedy k-means++
 seeding with ``2 + ⌊ln k⌋`` local trials per centre (Arthur & Vassilvitskii 2007),
-then Lloyd iterations until no label changes or the centres move less than
-scikit-learn's tolerance. Two deliberate differences: a centre
+then Lloyd iterations until no label changes (scikit-learn's ``tol=0``; its default
+tolerance stops a little earlier when centres barely move). Two deliberate
+differences: a centre
 whose group empties keeps its place (scikit-learn moves it to a far record; with
 k-means++ seeds this is rare), and the random numbers are drawn once per restart
 and shared by every stacked problem, so candidates are compared on common random
@@ -27,7 +28,6 @@ import math
 import numpy as np
 
 MAX_ITER = 300  # scikit-learn's default; small problems converge in a handful
-TOL = 1e-4  # scikit-learn's default tolerance on the centres' movement
 # elements of the stacked (problems × records × columns) array per chunk
 CHUNK_ELEMENTS = 1 << 21
 
@@ -38,24 +38,17 @@ def kmeans_stacked(
     n_init: int,
     seed,
     max_iter: int = MAX_ITER,
-    tol: float = TOL,
-    widths=None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Best-of-``n_init`` k-means of each problem in ``Z`` (P × n × r), at ``k``.
 
     Returns ``(labels (P × n), inertia (P,))``. ``seed`` feeds
     ``numpy.random.default_rng``; the same seed gives the same result for a problem
-    whatever else is stacked with it. Requires ``2 ≤ k ≤ n``. ``widths``: per
-    problem, how many leading columns are its own (the rest is zero padding; it
-    matters only for the tolerance, a share of the mean column variance).
+    whatever else is stacked with it. Requires ``2 ≤ k ≤ n``.
     """
     P, n, r = Z.shape
     # centred per problem: k-means ignores location, and ‖z‖² − 2zᵀc + ‖c‖² would lose
     # the spread's digits to a large common offset
     Z = Z - Z.mean(axis=1, keepdims=True)
-    cols = np.full(P, r) if widths is None else np.maximum(np.asarray(widths), 1)
-    # scikit-learn's tolerance: tol × the mean variance of the problem's columns
-    tol_abs = tol * np.einsum("pnr,pnr->p", Z, Z) / (n * cols)
     rng = np.random.default_rng(seed)
     first = rng.integers(n, size=n_init)
     trials = 2 + int(math.log(k))
@@ -65,7 +58,7 @@ def kmeans_stacked(
     inertia = np.empty(P)
     for lo in range(0, P, step):
         part = Z[lo : lo + step]
-        lab, cost = _best_of(part, k, first, draws, max_iter, tol_abs[lo : lo + step])
+        lab, cost = _best_of(part, k, first, draws, max_iter)
         labels[lo : lo + step], inertia[lo : lo + step] = lab, cost
     return labels, inertia
 
@@ -76,10 +69,10 @@ def chunk_size(n: int, r: int, n_init: int, k: int) -> int:
     return max(1, CHUNK_ELEMENTS // max(n * max(r, n_init * k, 1), 1))
 
 
-def _best_of(Z, k, first, draws, max_iter, tol_abs) -> tuple[np.ndarray, np.ndarray]:
+def _best_of(Z, k, first, draws, max_iter) -> tuple[np.ndarray, np.ndarray]:
     sq = np.einsum("pnr,pnr->pn", Z, Z)  # ‖z‖², P × n
     centres = _seed(Z, sq, k, first, draws)  # P × (R·k) × r, restart-major
-    labels, cost = _lloyd(Z, sq, centres, k, max_iter, tol_abs)  # P × n × R, P × R
+    labels, cost = _lloyd(Z, sq, centres, k, max_iter)  # P × n × R, P × R
     best = np.argmin(cost, axis=1)  # the first of equal costs, as scikit-learn keeps
     return np.take_along_axis(labels, best[:, None, None], axis=2)[..., 0], cost[
         np.arange(Z.shape[0]), best
@@ -117,16 +110,13 @@ def _seed(Z, sq, k, first, draws) -> np.ndarray:
     return Z[prow, chosen.reshape(P, R * k)]
 
 
-def _lloyd(Z, sq, centres, k, max_iter, tol_abs=None) -> tuple[np.ndarray, np.ndarray]:
-    """Lloyd iterations from ``centres`` (P × (R·k) × r), as scikit-learn runs them.
+def _lloyd(Z, sq, centres, k, max_iter) -> tuple[np.ndarray, np.ndarray]:
+    """Lloyd iterations from ``centres`` (P × (R·k) × r) until no label changes.
 
-    A restart stops when no label changes, or when its centres moved by at most
-    ``tol_abs`` (summed squared shift, per problem; None: 0), after which its labels
-    are assigned once more to the final centres. Returns labels P × n × R and
-    inertia P × R. A problem leaves the stack as soon as all its restarts stopped,
-    so the slowest one does not set the pace for all. The nearest centre is found
-    from ``‖c‖² − 2 zᵀc`` (``‖z‖²`` does not change the arg-min; it is added for
-    the cost).
+    Returns labels P × n × R and inertia P × R. A problem leaves the stack as soon
+    as none of its restarts changes a label, so the slowest one does not set the
+    pace for all. The nearest centre is found from ``‖c‖² − 2 zᵀc`` (``‖z‖²`` does
+    not change the arg-min; it is added for the cost).
     """
     P, n, _ = Z.shape
     R = centres.shape[1] // k
@@ -134,8 +124,6 @@ def _lloyd(Z, sq, centres, k, max_iter, tol_abs=None) -> tuple[np.ndarray, np.nd
     labels_out = np.empty((P, n, R), dtype=np.intp)
     cost_out = np.empty((P, R))
     active = np.arange(P)
-    tol_abs = np.zeros(P) if tol_abs is None else np.asarray(tol_abs, dtype=float)
-    stopped = np.zeros((P, R), dtype=bool)  # centres final; one last assignment pending
 
     def finish(which: np.ndarray, labels: np.ndarray, score: np.ndarray) -> None:
         nearest = np.take_along_axis(score, labels[..., None], axis=-1)[..., 0]
@@ -147,7 +135,7 @@ def _lloyd(Z, sq, centres, k, max_iter, tol_abs=None) -> tuple[np.ndarray, np.nd
         score = _score(Z, centres).reshape(-1, n, R, k)
         new = np.argmin(score, axis=-1)  # A × n × R
         if labels is not None:
-            done = ((new == labels).all(axis=1) | stopped).all(axis=1)
+            done = (new == labels).all(axis=(1, 2))
             if done.any():
                 finish(done, new[done], score[done])
                 if done.all():
@@ -156,7 +144,6 @@ def _lloyd(Z, sq, centres, k, max_iter, tol_abs=None) -> tuple[np.ndarray, np.nd
                 active, Z, sq, centres, new = (
                     active[keep], Z[keep], sq[keep], centres[keep], new[keep]
                 )
-                stopped, tol_abs = stopped[keep], tol_abs[keep]
         labels = new
         onehot = (labels[..., None] == groups).reshape(-1, n, R * k).astype(Z.dtype)
         counts = onehot.sum(axis=1)  # A × (R·k)
@@ -165,13 +152,7 @@ def _lloyd(Z, sq, centres, k, max_iter, tol_abs=None) -> tuple[np.ndarray, np.nd
         if empty.any():
             sums[empty] = centres[empty]
             counts[empty] = 1.0
-        moved = sums / counts[..., None]
-        if stopped.any():  # stopped restarts keep their centres
-            hold = np.repeat(stopped, k, axis=1)
-            moved[hold] = centres[hold]
-        shift = ((moved - centres) ** 2).sum(axis=2).reshape(-1, R, k).sum(axis=2)
-        stopped = stopped | (shift <= tol_abs[:, None])
-        centres = moved
+        centres = sums / counts[..., None]
     score = _score(Z, centres).reshape(-1, n, R, k)
     finish(np.ones(active.size, dtype=bool), np.argmin(score, axis=-1), score)
     return labels_out, cost_out

@@ -29,19 +29,15 @@ def _problems(name: str, seed: int) -> list[tuple[np.ndarray, int]]:
 
 
 @pytest.mark.parametrize("name", ["digits", "wine"])
-@pytest.mark.parametrize("tol", [0.0, 1e-4])
-def test_lloyd_from_given_centres_equals_scikit_learn(name: str, tol: float) -> None:
-    # reference: sklearn KMeans(init=centres, n_init=1, algorithm="lloyd", tol=tol) runs
-    # Lloyd from the same centres, stopping when no label changes or the centres move
-    # less than tol × the mean column variance (1e-4 is its default); labels and
-    # inertia must agree
+def test_lloyd_from_given_centres_equals_scikit_learn(name: str) -> None:
+    # reference: sklearn KMeans(init=centres, n_init=1, algorithm="lloyd", tol=0) runs
+    # Lloyd from the same centres until no label changes; labels and inertia agree
     for Z, k in _problems(name, seed=1):
         init = Z[np.linspace(0, Z.shape[0] - 1, k).astype(int)]
-        sq = np.einsum("nr,nr->n", Z - Z.mean(axis=0), Z - Z.mean(axis=0))[None]
-        tol_abs = [tol * float(np.var(Z, axis=0).mean())]
         Zc, C = Z - Z.mean(axis=0), init - Z.mean(axis=0)
-        labels, cost = _lloyd(Zc[None], sq, C[None], k, 300, tol_abs)
-        ref = KMeans(k, init=init, n_init=1, algorithm="lloyd", tol=tol).fit(Z)
+        sq = np.einsum("nr,nr->n", Zc, Zc)[None]
+        labels, cost = _lloyd(Zc[None], sq, C[None], k, 300)
+        ref = KMeans(k, init=init, n_init=1, algorithm="lloyd", tol=0.0).fit(Z)
         np.testing.assert_array_equal(labels[0, :, 0], ref.labels_)
         assert cost[0, 0] == pytest.approx(ref.inertia_, rel=1e-9)
 
