@@ -13,7 +13,7 @@ import numpy as np
 from ._stacked import chunk_size, kmeans_stacked
 from .clustering import cluster
 from .errors import CoreError, RecordOverflowError
-from .learners import Prepared, fit_prepared
+from .learners import Prepared, fit_prepared, scoring_map
 from .metric import FittedMetric
 from .scores import agreement_many
 from .stats import BatchStats, without
@@ -104,10 +104,11 @@ class CrossValidation:
         self.max_records = max(int(max_records), 2)
         self.n_init = max(int(n_init), 1)
         self._held: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+        # per fold, the α-independent part of its fits; the first repetition's are
+        # kept while they fit in KEEP_ELEMENTS floats (the k rule refits the winner
+        # from them), the others are dropped once the fold is scored
         self._prepared: dict[int, Prepared | None] = {}
-        # fitted fold metrics of the first repetition, kept while they fit in
-        # KEEP_ELEMENTS floats: the k rule later reads the winner's again
-        self._kept: dict[tuple[int, Candidate], FittedMetric | None] = {}
+        self._kept: set[int] = set()
         self._kept_size = 0
         # per candidate, per (fold, batch): predicted labels and their scores
         self._scores: dict[Candidate, dict[tuple[int, int], _Scored]] = {}
@@ -142,8 +143,20 @@ class CrossValidation:
 
     def fold_metric(self, i: int, cand: Candidate) -> FittedMetric | None:
         """The candidate fitted on fold ``i``'s training batches (None if it cannot be)."""
-        if (i, cand) in self._kept:
-            return self._kept[(i, cand)]
+        prep = self._prep(i)
+        if prep is None:
+            return None
+        return fit_prepared(prep, cand.method, cand.alpha or 1.0, self.max_rank)
+
+    def _scoring_metric(self, i: int, cand: Candidate) -> FittedMetric | None:
+        """As :meth:`fold_metric`, in a form only good for grouping (see
+        :func:`service.core.learners.scoring_map`: the same distances, cheaper)."""
+        prep = self._prep(i)
+        if prep is None:
+            return None
+        return scoring_map(prep, cand.method, cand.alpha or 1.0, self.max_rank)
+
+    def _prep(self, i: int) -> Prepared | None:
         if i not in self._prepared:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")  # the final fit reports warnings once
@@ -151,17 +164,19 @@ class CrossValidation:
                     self._prepared[i] = Prepared(self.train_stats(i))
                 except CoreError:  # e.g. no spread left in this fold's training batches
                     self._prepared[i] = None
-        prep = self._prepared[i]
-        metric = None
-        if prep is not None:
-            metric = fit_prepared(prep, cand.method, cand.alpha or 1.0, self.max_rank)
-        size = 0 if metric is None else metric.components.size + 2 * metric.n_features
-        # the Euclidean map (d × d, quick to rebuild) would spend the budget first
-        keep = self.folds[i].repeat == 0 and cand.method != "euclidean"
-        if keep and self._kept_size + size <= KEEP_ELEMENTS:
-            self._kept[(i, cand)] = metric
+        return self._prepared[i]
+
+    def forget(self, i: int) -> None:
+        """Drop fold ``i``'s prepared statistics unless they are kept (see __init__)."""
+        prep = self._prepared.get(i)
+        if prep is None or i in self._kept:
+            return
+        size = 5 * prep.stats.n_features**2  # G, H and the eigenvector bases: O(d²)
+        if self.folds[i].repeat == 0 and self._kept_size + size <= KEEP_ELEMENTS:
+            self._kept.add(i)
             self._kept_size += size
-        return metric
+        else:
+            del self._prepared[i]
 
     # ---------------------------------------------------------------- scoring
     def run(
@@ -171,7 +186,7 @@ class CrossValidation:
         for i, fold in enumerate(self.folds):
             todo = [c for c in cands if (i, fold.held_out[0]) not in self._scores.get(c, {})]
             if todo:
-                metrics = [self.fold_metric(i, c) for c in todo]
+                metrics = [self._scoring_metric(i, c) for c in todo]
                 for b in fold.held_out:
                     # the raw baseline rides along the first time its batch is grouped
                     raw = [] if b in self._raw else [self._raw_metric(b)]
@@ -184,10 +199,6 @@ class CrossValidation:
             if progress is not None:
                 progress((i + 1) / len(self.folds))
             self.forget(i)
-
-    def forget(self, i: int) -> None:
-        """Drop fold ``i``'s prepared statistics (O(d²) each: keep one fold's at a time)."""
-        self._prepared.pop(i, None)
 
     def _group_all(
         self, metrics: Sequence[FittedMetric | None], b: int, stream: tuple[int, ...]

@@ -42,7 +42,9 @@ Learners:
 
 Cost: the α-independent work (eigendecompositions of G and of the within-group
 scatter) is done once per set of statistics (:class:`Prepared`, O(d³)); each α then
-costs O(d·q²) with q = rank H ≤ Σ_b (k_b − 1). Cross-validation keeps one per fold.
+costs O(d·q²) with q = rank H ≤ Σ_b (k_b − 1). Cross-validation keeps one per fold
+and groups held-out batches in :func:`scoring_map`'s form of a candidate (for
+``closed_form``: the same distances without the per-α SVD).
 
 Scale: k-means does not care about an overall factor, so every learned map except
 ``euclidean`` is rescaled so that the mapped training records have, on average over
@@ -186,6 +188,27 @@ def fit_prepared(
         components=L,
         info=info,
     )
+
+
+def scoring_map(
+    prep: Prepared, method: str, alpha: float, max_rank: int | None = None
+) -> FittedMetric:
+    """A map that k-means cannot tell from ``fit_prepared``'s, for held-out scoring.
+
+    For ``closed_form`` without ``max_rank`` it skips the per-α SVD: ``L = Wᵀ Vᵀ``
+    (q × d) satisfies ``LᵀL = M`` exactly, and k-means depends on the records only
+    through distances under M, which do not change with a rotation of L or an
+    overall factor (the normalisation). What differs: directions with eigenvalues
+    below ``rel_tol`` × the largest are kept (their distances weigh at most 1e-8 of
+    the largest), and the components are neither ordered nor normalised, so the
+    result is for grouping only. Other learners: ``fit_prepared``.
+    """
+    if method != "closed_form" or max_rank is not None:
+        return fit_prepared(prep, method, alpha, max_rank)
+    V, gam, F = prep.range_parts()
+    lam = alpha * prep.ridge_unit
+    components = ((F / (gam + lam)[:, None]).T @ V.T) if F.shape[1] else np.zeros((1, V.shape[0]))
+    return FittedMetric(method, float(alpha), prep.scales, prep.stats.mean, components)
 
 
 def _check_alpha(alpha: Any) -> float:

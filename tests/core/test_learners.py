@@ -252,3 +252,40 @@ def test_a_method_without_a_learner_fails_loudly():
     with pytest.raises(CoreError) as err:
         fit_prepared(Prepared(BatchStats.from_batch(X, y)), "nearest_shrunken", 1e-3)
     assert err.value.field == "method"
+
+
+def test_scoring_map_gives_the_same_distances_as_the_fitted_map() -> None:
+    # cross-validation groups with learners.scoring_map (no per-α SVD): its M = LᵀL
+    # must equal the fitted closed form's up to an overall factor and the eigenvalues
+    # below rel_tol (1e-8) of the largest, so k-means sees the same distances
+    # (outside data: digits batches, tests/datasets.py)
+    from service.core._stacked import kmeans_stacked
+    from service.core.learners import Prepared, fit_prepared, scoring_map
+    from tests.datasets import make_batches
+
+    X, y = load_open("digits")
+    rng = np.random.default_rng(3)
+    batches = make_batches(X, y, 12, rng)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ZeroSpreadWarning)  # blank pixels
+        prep = Prepared(BatchStats.sum(BatchStats.from_batch(a, b) for a, b in batches))
+    held, truth = make_batches(X, y, 1, rng)[0]
+    for alpha in (1e-4, 1e-2, 1.0, 10.0):
+        fast, full = scoring_map(prep, "closed_form", alpha), fit_prepared(
+            prep, "closed_form", alpha
+        )
+        M_fast, M_full = fast.matrix / np.trace(fast.matrix), full.matrix / np.trace(full.matrix)
+        assert_allclose(M_fast, M_full, atol=1e-7 * np.abs(M_full).max())
+        Zs = [m.transform(held) for m in (fast, full)]
+        r = max(Z.shape[1] for Z in Zs)
+        stack = np.zeros((2, len(truth), r))
+        for q, Z in enumerate(Zs):
+            stack[q, :, : Z.shape[1]] = Z / np.sqrt(np.trace(Z.T @ Z))  # one scale
+        labels, _ = kmeans_stacked(stack, len(np.unique(truth)), 2, seed=0)
+        assert adjusted_rand_score(labels[0], labels[1]) == 1.0
+    # any other learner, or a rank cap, is simply the fitted map
+    assert scoring_map(prep, "discriminant", 0.1).rank == fit_prepared(
+        prep, "discriminant", 0.1
+    ).rank
+    capped = scoring_map(prep, "closed_form", 0.1, max_rank=3)
+    assert capped.rank == 3
