@@ -57,6 +57,21 @@ def make_folds(
     return folds
 
 
+def _check_reach(Zs: np.ndarray, b: int) -> None:
+    """k-means works with squared distances between records, up to 4·‖z‖²: they must
+    stay finite, not only the mapped coordinates (``Zs``: problems × records × r)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        reach = 4.0 * np.einsum("pnr,pnr->pn", Zs, Zs)
+    bad = ~np.isfinite(reach)
+    if bad.any():
+        row = int(np.argwhere(bad)[0, 1])
+        raise RecordOverflowError(
+            f"records of batch {b} are too large to map (row {row} overflows in the "
+            "learned space)",
+            row,
+        )
+
+
 def _padded_width(rank: int, d: int) -> int:
     """The width a map of this rank is padded to when stacked: a power of two, ≤ d."""
     return min(1 << max(rank - 1, 0).bit_length(), max(d, rank))
@@ -237,8 +252,9 @@ class CrossValidation:
                 part = group[lo : lo + step]
                 Zs = np.zeros((len(part), n, r))
                 for q, j in enumerate(part):
-                    Z = self._mapped(metrics[j], X, b, standard)  # type: ignore[arg-type]
+                    Z = self._mapped(metrics[j], X, b, standard, check=False)  # type: ignore[arg-type]
                     Zs[q, :, : Z.shape[1]] = Z  # zero columns add nothing to distances
+                _check_reach(Zs, b)  # once for the chunk
                 labels, _ = kmeans_stacked(Zs, k, self.n_init, seed)
                 for q, j in enumerate(part):
                     preds[j] = labels[q]
@@ -246,9 +262,14 @@ class CrossValidation:
 
     @staticmethod
     def _mapped(
-        metric: FittedMetric, X: np.ndarray, b: int, standard: dict[tuple[int, bytes], np.ndarray]
+        metric: FittedMetric,
+        X: np.ndarray,
+        b: int,
+        standard: dict[tuple[int, bytes], np.ndarray],
+        check: bool = True,
     ) -> np.ndarray:
-        """``metric.transform(X)``; a named error when squared distances would overflow.
+        """``metric.transform(X)``; with ``check``, a named error when squared distances
+        would overflow (see ``_check_reach``).
 
         ``standard`` caches ``(X − mean) / scales`` for metrics fitted on the same
         statistics (records validated at the edge are not checked again).
@@ -258,14 +279,8 @@ class CrossValidation:
             if key not in standard:
                 standard[key] = (X - metric.mean) / metric.scales
             Z = standard[key] @ metric.components.T
-            reach = 4.0 * np.einsum("ij,ij->i", Z, Z)
-        if not np.isfinite(reach).all():
-            row = int(np.argmax(~np.isfinite(reach)))
-            raise RecordOverflowError(
-                f"records of batch {b} are too large to map (row {row} overflows in the "
-                "learned space)",
-                row,
-            )
+        if check:
+            _check_reach(Z[None], b)
         return Z
 
     def _raw_metric(self, b: int) -> FittedMetric:

@@ -59,9 +59,10 @@ class BatchStats:
         # NaN or infinity anywhere makes its column's diagonal of XᵀX non-finite, so
         # the scan of every value waits for the product (saves one pass over X)
         X = check_matrix(X, "records", finite=False)
-        with np.errstate(invalid="ignore"):  # inf · 0 in the product: raised below
+        with np.errstate(invalid="ignore", over="ignore"):  # non-finite: handled below
             gram = X.T @ X
-        if not np.isfinite(np.diag(gram)).all():
+        overflow = not np.isfinite(np.diag(gram)).all()
+        if overflow:
             check_matrix(X)  # names the first NaN or infinity; huge finite values pass
         codes = check_groups(X, groups)
         n, d = X.shape
@@ -73,14 +74,17 @@ class BatchStats:
         raw_group_sums = np.asarray(member_t @ X)
         sums = raw_group_sums.sum(axis=0)
         mean = sums / n
-        G = gram - n * np.outer(mean, mean)
+        with np.errstate(invalid="ignore", over="ignore"):
+            G = gram - n * np.outer(mean, mean)
         # Σ_c n_c m_c m_cᵀ with m_c the centred group means = Σ_c s_c s_cᵀ / n_c
         group_sums = raw_group_sums - counts[:, None] * mean
         # 1e-6: loses at most ~6 of 16 digits to cancellation (our choice, no source)
-        if np.any(np.diag(G) < 1e-6 * np.diag(gram)):
-            # large offsets cancel in the shortcut: centre first (one more pass), for
-            # the group sums too (they cancel the same way). Shift by the first record
-            # before taking the mean, so a constant feature centres to exact zeros.
+        if overflow or np.any(np.diag(G) < 1e-6 * np.diag(gram)):
+            # large offsets cancel in the shortcut (or overflow it): centre first (one
+            # more pass), for the group sums too (they cancel the same way). Shift by
+            # the first record before taking the mean, so a constant feature centres to
+            # exact zeros. Spread itself too large for float64 stays non-finite: the
+            # caller checks.
             shifted = X - X[0]
             centred = shifted - shifted.mean(axis=0)
             G = centred.T @ centred

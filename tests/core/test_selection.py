@@ -200,3 +200,16 @@ def test_a_batch_without_spread_does_not_break_the_k_rule() -> None:
     sel = MetricSelector(alphas=ALPHAS, random_state=0).fit([(X0, y0), (X1, y1)])
     assert sel.metric_.k_rule["mapping"] == "partly_in_sample"
     assert sel.report_["k_trials"] == 2
+
+
+def test_records_that_overflow_once_mapped_are_a_named_error() -> None:
+    # one batch sits 1e160 away: its own scatter is fine (centred), but the others,
+    # mapped around the pooled mean, have squared distances beyond float64
+    from service.core import RecordOverflowError
+
+    batches = signal_batches(6, seed=11)
+    X2, y2 = batches[2]
+    batches[2] = (X2 + 1e160, y2)
+    with pytest.raises(RecordOverflowError, match="too large to map") as info:
+        MetricSelector(alphas=ALPHAS, random_state=0).fit(batches)
+    assert info.value.row is not None

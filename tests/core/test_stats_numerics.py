@@ -108,3 +108,16 @@ def test_a_constant_feature_has_exactly_zero_scatter():
         stats = BatchStats.from_batch(X, np.arange(n) % 3)
         assert stats.G[1, 1] == 0.0 and stats.H[1, 1] == 0.0
         assert np.all(stats.G[1] == 0.0) and np.all(stats.H[1] == 0.0)
+
+
+def test_an_offset_whose_squares_overflow_still_gives_the_centred_scatter() -> None:
+    # the centred scatters are translation-invariant (a fact of the definitions): a
+    # batch moved by 1e155, whose uncentred XᵀX overflows float64 (squares > 1e308),
+    # has the same G and H; its spread (1e148) keeps ~9 digits at that offset
+    rng = np.random.default_rng(7)
+    X = rng.normal(size=(30, 4)) * 1e148
+    y = np.repeat([0, 1, 2], 10)
+    near, far = BatchStats.from_batch(X, y), BatchStats.from_batch(X + 1e155, y)
+    assert np.isfinite(far.G).all() and np.isfinite(far.H).all()
+    np.testing.assert_allclose(far.G, near.G, rtol=1e-6, atol=1e-6 * np.abs(near.G).max())
+    np.testing.assert_allclose(far.H, near.H, rtol=1e-6, atol=1e-6 * np.abs(near.H).max())
