@@ -74,9 +74,8 @@ def _best_of(Z, k, first, draws, max_iter) -> tuple[np.ndarray, np.ndarray]:
     centres = _seed(Z, sq, k, first, draws)  # P × (R·k) × r, restart-major
     labels, cost = _lloyd(Z, sq, centres, k, max_iter)  # P × n × R, P × R
     best = np.argmin(cost, axis=1)  # the first of equal costs, as scikit-learn keeps
-    return np.take_along_axis(labels, best[:, None, None], axis=2)[..., 0], cost[
-        np.arange(Z.shape[0]), best
-    ]
+    rows = np.arange(Z.shape[0])
+    return labels[rows, :, best], cost[rows, best]
 
 
 def _sq_dist(Z: np.ndarray, sq: np.ndarray, C: np.ndarray) -> np.ndarray:
@@ -93,6 +92,7 @@ def _seed(Z, sq, k, first, draws) -> np.ndarray:
     P, n, r = Z.shape
     R, T = first.shape[0], draws.shape[2]
     prow = np.arange(P)[:, None]
+    prow3, rrow = prow, np.arange(R)[None, :]  # index grids (P × R) for the picks
     chosen = np.empty((P, R, k), dtype=np.intp)
     chosen[:, :, 0] = first[None, :]
     closest = np.swapaxes(_sq_dist(Z, sq, Z[:, first]), 1, 2)  # P × R × n
@@ -105,8 +105,8 @@ def _seed(Z, sq, k, first, draws) -> np.ndarray:
         d2 = np.swapaxes(_sq_dist(Z, sq, Z[prow, cand]), 1, 2).reshape(P, R, T, n)
         pooled = np.minimum(closest[:, :, None, :], d2)
         pick = np.argmin(pooled.sum(axis=-1), axis=-1)  # P × R
-        chosen[:, :, c] = np.take_along_axis(cand.reshape(P, R, T), pick[..., None], -1)[..., 0]
-        closest = np.take_along_axis(pooled, pick[..., None, None], axis=2)[:, :, 0]
+        chosen[:, :, c] = cand.reshape(P, R, T)[prow3, rrow, pick]
+        closest = pooled[prow3, rrow, pick]
     return Z[prow, chosen.reshape(P, R * k)]
 
 
@@ -126,7 +126,7 @@ def _lloyd(Z, sq, centres, k, max_iter) -> tuple[np.ndarray, np.ndarray]:
     active = np.arange(P)
 
     def finish(which: np.ndarray, labels: np.ndarray, score: np.ndarray) -> None:
-        nearest = np.take_along_axis(score, labels[..., None], axis=-1)[..., 0]
+        nearest = score.min(axis=-1)  # the labels are the arg-min of this score
         labels_out[active[which]] = labels
         cost_out[active[which]] = np.maximum(nearest + sq[which][:, :, None], 0.0).sum(axis=1)
 
