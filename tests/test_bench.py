@@ -1,0 +1,30 @@
+"""The benchmark scripts still run (``make bench`` is not part of CI; this keeps them
+from rotting). Smoke runs only: nothing here checks a time or a ratio."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def test_fit_bench_quick_run_prints_every_table() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "fit.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    for heading in ("1. Fit on digits", "1b. Closed form + CV against NCA",
+                    "2. Statistics vs fit", "3. Exact 1-D k-means"):
+        assert heading in out
+    assert out.count("target:") == 2  # NCA target and statistics target, each judged
+    assert "one solve:" in out
+
+
+def test_few_batches_bench_runs_with_one_seed_per_data_set() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "few_batches.py"), "1"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "one_se − argmax over 5 problems" in out
