@@ -77,22 +77,12 @@ def _padded_width(rank: int, d: int) -> int:
     return min(1 << max(rank - 1, 0).bit_length(), max(d, rank))
 
 
-class _Scored:
-    """Predicted labels of one held-out batch, with their scores against the experts'."""
-
-    __slots__ = ("pred", "scores")
-
-    def __init__(self, pred: np.ndarray, scores: dict[str, float]) -> None:
-        self.pred = np.asarray(pred, dtype=np.int32)
-        self.scores = scores
-
-    def get(self, key: str) -> float:
-        return self.scores[key]
+Scores = dict[str, float]  # {"ari", "nmi", "rand"} of one held-out grouping
 
 
-def _scored(truth: np.ndarray, preds: list[np.ndarray]) -> list[_Scored]:
-    scores = agreement_many(truth, np.stack(preds))
-    return [_Scored(p, s) for p, s in zip(preds, scores, strict=True)]
+def _scored(truth: np.ndarray, preds: list[np.ndarray]) -> list[Scores]:
+    """Each prediction's agreement with the expert grouping."""
+    return agreement_many(truth, np.stack(preds))
 
 
 class CrossValidation:
@@ -125,9 +115,9 @@ class CrossValidation:
         self._prepared: dict[int, Prepared | None] = {}
         self._kept: set[int] = set()
         self._kept_size = 0
-        # per candidate, per (fold, batch): predicted labels and their scores
-        self._scores: dict[Candidate, dict[tuple[int, int], _Scored]] = {}
-        self._raw: dict[int, _Scored] = {}
+        # per candidate, per (fold, batch): the held-out grouping's scores
+        self._scores: dict[Candidate, dict[tuple[int, int], Scores]] = {}
+        self._raw: dict[int, Scores] = {}
 
     # ------------------------------------------------------------ data access
     def held_out_data(self, b: int) -> tuple[np.ndarray, np.ndarray]:
@@ -289,7 +279,7 @@ class CrossValidation:
         d = X.shape[1]
         return FittedMetric("euclidean", 0.0, np.ones(d), X.mean(axis=0), np.eye(d))
 
-    def _raw_scores(self, b: int) -> _Scored:
+    def _raw_scores(self, b: int) -> Scores:
         if b not in self._raw:  # normally filled by ``run``; same random numbers here
             i = next(i for i, f in enumerate(self.folds) if b in f.held_out)
             codes = self.held_out_data(b)[1]
@@ -300,14 +290,14 @@ class CrossValidation:
     # -------------------------------------------------------------- summaries
     def per_batch(self, cand: Candidate, keys: Sequence[str] = _KEYS) -> dict[str, list[float]]:
         """Each batch's scores averaged over the repeats in which it was held out."""
-        by_batch: dict[int, list[_Scored]] = {}
+        by_batch: dict[int, list[Scores]] = {}
         for (_, bb), v in self._scores[cand].items():  # one pass: O(folds), not O(b²)
             by_batch.setdefault(bb, []).append(v)
         out: dict[str, list[float]] = {key: [] for key in keys}
         for b in range(len(self.batches)):
             rows = by_batch[b]
             for key in keys:
-                out[key].append(float(np.mean([r.get(key) for r in rows])))
+                out[key].append(float(np.mean([r[key] for r in rows])))
         return out
 
     def per_batch_ari(self, cand: Candidate) -> np.ndarray:
@@ -324,7 +314,7 @@ class CrossValidation:
 
     def raw_summary(self) -> dict[str, float]:
         rows = [self._raw_scores(b) for b in range(len(self.batches))]
-        return {key: float(np.mean([r.get(key) for r in rows])) for key in _KEYS}
+        return {key: float(np.mean([r[key] for r in rows])) for key in _KEYS}
 
     def fold_reports(self, cands: Sequence[Candidate]) -> list[dict[str, Any]]:
         reports = []
@@ -332,7 +322,7 @@ class CrossValidation:
             scores = []
             for cand in cands:
                 rows = [self._scores[cand][(i, b)] for b in fold.held_out]
-                ari = float(np.mean([r.get("ari") for r in rows]))
+                ari = float(np.mean([r["ari"] for r in rows]))
                 scores.append({"method": cand.method, "alpha": cand.alpha, "ari": ari})
             reports.append(
                 {
