@@ -58,7 +58,7 @@ from .clustering import validated_inner_loop
 from .errors import CoreError, NotEnoughDataError
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
-from .stats import BatchStats
+from .stats import BatchStats, without
 from .validation import check_batch
 
 Batch = tuple[np.ndarray, np.ndarray]  # (records n×d raw units, group labels n)
@@ -278,7 +278,11 @@ class MetricSelector:
                 self._cv.forget(i)
             m = fitted[i]
             if m is None:  # rare: refit from all statistics but this batch's
-                rest = BatchStats.sum([s for j, s in enumerate(self._cv.stats) if j != b])
+                stats = self._cv.stats
+                rest = without(  # O(d²); summed from the others when it would cancel
+                    self._cv.total, stats[b],
+                    lambda b=b, st=stats: BatchStats.sum(s for j, s in enumerate(st) if j != b),
+                )
                 try:
                     with warnings.catch_warnings():
                         warnings.simplefilter("ignore")  # the final fit warned already

@@ -78,8 +78,9 @@ class BatchStats:
             G = gram - n * np.outer(mean, mean)
         # Σ_c n_c m_c m_cᵀ with m_c the centred group means = Σ_c s_c s_cᵀ / n_c
         group_sums = raw_group_sums - counts[:, None] * mean
-        # 1e-6: loses at most ~6 of 16 digits to cancellation (our choice, no source)
-        if overflow or np.any(np.diag(G) < 1e-6 * np.diag(gram)):
+        # the same guard as removing a batch: below _CANCEL_TOL of the uncentred spread,
+        # the shortcut would keep only ~10 of 16 digits
+        if overflow or np.any(np.diag(G) < _CANCEL_TOL * np.diag(gram)):
             # large offsets cancel in the shortcut (or overflow it): centre first (one
             # more pass), for the group sums too (they cancel the same way). Shift by
             # the first record before taking the mean, so a constant feature centres to
