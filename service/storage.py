@@ -206,7 +206,12 @@ class Storage:
             batch_ids = [_s(b) for b in pipe.zrange(zkeys[0], 0, -1)]
             versions = [_s(v) for v in pipe.zrange(zkeys[1], 0, -1)]
             fit_ids = [_s(f) for f in pipe.zrange(zkeys[2], 0, -1)]
-            dedupe = list(pipe.scan_iter(match=self._glob(name, "dedupe:*"), count=500))
+            # every dedupe key is named in the record of the fit it points at (one
+            # round trip for all; the fits themselves are watched through zkeys)
+            reads = self.redis.pipeline(transaction=False)
+            for f in fit_ids:
+                reads.hget(self.key("fit", f), "dedupe_key")
+            dedupe = [json.loads(v) for v in reads.execute() if v is not None]
             doomed = [mkey, *zkeys, *dedupe]
             doomed += [self._m(name, s) for s in ("records", "vseq", "active", "history")]
             doomed += [self._m(name, "batch", b) for b in batch_ids]
@@ -218,10 +223,6 @@ class Storage:
             return True
 
         return self._transact([mkey, *zkeys], body)
-
-    def _glob(self, name: str, pattern: str) -> str:
-        escaped = "".join("\\" + c if c in "*?[]\\" else c for c in self._m(name))
-        return f"{escaped}:{pattern}"
 
     # ---- batches ---------------------------------------------------------------------
     def add_batch(

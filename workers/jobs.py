@@ -2,10 +2,11 @@
 
 ``run_fit(fit_id)`` runs :func:`service.usecases.fits.execute_fit`. Progress (stage
 and fraction) goes to the job's meta and to the fit record. Invalid data fails the
-fit without an RQ retry; any other exception (including the job timeout) is recorded
-and re-raised, and RQ retries the job while it has retries left. If the worker dies
-(SIGKILL, lost machine) RQ finds the job abandoned once its heartbeat expires and
-retries or fails it; ``on_fit_failure`` then updates the fit record.
+fit without an RQ retry; any other exception (including the job timeout) propagates,
+and RQ retries the job while it has retries left. ``on_fit_failure`` — RQ's failure
+callback, called on every failed attempt before RQ decides on a retry, and also when
+RQ finds a job abandoned by a dead worker (SIGKILL, lost machine) — records each
+failure in the fit record.
 """
 
 from __future__ import annotations
@@ -38,7 +39,6 @@ def run_fit(fit_id: str) -> dict[str, Any]:
     """Execute fit ``fit_id`` (the RQ entry point); returns its JSON-safe result."""
     from rq import get_current_job
 
-    from service.storage import utcnow
     from service.usecases.fits import execute_fit
 
     job = get_current_job()
@@ -50,19 +50,7 @@ def run_fit(fit_id: str) -> dict[str, Any]:
         job.meta.update(stage=stage, progress=round(fraction, 4))
         job.save_meta()
 
-    try:
-        return execute_fit(ctx, fit_id, progress)
-    except BaseException as exc:
-        retrying = bool(job.retries_left and job.retries_left > 0)
-        message = f"{type(exc).__name__}: {exc}"
-        fields: dict[str, Any] = {"error": message}
-        if retrying:
-            fields.update(status="queued", stage="waiting for retry")
-        else:
-            fields.update(status="failed", stage="failed", ended_at=utcnow())
-        ctx.storage.update_fit(fit_id, fields,
-                               only_if=lambda r: r.get("status") in ("queued", "running"))
-        raise
+    return execute_fit(ctx, fit_id, progress)
 
 
 def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
@@ -71,6 +59,7 @@ def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
     from rq.exceptions import AbandonedJobError
 
     from service.storage import utcnow
+    from service.usecases.fit_exec import LIVE
 
     fit_id = job.meta.get("fit_id")
     if not fit_id:
@@ -81,12 +70,10 @@ def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
         message = "the worker running this fit stopped (abandoned job)"
     else:
         message = f"{getattr(exc_type, '__name__', 'Error')}: {exc_value}"
-    record = ctx.storage.get_fit(fit_id) or {}
-    fields: dict[str, Any] = {"error": record.get("error") or message}
+    fields: dict[str, Any] = {"error": message}
     if retrying:
-        fields.update(status="queued", stage="waiting for retry", error=message)
+        fields.update(status="queued", stage="waiting for retry")
     else:
         fields.update(status="failed", stage="failed", ended_at=utcnow())
     ctx.storage.update_fit(
-        fit_id, fields,
-        only_if=lambda r: r.get("status") in ("queued", "running") and r.get("job_id") == job.id)
+        fit_id, fields, only_if=lambda r: r.get("status") in LIVE and r.get("job_id") == job.id)

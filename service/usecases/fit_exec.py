@@ -123,8 +123,7 @@ def execute_fit(
             "beats_baseline": bool(report.get("beats_baseline")),
         },
         "report": report,
-        "metric": {**fitted.to_dict(), "features": metric["features"],
-                   "matrix": fitted.matrix.tolist()},
+        "metric": {**fitted.to_dict(), "features": metric["features"]},
         "batches": [{"batch_id": d["meta"]["batch_id"], "sha256": d["meta"]["sha256"]}
                     for d in data],
     }

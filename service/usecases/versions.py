@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
+from service.core import FittedMetric
 from service.errors import InvalidInput, NotFound
 from service.storage import utcnow
 
@@ -37,9 +38,11 @@ def get_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
     if doc is None:
         raise NotFound(f"metric {name!r} has no version {n}")
     active = ctx.storage.active_version(name)
+    # M = LᵀL is derived from the stored map, not stored itself (d² numbers per version)
+    matrix = FittedMetric.from_dict(doc["metric"]).matrix.tolist()
     return {**doc["summary"], "active": n == active, "report": doc["report"],
             "batches": doc["batches"], "fit_id": doc["fit_id"], "parent": doc["parent"],
-            "metric": doc["metric"]}
+            "metric": {**doc["metric"], "matrix": matrix}}
 
 
 def activate(ctx: Context, name: str, version: int, reason: str, who: str) -> dict[str, Any]:
