@@ -18,11 +18,20 @@ from werkzeug.exceptions import BadRequest
 
 from service.errors import MalformedRequest
 from service.usecases import fits
+from service.usecases.metrics import MAX_DESCRIPTION
+from service.usecases.versions import MAX_REASON
 
-# one source of truth: the use case's lists (the methods come from the core's learners)
+# one source of truth: the use cases' lists and limits (the methods come from the
+# core's learners)
 FIT_METHODS = fits.METHODS
 ACTIVATE_POLICIES = fits.ACTIVATE
 FIT_STATUSES = fits.STATUSES
+
+
+def _int_field(name: str) -> fields.Integer:
+    lo, hi, optional = fits.INT_RANGES[name]
+    return fields.Integer(strict=True, validate=validate.Range(min=lo, max=hi),
+                          allow_none=optional)
 
 
 class JSONArray(fields.Field):
@@ -75,7 +84,7 @@ class MetricSchema(_Strict):
         required=True,
         validate=validate.Length(min=1),
     )
-    description = fields.String(load_default="", validate=validate.Length(max=2000))
+    description = fields.String(load_default="", validate=validate.Length(max=MAX_DESCRIPTION))
 
 
 class _TableSchema(_Strict):
@@ -123,20 +132,18 @@ class FitSchema(_Strict):
     activate = fields.String(load_default="if_better", validate=validate.OneOf(ACTIVATE_POLICIES))
     alphas = fields.List(
         PositiveNumber(),
-        validate=validate.Length(min=1, max=32),
+        validate=validate.Length(min=1, max=fits.MAX_ALPHAS),
         allow_none=True,
     )
-    n_folds = fields.Integer(strict=True, validate=validate.Range(min=2, max=20))
-    max_rank = fields.Integer(strict=True, validate=validate.Range(min=1, max=10_000),
-                              allow_none=True)
-    k_max = fields.Integer(strict=True, validate=validate.Range(min=2, max=50))
-    seed = fields.Integer(strict=True, validate=validate.Range(min=0, max=2**32 - 1),
-                          allow_none=True)
+    n_folds = _int_field("n_folds")
+    max_rank = _int_field("max_rank")
+    k_max = _int_field("k_max")
+    seed = _int_field("seed")
 
 
 class ActivationSchema(_Strict):
     version = fields.Integer(strict=True, required=True, validate=validate.Range(min=1))
-    reason = fields.String(load_default="", validate=validate.Length(max=1000))
+    reason = fields.String(load_default="", validate=validate.Length(max=MAX_REASON))
 
 
 class FitQuerySchema(_Strict):

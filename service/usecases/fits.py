@@ -38,6 +38,11 @@ DEFAULTS: dict[str, Any] = {
     "max_rank": None, "k_max": 10, "seed": 0,
 }
 MAX_ALPHAS = 32
+# the whole-number parameters: (lowest, highest, may be null)
+INT_RANGES: dict[str, tuple[int, int, bool]] = {
+    "n_folds": (2, 20, False), "max_rank": (1, 10_000, True),
+    "k_max": (2, 50, False), "seed": (0, 2**32 - 1, True),
+}
 FIT_ID_RE = re.compile(r"[0-9a-f]{20}")
 
 
@@ -69,10 +74,8 @@ def normalize_params(params: dict[str, Any] | None) -> dict[str, Any]:
                 or not math.isfinite(a) or a <= 0 for a in alphas)):
             raise InvalidInput.field("alphas", f"a list of 1 to {MAX_ALPHAS} positive numbers")
         p["alphas"] = sorted({float(a) for a in alphas})
-    _int(p, "n_folds", 2, 20)
-    _int(p, "max_rank", 1, 10_000, optional=True)
-    _int(p, "k_max", 2, 50)
-    _int(p, "seed", 0, 2**32 - 1, optional=True)
+    for key, (lo, hi, optional) in INT_RANGES.items():
+        _int(p, key, lo, hi, optional)
     return p
 
 
