@@ -64,7 +64,8 @@ def _s(value: bytes | str | None) -> str | None:
 def pack_matrix(X: np.ndarray) -> bytes:
     arr = np.ascontiguousarray(X, dtype="<f8")
     header = _MATRIX_HEADER.pack(_MATRIX_MAGIC, arr.shape[0], arr.shape[1])
-    return zlib.compress(header + arr.tobytes(), 6)
+    packer = zlib.compressobj(6)  # compressed from the array's memory, not a bytes copy
+    return packer.compress(header) + packer.compress(memoryview(arr)) + packer.flush()
 
 
 def unpack_matrix(blob: bytes) -> np.ndarray:
