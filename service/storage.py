@@ -134,26 +134,42 @@ class Storage:
         }
 
     def get_metric(self, name: str) -> dict[str, Any] | None:
-        raw = self.redis.hgetall(self._m(name))
-        return self._decode_metric(name, raw) if raw else None
+        return self.get_metrics([name])[0]
+
+    def get_metrics(self, names: list[str]) -> list[dict[str, Any] | None]:
+        """Several metrics in one round trip (None where one does not exist)."""
+        with self.redis.pipeline(transaction=False) as pipe:
+            for name in names:
+                pipe.hgetall(self._m(name))
+            raws = pipe.execute()
+        return [self._decode_metric(n, raw) if raw else None
+                for n, raw in zip(names, raws, strict=True)]
 
     def metric_names(self) -> list[str]:
         return sorted(_s(n) for n in self.redis.smembers(self.key("metrics")))
 
     def counts(self, name: str) -> dict[str, Any]:
         """Batches, records, versions and the active version of one metric."""
+        return self.counts_many([name])[0]
+
+    def counts_many(self, names: list[str]) -> list[dict[str, Any]]:
+        """:meth:`counts` of several metrics in one round trip."""
         with self.redis.pipeline(transaction=False) as pipe:
-            pipe.zcard(self._m(name, "batches"))
-            pipe.get(self._m(name, "records"))
-            pipe.zcard(self._m(name, "versions"))
-            pipe.get(self._m(name, "active"))
-            batches, records, versions, active = pipe.execute()
-        return {
-            "batches": int(batches),
-            "records": int(records or 0),
-            "versions": int(versions),
-            "active_version": int(active) if active is not None else None,
-        }
+            for name in names:
+                pipe.zcard(self._m(name, "batches"))
+                pipe.get(self._m(name, "records"))
+                pipe.zcard(self._m(name, "versions"))
+                pipe.get(self._m(name, "active"))
+            values = pipe.execute()
+        return [
+            {
+                "batches": int(batches),
+                "records": int(records or 0),
+                "versions": int(versions),
+                "active_version": int(active) if active is not None else None,
+            }
+            for batches, records, versions, active in zip(*[iter(values)] * 4, strict=True)
+        ]
 
     def put_metric(
         self, name: str, features: list[str], description: str, uid: str
@@ -384,10 +400,15 @@ class Storage:
                   mapping={k: json.dumps(v) for k, v in fields.items()})
 
     def get_fit(self, fit_id: str) -> dict[str, Any] | None:
-        raw = self.redis.hgetall(self.key("fit", fit_id))
-        if not raw:
-            return None
-        return {_s(k): json.loads(v) for k, v in raw.items()}
+        return self.get_fits([fit_id])[0]
+
+    def get_fits(self, fit_ids: list[str]) -> list[dict[str, Any] | None]:
+        """Several fit records in one round trip (None where one does not exist)."""
+        with self.redis.pipeline(transaction=False) as pipe:
+            for fit_id in fit_ids:
+                pipe.hgetall(self.key("fit", fit_id))
+            raws = pipe.execute()
+        return [{_s(k): json.loads(v) for k, v in raw.items()} if raw else None for raw in raws]
 
     def set_fit_progress(self, fit_id: str, stage: str, progress: float) -> None:
         """Progress of a running fit; never re-creates a deleted fit record."""
@@ -469,8 +490,9 @@ class Storage:
 
     def fit_ids(self, name: str | None = None) -> list[str]:
         names = [name] if name is not None else self.metric_names()
-        ids: list[tuple[float, str]] = []
-        for m in names:
-            ids += [(s, _s(f)) for f, s in
-                    self.redis.zrange(self._m(m, "fits"), 0, -1, withscores=True)]
+        with self.redis.pipeline(transaction=False) as pipe:
+            for m in names:
+                pipe.zrange(self._m(m, "fits"), 0, -1, withscores=True)
+            ranges = pipe.execute()
+        ids = [(s, _s(f)) for pairs in ranges for f, s in pairs]
         return [f for _, f in sorted(ids)]

@@ -185,11 +185,12 @@ def reconcile(ctx: Context, record: dict[str, Any]) -> dict[str, Any]:
             return None
 
     job = fetch()
-    if job is not None and job.get_status() == JobStatus.STARTED:
+    # Job.fetch has just loaded the status: no second read of it
+    if job is not None and job.get_status(refresh=False) == JobStatus.STARTED:
         StartedJobRegistry(queue=ctx.queue).cleanup()
         job = fetch()
     fields: dict[str, Any] | None = None
-    status = job.get_status() if job is not None else None
+    status = job.get_status(refresh=False) if job is not None else None
     if job is None:
         fields = {"status": "failed", "stage": "failed", "ended_at": utcnow(),
                   "error": "the queue job of this fit no longer exists"}

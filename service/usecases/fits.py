@@ -162,8 +162,7 @@ def list_fits(
                                      "digits, '-' or '_'", f"invalid metric name {metric!r}")
         require_metric(ctx, metric)
     out = []
-    for fit_id in reversed(ctx.storage.fit_ids(metric)):
-        record = ctx.storage.get_fit(fit_id)
+    for record in ctx.storage.get_fits(ctx.storage.fit_ids(metric)[::-1]):
         if record is None:
             continue
         record = reconcile(ctx, record)

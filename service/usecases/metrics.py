@@ -49,8 +49,9 @@ def _check_features(ctx: Context, features: Any) -> list[str]:
     return list(features)
 
 
-def _public(ctx: Context, metric: dict[str, Any]) -> dict[str, Any]:
-    counts = ctx.storage.counts(metric["name"])
+def _public(ctx: Context, metric: dict[str, Any], counts: dict[str, Any] | None = None
+            ) -> dict[str, Any]:
+    counts = counts or ctx.storage.counts(metric["name"])
     return {
         "name": metric["name"],
         "features": metric["features"],
@@ -82,12 +83,9 @@ def put_metric(
 
 
 def list_metrics(ctx: Context) -> dict[str, Any]:
-    out = []
-    for name in ctx.storage.metric_names():
-        metric = ctx.storage.get_metric(name)
-        if metric is not None:
-            out.append(_public(ctx, metric))
-    return {"metrics": out}
+    found = [m for m in ctx.storage.get_metrics(ctx.storage.metric_names()) if m is not None]
+    counts = ctx.storage.counts_many([m["name"] for m in found])
+    return {"metrics": [_public(ctx, m, c) for m, c in zip(found, counts, strict=True)]}
 
 
 def get_metric(ctx: Context, name: str) -> dict[str, Any]:
