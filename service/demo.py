@@ -9,7 +9,6 @@ adjusted Rand index of each against the analysts' grouping.
 from __future__ import annotations
 
 import json
-import os
 import time
 import urllib.error
 import urllib.request
@@ -68,11 +67,12 @@ class Client:
 
 def _default_token() -> str:
     from .config import Settings
+    from .launcher import TOKEN_FILE
 
     settings = Settings.from_env()
     if settings.admin_token:
         return settings.admin_token
-    path = Path(settings.data_dir) / "admin-token"
+    path = Path(settings.data_dir) / TOKEN_FILE
     if path.exists():
         return path.read_text().strip()
     raise DemoError(
@@ -82,9 +82,10 @@ def _default_token() -> str:
 
 
 def _default_url() -> str:
-    host = os.environ.get("LIKEWISE_HOST", "127.0.0.1")
-    port = os.environ.get("LIKEWISE_PORT", "8000")
-    return f"http://{host}:{port}"
+    from .config import Settings
+
+    settings = Settings.from_env()  # the same host and port as `likewise run`
+    return f"http://{settings.host}:{settings.port}"
 
 
 def _wait_for_fit(client: Client, fit_id: str) -> dict:

@@ -54,7 +54,12 @@ _WATCH_RETRIES = 20
 
 def utcnow() -> str:
     """Current UTC time, ISO 8601 with milliseconds and a ``Z``."""
-    return datetime.now(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+    return iso_utc(datetime.now(timezone.utc))
+
+
+def iso_utc(dt: datetime) -> str:
+    """An aware time as ISO 8601 UTC with milliseconds and a ``Z``."""
+    return dt.astimezone(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
 def _s(value: bytes | str | None) -> str | None:

@@ -50,7 +50,11 @@ def problem_response(
     if errors:
         body["errors"] = errors
     body.update(extra or {})
-    resp = Response(json.dumps(body), status=status, mimetype=PROBLEM_MIME)
+    return _respond(body, headers)
+
+
+def _respond(body: dict[str, Any], headers: Mapping[str, str] | None) -> Response:
+    resp = Response(json.dumps(body), status=body["status"], mimetype=PROBLEM_MIME)
     for key, value in (headers or {}).items():
         resp.headers[key] = value
     return resp
@@ -90,10 +94,7 @@ _STATUS_HEADERS = {
 
 
 def _service_error(exc: ServiceError) -> Response:
-    headers = _STATUS_HEADERS.get(exc.status)
-    return problem_response(
-        exc.status, exc.title, exc.detail, exc.slug, exc.errors or None, headers
-    )
+    return _respond(exc.to_problem(request.path), _STATUS_HEADERS.get(exc.status))
 
 
 def _validation_error(exc: ValidationError) -> Response:

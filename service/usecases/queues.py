@@ -7,16 +7,19 @@ from typing import TYPE_CHECKING, Any
 
 import redis as redis_lib
 
+from service.storage import iso_utc
+
 if TYPE_CHECKING:
     from service.context import Context
 
 
+def _aware(dt: datetime) -> datetime:
+    """RQ's timestamps are naive UTC."""
+    return dt.replace(tzinfo=timezone.utc) if dt.tzinfo is None else dt
+
+
 def _iso(dt: datetime | None) -> str | None:
-    if dt is None:
-        return None
-    if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
-    return dt.astimezone(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+    return None if dt is None else iso_utc(_aware(dt))
 
 
 def _workers(ctx: Context) -> list[Any]:
@@ -34,9 +37,7 @@ def queue_overview(ctx: Context) -> dict[str, Any]:
     if first:
         job = Job.fetch(first[0], connection=ctx.redis)
         if job is not None and job.enqueued_at is not None:
-            enq = job.enqueued_at
-            if enq.tzinfo is None:
-                enq = enq.replace(tzinfo=timezone.utc)
+            enq = _aware(job.enqueued_at)
             oldest_age = max(0.0, (datetime.now(timezone.utc) - enq).total_seconds())
     queues = [{
         "name": q.name,
@@ -69,9 +70,7 @@ def readiness(ctx: Context) -> tuple[bool, dict[str, Any]]:
             hb = w.last_heartbeat
             if hb is None:
                 continue
-            if hb.tzinfo is None:
-                hb = hb.replace(tzinfo=timezone.utc)
-            if (now - hb).total_seconds() <= ctx.settings.worker_seen_seconds:
+            if (now - _aware(hb)).total_seconds() <= ctx.settings.worker_seen_seconds:
                 seen += 1
     except redis_lib.RedisError:
         return False, {"redis": False, "workers_seen": 0}
