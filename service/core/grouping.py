@@ -17,7 +17,7 @@ from .clustering import cluster, own_and_runner_up, single_threaded
 from .errors import CoreError, RecordOverflowError
 from .kchoice import choose_k
 from .metric import FittedMetric
-from .validation import check_k, check_matrix
+from .validation import check_k, check_matrix, check_whole
 
 
 @dataclass(frozen=True, eq=False)
@@ -53,8 +53,7 @@ def group_records(
     run from them instead of k-means++ restarts (ignored by the exact rank ≤ 1 paths).
     """
     X = check_matrix(X, "records", metric.n_features)
-    if isinstance(n_init, bool) or not isinstance(n_init, (int, np.integer)) or n_init < 1:
-        raise CoreError("n_init must be a whole number of at least 1", "n_init")
+    n_init = check_whole(n_init, "n_init", 1)
     with single_threaded():  # see clustering.single_threaded
         return _group(metric, X, k, random_state, int(n_init), init)
 

@@ -42,7 +42,7 @@ from .errors import CoreError
 from .learners import fit_metric
 from .metric import FittedMetric
 from .stats import BatchStats, without
-from .validation import check_batch, check_matrix
+from .validation import check_batch, check_matrix, check_whole
 
 RULES = ("silhouette", "calinski_harabasz", "spread", "explained")
 _THRESHOLD_RULES = ("spread", "explained")
@@ -211,9 +211,7 @@ def choose_k(Z: np.ndarray, rule: dict[str, Any] | None, random_state: int | Non
 
 
 def _check_k_max(k_max) -> int:
-    if isinstance(k_max, bool) or not isinstance(k_max, (int, np.integer)) or k_max < 2:
-        raise CoreError("k_max must be a whole number of at least 2", "k_max")
-    return int(k_max)
+    return check_whole(k_max, "k_max", 2)
 
 
 def _out_of_batch_maps(

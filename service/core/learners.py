@@ -63,6 +63,7 @@ import scipy.linalg
 from .errors import CoreError, NotEnoughDataError, ZeroSpreadWarning
 from .metric import FittedMetric
 from .stats import BatchStats
+from .validation import check_whole
 
 METHODS = ("closed_form", "discriminant", "diagonal", "euclidean")
 
@@ -88,10 +89,7 @@ def fit_metric(
         )
     alpha = _check_alpha(alpha)
     if max_rank is not None:
-        if isinstance(max_rank, bool) or not isinstance(max_rank, (int, np.integer)):
-            raise CoreError("max_rank must be a whole number", "max_rank")
-        if max_rank < 1:
-            raise CoreError("max_rank must be at least 1", "max_rank")
+        max_rank = check_whole(max_rank, "max_rank", 1)
     if not isinstance(stats, BatchStats):
         raise TypeError("stats must be a BatchStats")
     return fit_prepared(Prepared(stats), method, alpha, max_rank, rel_tol)

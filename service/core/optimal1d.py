@@ -25,6 +25,7 @@ from __future__ import annotations
 import numpy as np
 
 from .errors import CoreError
+from .validation import check_whole
 
 
 def kmeans_1d(x, k: int) -> tuple[np.ndarray, np.ndarray, float]:
@@ -39,8 +40,7 @@ def kmeans_1d(x, k: int) -> tuple[np.ndarray, np.ndarray, float]:
         raise CoreError("cannot group an empty set of values", "records")
     if not np.isfinite(values).all():
         raise CoreError("values contain NaN or infinity", "records")
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
-        raise CoreError("k must be a whole number of at least 1", "k")
+    k = check_whole(k, "k", 1)
 
     uniq, inverse, counts = np.unique(values, return_inverse=True, return_counts=True)
     inverse = inverse.reshape(-1)

@@ -59,7 +59,7 @@ from .errors import CoreError, NotEnoughDataError
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
 from .stats import BatchStats, without
-from .validation import check_batch
+from .validation import check_batch, check_whole
 
 Batch = tuple[np.ndarray, np.ndarray]  # (records n×d raw units, group labels n)
 
@@ -194,16 +194,10 @@ class MetricSelector:
         ):
             raise CoreError("alphas must be a non-empty list of numbers greater than 0", "alphas")
         self._alphas = tuple(sorted({float(a) for a in alphas}))
-        if isinstance(self.n_folds, bool) or not isinstance(self.n_folds, int) or self.n_folds < 2:
-            raise CoreError("n_folds must be a whole number of at least 2", "n_folds")
-        if self.max_rank is not None and (
-            isinstance(self.max_rank, bool)
-            or not isinstance(self.max_rank, int)
-            or self.max_rank < 1
-        ):
-            raise CoreError("max_rank must be a whole number of at least 1", "max_rank")
-        if isinstance(self.k_max, bool) or not isinstance(self.k_max, int) or self.k_max < 2:
-            raise CoreError("k_max must be a whole number of at least 2", "k_max")
+        check_whole(self.n_folds, "n_folds", 2)
+        if self.max_rank is not None:
+            check_whole(self.max_rank, "max_rank", 1)
+        check_whole(self.k_max, "k_max", 2)
 
     def _candidates(self) -> list[Candidate]:
         methods = (

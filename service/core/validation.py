@@ -79,12 +79,19 @@ def _group_codes(labels: np.ndarray) -> np.ndarray:
     return codes.reshape(-1)
 
 
+def check_whole(value, field: str, minimum: int) -> int:
+    """A whole number (Python or numpy integer, not a bool) of at least ``minimum``."""
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, (int, np.integer))
+        or value < minimum
+    ):
+        raise CoreError(f"{field} must be a whole number of at least {minimum}", field)
+    return int(value)
+
+
 def check_k(k, n_records: int) -> int:
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)):
-        raise CoreError("k must be a whole number", "k")
-    k = int(k)
-    if k < 1:
-        raise CoreError("k must be at least 1", "k")
+    k = check_whole(k, "k", 1)
     if k > n_records:
         raise CoreError(f"k={k} is larger than the number of records ({n_records})", "k")
     return k

@@ -213,3 +213,14 @@ def test_records_that_overflow_once_mapped_are_a_named_error() -> None:
     with pytest.raises(RecordOverflowError, match="too large to map") as info:
         MetricSelector(alphas=ALPHAS, random_state=0).fit(batches)
     assert info.value.row is not None
+
+
+def test_whole_number_parameters_accept_numpy_integers_and_refuse_bools() -> None:
+    # the same rule as fit_metric and group_records (validation.check_whole)
+    sel = MetricSelector(method="closed_form", alphas=ALPHAS, max_rank=np.int64(2),
+                         k_max=np.int64(4), n_folds=np.int32(2), estimate_k=False)
+    assert sel.fit(signal_batches(4, seed=12)).metric_.rank <= 2
+    for bad in ({"max_rank": True}, {"k_max": 1}, {"n_folds": 2.0}):
+        with pytest.raises(CoreError, match="whole number of at least") as info:
+            MetricSelector(**bad).fit(signal_batches(3, seed=12))
+        assert info.value.field == next(iter(bad))
