@@ -11,7 +11,7 @@ from typing import Any
 import numpy as np
 
 from ._stacked import chunk_size, kmeans_stacked
-from .clustering import cluster
+from .clustering import cluster, overflowing_row
 from .errors import CoreError, RecordOverflowError
 from .learners import Prepared, fit_prepared, scoring_map
 from .metric import FittedMetric
@@ -58,13 +58,9 @@ def make_folds(
 
 
 def _check_reach(Zs: np.ndarray, b: int) -> None:
-    """k-means works with squared distances between records, up to 4·‖z‖²: they must
-    stay finite, not only the mapped coordinates (``Zs``: problems × records × r)."""
-    with np.errstate(over="ignore", invalid="ignore"):
-        reach = 4.0 * np.einsum("pnr,pnr->pn", Zs, Zs)
-    bad = ~np.isfinite(reach)
-    if bad.any():
-        row = int(np.argwhere(bad)[0, 1])
+    """A named error when batch ``b``'s mapped records would overflow k-means."""
+    row = overflowing_row(Zs)
+    if row is not None:
         raise RecordOverflowError(
             f"records of batch {b} are too large to map (row {row} overflows in the "
             "learned space)",
@@ -267,7 +263,7 @@ class CrossValidation:
         key = (id(metric.scales), metric.mean.tobytes())
         with np.errstate(over="ignore", invalid="ignore"):
             if key not in standard:
-                standard[key] = (X - metric.mean) / metric.scales
+                standard[key] = metric.standardise(X)
             Z = standard[key] @ metric.components.T
         if check:
             _check_reach(Z[None], b)

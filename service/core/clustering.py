@@ -90,6 +90,19 @@ def cluster(
     )
 
 
+def overflowing_row(Z: np.ndarray) -> int | None:
+    """The first record (row) whose squared distances could overflow, else None.
+
+    k-means and the distances work with squared distances between records, up to
+    4·‖z‖²: they must stay finite, not only the mapped coordinates. ``Z``: records ×
+    r, or stacked problems × records × r.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        reach = 4.0 * np.einsum("...nr,...nr->...n", Z, Z)
+    bad = ~np.isfinite(reach)
+    return int(np.argwhere(bad)[0, -1]) if bad.any() else None
+
+
 def _by_first_appearance(
     labels: np.ndarray, centres: np.ndarray, cost: float
 ) -> tuple[np.ndarray, np.ndarray, float]:

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .clustering import cluster, own_and_runner_up, single_threaded
+from .clustering import cluster, overflowing_row, own_and_runner_up, single_threaded
 from .errors import CoreError, RecordOverflowError
 from .kchoice import choose_k
 from .metric import FittedMetric
@@ -64,12 +64,8 @@ def _group(
     n = X.shape[0]
     with np.errstate(over="ignore", invalid="ignore"):
         Z = metric.transform(X)
-        # k-means and the distances work with squared distances between records, up to
-        # 4·‖z‖²: they must stay finite too, not only the mapped coordinates
-        reach = 4.0 * np.einsum("ij,ij->i", Z, Z)
-    overflow = ~np.isfinite(reach)
-    if overflow.any():
-        row = int(np.argmax(overflow))
+    row = overflowing_row(Z)
+    if row is not None:
         raise RecordOverflowError(
             f"records are too large to map (row {row} overflows in the learned space)", row
         )

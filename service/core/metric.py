@@ -42,7 +42,12 @@ class FittedMetric:
     def transform(self, X) -> np.ndarray:
         """Map records (n × d, raw units) into the learned space (n × r)."""
         X = check_matrix(X, "records", self.n_features)
-        return ((X - self.mean) / self.scales) @ self.components.T
+        return self.standardise(X) @ self.components.T
+
+    def standardise(self, X: np.ndarray) -> np.ndarray:
+        """``(X − mean) / scales`` of records already checked (the first step of
+        :meth:`transform`, for callers that share it between maps)."""
+        return (X - self.mean) / self.scales
 
     def with_k_rule(self, k_rule: dict[str, Any] | None) -> FittedMetric:
         return FittedMetric(
