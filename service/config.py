@@ -23,6 +23,8 @@ LIKEWISE_HOST               host                           ``127.0.0.1``
 LIKEWISE_PORT               port                           8000
 LIKEWISE_WORKERS            workers                        1
 LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
+LIKEWISE_WARDEN_SECONDS     warden_seconds (sweep period)  5
+LIKEWISE_IDEMPOTENCY_HOURS  idempotency_hours (answers kept) 24
 =========================== ============================== ===========================
 """
 
@@ -77,6 +79,8 @@ class Settings:
     port: int = 8000
     workers: int = 1
     worker_seen_seconds: int = 60
+    warden_seconds: int = 5
+    idempotency_hours: int = 24
 
     def __post_init__(self) -> None:
         if not self.key_prefix or any(c in self.key_prefix for c in " \t\r\n"):
@@ -84,7 +88,8 @@ class Settings:
         if not self.queue_name:
             object.__setattr__(self, "queue_name", f"{self.key_prefix}-fits")
         for name in ("fit_timeout", "max_batch_records", "max_batch_features", "max_groups",
-                     "max_batch_bytes", "max_request_bytes", "workers"):
+                     "max_batch_bytes", "max_request_bytes", "workers", "warden_seconds",
+                     "idempotency_hours"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")
         if self.fit_retries < 0:

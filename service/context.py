@@ -16,7 +16,7 @@ if TYPE_CHECKING:
     import rq
 
     from service.config import Settings
-    from service.storage import Storage
+    from service.store import Storage
 
 
 class VersionCache:
@@ -44,11 +44,6 @@ class VersionCache:
             while len(self._data) > self.maxsize:
                 self._data.popitem(last=False)
 
-    def drop_metric(self, name: str) -> None:
-        with self._lock:
-            for key in [k for k in self._data if k and k[0] == name]:
-                del self._data[key]
-
     def clear(self) -> None:
         with self._lock:
             self._data.clear()
@@ -71,7 +66,7 @@ class Context:
         import redis as redis_lib
         import rq
 
-        from service.storage import Storage
+        from service.store import Storage
 
         if connection is None:
             if not settings.redis_url:

@@ -1,12 +1,12 @@
 """RQ jobs: module-level functions taking ids only (no pickled arrays on the queue).
 
-``run_fit(fit_id)`` runs :func:`service.usecases.fits.execute_fit`. Progress (stage
-and fraction) goes to the job's meta and to the fit record. Invalid data fails the
-fit without an RQ retry; any other exception (including the job timeout) propagates,
-and RQ retries the job while it has retries left. ``on_fit_failure`` — RQ's failure
-callback, called on every failed attempt before RQ decides on a retry, and also when
-RQ finds a job abandoned by a dead worker (SIGKILL, lost machine) — records each
-failure in the fit record.
+``run_fit(fit_id)`` runs :func:`service.usecases.fits.execute_fit` as the attempt
+named by the job's id. Progress (stage and fraction) goes to the fit record. Invalid
+data fails the fit without a retry; any other exception (including the job timeout)
+propagates, and RQ retries the job while it has retries left. ``on_fit_failure`` —
+RQ's failure callback, called on every failed attempt before RQ decides on a retry,
+and also when RQ finds a job abandoned by a dead worker (SIGKILL, lost machine) —
+records each failure in the fit record.
 """
 
 from __future__ import annotations
@@ -44,13 +44,7 @@ def run_fit(fit_id: str) -> dict[str, Any]:
     job = get_current_job()
     if job is None:
         raise RuntimeError("run_fit must run inside an RQ job")
-    ctx = _context(job)
-
-    def progress(stage: str, fraction: float) -> None:
-        job.meta.update(stage=stage, progress=round(fraction, 4))
-        job.save_meta()
-
-    return execute_fit(ctx, fit_id, progress)
+    return execute_fit(_context(job), fit_id, job_id=job.id)
 
 
 def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
@@ -58,8 +52,7 @@ def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
     """RQ failure callback (also called for abandoned jobs whose worker died)."""
     from rq.exceptions import AbandonedJobError
 
-    from service.storage import utcnow
-    from service.usecases.fit_exec import LIVE
+    from service.lifecycle import Fit, FitStatus
 
     fit_id = job.meta.get("fit_id")
     if not fit_id:
@@ -70,10 +63,14 @@ def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
         message = "the worker running this fit stopped (abandoned job)"
     else:
         message = f"{getattr(exc_type, '__name__', 'Error')}: {exc_value}"
-    fields: dict[str, Any] = {"error": message}
-    if retrying:
-        fields.update(status="queued", stage="waiting for retry")
-    else:
-        fields.update(status="failed", stage="failed", ended_at=utcnow())
-    ctx.storage.update_fit(
-        fit_id, fields, only_if=lambda r: r.get("status") in LIVE and r.get("job_id") == job.id)
+
+    def move(fit: Fit) -> Fit | None:
+        if not fit.live or fit.job_id != job.id:
+            return None
+        if not retrying:
+            return fit.fail(message)
+        if fit.status is FitStatus.RUNNING:
+            return fit.wait_for_retry(message)
+        return None
+
+    ctx.storage.fits.change(fit_id, move)

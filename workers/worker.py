@@ -4,6 +4,12 @@
 a work horse, so ``Settings.fit_timeout`` is enforced by killing it) and works until
 stopped; with ``burst=True`` it returns once the queue is empty. Heartbeats are the
 worker's own (``rq.Worker.all`` lists it with ``last_heartbeat``).
+
+A long-running worker also runs the warden (:mod:`service.usecases.warden`) in a
+thread on its own Redis connection, sweeping live fits every
+``Settings.warden_seconds``; a burst sweeps once when the queue is empty. The maths
+core is imported before the first fork, so a work horse starts with scikit-learn and
+SciPy already loaded.
 """
 
 from __future__ import annotations
@@ -62,6 +68,24 @@ def run_worker(
 ) -> Worker:
     """Build a worker and work (until stopped, or until the queue is empty with
     ``burst``); returns the worker."""
+    import service.core  # noqa: F401 — loaded once here, inherited by every work horse
+    from service.context import Context
+    from service.usecases import warden
+
     worker = build_worker(settings, name, simple=simple, connection=connection)
-    worker.work(burst=burst, max_jobs=max_jobs, logging_level=logging_level)
+    own = Context.build(settings) if settings.redis_url else Context.build(
+        settings, connection=connection)
+    guard = None if burst else warden.Warden(own, settings.warden_seconds)
+    if guard is not None:
+        guard.start()
+    try:
+        worker.work(burst=burst, max_jobs=max_jobs, logging_level=logging_level)
+    finally:
+        if guard is not None:
+            guard.stop()
+            guard.join(timeout=5)
+    if burst:  # a burst leaves no fit behind that only a later sweep would heal
+        warden.sweep(own)
+    if own.redis is not worker.connection:
+        own.close()
     return worker

@@ -7,15 +7,19 @@ from flask import Blueprint, Response
 from service.usecases import batches as uc
 
 from .deps import context, no_content, reply
-from .schemas import BatchSchema, json_body, table_of
+from .idempotency import idempotent
+from .schemas import BatchQuerySchema, BatchSchema, json_body, query_args, table_of
 
 bp = Blueprint("batches", __name__)
 
 
 @bp.post("/metrics/<name>/batches")
+@idempotent
 def add_batch(name: str) -> Response:
+    query = query_args(BatchQuerySchema())
     data = json_body(BatchSchema())
-    batch = uc.add_batch(context(), name, table_of(data), data["groups"])
+    batch = uc.add_batch(context(), name, table_of(data), data["groups"],
+                         allow_duplicate=query["allow_duplicate"])
     return reply(batch, 201, location=f"/v1/metrics/{name}/batches/{batch['batch_id']}")
 
 

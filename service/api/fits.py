@@ -8,6 +8,7 @@ from service.usecases import fits as uc
 
 from .auth import principal
 from .deps import context, reply
+from .idempotency import idempotent
 from .schemas import FitQuerySchema, FitSchema, json_body, query_args
 
 bp = Blueprint("fits", __name__)
@@ -18,6 +19,7 @@ def _accepted(fit: dict) -> Response:
 
 
 @bp.post("/metrics/<name>/fits")
+@idempotent
 def request_fit(name: str) -> Response:
     params = json_body(FitSchema(), empty_ok=True)
     fit, _queued = uc.request_fit(context(), name, params, principal())
@@ -36,5 +38,6 @@ def get_fit(fit_id: str) -> Response:
 
 
 @bp.post("/fits/<fit_id>/retry")
+@idempotent
 def retry_fit(fit_id: str) -> Response:
     return _accepted(uc.retry_fit(context(), fit_id, principal()))

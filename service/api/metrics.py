@@ -7,12 +7,14 @@ from flask import Blueprint, Response
 from service.usecases import metrics as uc
 
 from .deps import context, no_content, reply
+from .idempotency import idempotent
 from .schemas import MetricSchema, json_body
 
 bp = Blueprint("metrics", __name__)
 
 
 @bp.put("/metrics/<name>")
+@idempotent
 def put_metric(name: str) -> Response:
     data = json_body(MetricSchema())
     metric, created = uc.put_metric(context(), name, data["features"], data["description"])

@@ -20,7 +20,8 @@ from redis.exceptions import ResponseError as RedisResponseError
 from redis.exceptions import TimeoutError as RedisTimeoutError
 from werkzeug.exceptions import HTTPException, MethodNotAllowed
 
-from service.errors import PROBLEM_BASE, ServiceError
+from service.errors import PROBLEM_BASE, Conflict, NotFound, ServiceError
+from service.store import DuplicateBatch, MissingMetric, MissingVersion, StoreError
 
 PROBLEM_MIME = "application/problem+json"
 
@@ -97,6 +98,18 @@ def _service_error(exc: ServiceError) -> Response:
     return _respond(exc.to_problem(request.path), _STATUS_HEADERS.get(exc.status))
 
 
+def _store_error(exc: StoreError) -> Response:
+    """What persistence refused, as the API says it: missing things are 404, the rest
+    (locked features, contention, a duplicate batch) 409."""
+    if isinstance(exc, (MissingMetric, MissingVersion)):
+        return _service_error(NotFound(str(exc)))
+    body = Conflict(str(exc)).to_problem(request.path)
+    if isinstance(exc, DuplicateBatch):
+        body["batch_id"] = exc.batch_id
+        body["detail"] += "; send ?allow_duplicate=true to store it again"
+    return _respond(body, None)
+
+
 def _validation_error(exc: ValidationError) -> Response:
     errors = flatten_messages(exc.messages)
     fields_named = ", ".join(sorted({e["field"] for e in errors}))
@@ -165,6 +178,7 @@ def _unexpected(exc: Exception) -> Response:
 def register_problem_handlers(app: Flask) -> None:
     """Route every kind of failure through :func:`problem_response`."""
     app.register_error_handler(ServiceError, _service_error)
+    app.register_error_handler(StoreError, _store_error)
     app.register_error_handler(ValidationError, _validation_error)
     app.register_error_handler(HTTPException, _http_error)
     app.register_error_handler(RedisConnectionError, _redis_down)

@@ -146,6 +146,10 @@ class ActivationSchema(_Strict):
     reason = fields.String(load_default="", validate=validate.Length(max=MAX_REASON))
 
 
+class BatchQuerySchema(_Strict):
+    allow_duplicate = fields.Boolean(load_default=False)
+
+
 class FitQuerySchema(_Strict):
     metric = fields.String(validate=validate.Length(min=1, max=64))
     status = fields.String(validate=validate.OneOf(FIT_STATUSES))

@@ -8,6 +8,7 @@ from service.usecases import versions as uc
 
 from .auth import principal
 from .deps import context, reply
+from .idempotency import idempotent
 from .schemas import ActivationSchema, json_body
 
 bp = Blueprint("versions", __name__)
@@ -24,6 +25,7 @@ def get_version(name: str, n: int) -> Response:
 
 
 @bp.put("/metrics/<name>/active")
+@idempotent
 def activate(name: str) -> Response:
     data = json_body(ActivationSchema())
     return reply(uc.activate(context(), name, data["version"], data["reason"], principal()))

@@ -10,9 +10,10 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from service.clock import utcnow
 from service.core import BatchStats, CoreError
 from service.errors import InvalidInput, NotFound, from_core
-from service.storage import pack_json, pack_matrix, utcnow
+from service.store.codecs import pack_json, pack_matrix
 from service.tables import check_groups, to_matrix
 
 from .metrics import require_metric
@@ -39,8 +40,13 @@ def _check_batch_id(batch_id: Any) -> str:
     return batch_id
 
 
-def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any]) -> dict[str, Any]:
-    """Validate, reduce to statistics and store one labelled batch (one transaction)."""
+def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any], *,
+              allow_duplicate: bool = False) -> dict[str, Any]:
+    """Validate, reduce to statistics and store one labelled batch (one transaction).
+
+    A batch whose content hash is already stored on the metric is refused
+    (DuplicateBatch, naming the stored batch) unless ``allow_duplicate``.
+    """
     metric = require_metric(ctx, name)
     s = ctx.settings
     X = to_matrix(metric["features"], table, s.max_batch_records, s.max_batch_bytes)
@@ -66,8 +72,8 @@ def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any])
         "sha256": content_hash(X, labels),
         "group_sizes": {str(k): int(v) for k, v in sizes.items()},
     }
-    ctx.storage.add_batch(name, metric["uid"], batch_id, meta, stats.to_bytes(),
-                          pack_matrix(X), pack_json(labels))
+    ctx.storage.batches.add(name, metric["uid"], meta, stats.to_bytes(), pack_matrix(X),
+                            pack_json(labels), allow_duplicate=allow_duplicate)
     return _summary(meta)
 
 
@@ -77,12 +83,12 @@ def _summary(meta: dict[str, Any]) -> dict[str, Any]:
 
 def list_batches(ctx: Context, name: str) -> dict[str, Any]:
     require_metric(ctx, name)
-    return {"batches": [_summary(m) for m in ctx.storage.list_batches(name)]}
+    return {"batches": [_summary(m) for m in ctx.storage.batches.metas(name)]}
 
 
 def get_batch(ctx: Context, name: str, batch_id: str) -> dict[str, Any]:
     require_metric(ctx, name)
-    meta = ctx.storage.get_batch_meta(name, _check_batch_id(batch_id))
+    meta = ctx.storage.batches.meta(name, _check_batch_id(batch_id))
     if meta is None:
         raise NotFound(f"batch {batch_id!r} does not exist in metric {name!r}")
     return {**_summary(meta), "group_sizes": meta["group_sizes"]}
@@ -91,13 +97,13 @@ def get_batch(ctx: Context, name: str, batch_id: str) -> dict[str, Any]:
 def delete_batch(ctx: Context, name: str, batch_id: str) -> None:
     """Remove a batch: its statistics no longer enter future fits."""
     require_metric(ctx, name)
-    if not ctx.storage.delete_batch(name, _check_batch_id(batch_id)):
+    if not ctx.storage.batches.delete(name, _check_batch_id(batch_id)):
         raise NotFound(f"batch {batch_id!r} does not exist in metric {name!r}")
 
 
 def load_training_data(ctx: Context, name: str) -> list[dict[str, Any]]:
     """Batches for a fit: ``meta``, ``X``, ``labels`` and ``stats`` (BatchStats)."""
-    rows = ctx.storage.load_batches(name)
+    rows = ctx.storage.batches.load(name)
     for row in rows:
         row["stats"] = BatchStats.from_bytes(row["stats"])
     return rows

@@ -1,8 +1,10 @@
-"""Running a fit (called by the RQ job) and reconciling fit records with RQ.
+"""Running a fit (called by the queue job).
 
 ``execute_fit`` loads the batches and their statistics, runs the core's
 ``MetricSelector``, decides on activation and commits the version, its activation
-and the fit's result in one transaction.
+and the fit's result in one transaction. Every change of the fit record is a move of
+:class:`~service.lifecycle.Fit`, fenced on the attempt's job id: an attempt that the
+warden has already given up on changes nothing.
 """
 
 from __future__ import annotations
@@ -12,31 +14,46 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from service.clock import utcnow
 from service.core import CoreError, MetricSelector
-from service.errors import Conflict, NotFound
-from service.storage import ActiveChanged, utcnow
+from service.errors import Conflict
+from service.lifecycle import Fit, FitStatus
+from service.store import ActiveChanged, MissingMetric, StaleAttempt
 
 from .batches import load_training_data
 
 if TYPE_CHECKING:
     from service.context import Context
 
-PUBLIC_FIELDS = ("fit_id", "metric", "status", "progress", "stage", "params", "version",
-                 "error", "decision", "created_at", "started_at", "ended_at",
-                 "requested_by", "attempts")
-LIVE = ("queued", "running")
 _COMMIT_ATTEMPTS = 10
 
 
-def _result(record: dict[str, Any]) -> dict[str, Any]:
-    return {k: record.get(k) for k in ("fit_id", "status", "version", "decision", "error")}
+def _result(fit: Fit | None, fit_id: str) -> dict[str, Any]:
+    if fit is None:
+        return {"fit_id": fit_id, "status": "gone", "version": None, "decision": None,
+                "error": None}
+    return {"fit_id": fit.fit_id, "status": fit.status.value, "version": fit.version,
+            "decision": fit.decision, "error": fit.error}
 
 
-def _fail(ctx: Context, fit_id: str, message: str) -> dict[str, Any]:
-    ctx.storage.update_fit(
-        fit_id, {"status": "failed", "stage": "failed", "error": message, "ended_at": utcnow()},
-        only_if=lambda r: r.get("status") in LIVE)
-    return _result(ctx.storage.get_fit(fit_id) or {"fit_id": fit_id, "status": "failed"})
+def _ours(job_id: str | None) -> Callable[[Fit], bool]:
+    """Whether a stored fit is still run by this attempt."""
+    return lambda f: f.live and (job_id is None or f.job_id == job_id)
+
+
+def fail_attempt(ctx: Context, fit_id: str, job_id: str | None, message: str) -> Fit | None:
+    """Fail the fit if this attempt still owns it; returns the stored fit."""
+    ours = _ours(job_id)
+    ctx.storage.fits.change(fit_id, lambda f: f.fail(message) if ours(f) else None)
+    return ctx.storage.fits.get(fit_id)
+
+
+def _begin(fit: Fit) -> Fit:
+    """The attempt starts; a record still running under this job id is a previous
+    attempt of the same job that died unnoticed."""
+    if fit.status is FitStatus.RUNNING:
+        fit = fit.wait_for_retry("the previous attempt stopped without a result")
+    return fit.start()
 
 
 def _decide(
@@ -71,38 +88,38 @@ def _decide(
 
 
 def execute_fit(
-    ctx: Context, fit_id: str, progress_cb: Callable[[str, float], None] | None = None
+    ctx: Context, fit_id: str, progress_cb: Callable[[str, float], None] | None = None,
+    job_id: str | None = None,
 ) -> dict[str, Any]:
-    """Run fit ``fit_id`` to completion. Invalid data fails the fit (no RQ retry);
-    unexpected errors propagate so RQ can retry."""
+    """Run fit ``fit_id`` to completion as attempt ``job_id`` (None: whichever job the
+    record names). Invalid data fails the fit (no retry); unexpected errors propagate
+    so the queue can retry the job."""
     st = ctx.storage
-    record = st.get_fit(fit_id)
-    if record is None:
-        return {"fit_id": fit_id, "status": "gone"}
-    if record["status"] == "succeeded":
-        return _result(record)
-    name, p = record["metric"], record["params"]
+    fit = st.fits.get(fit_id)
+    if fit is None or not fit.live:
+        return _result(fit, fit_id)
+    job_id = job_id or fit.job_id
+    ours = _ours(job_id)
+    name, p = fit.metric, fit.params
 
     def progress(stage: str, fraction: float) -> None:
         fraction = float(min(max(fraction, 0.0), 1.0))
-        st.set_fit_progress(fit_id, stage, fraction)
+        st.fits.set_progress(fit_id, stage, fraction)
         if progress_cb is not None:
             progress_cb(stage, fraction)
 
-    metric = st.get_metric(name)
-    if metric is None or metric["uid"] != record["metric_uid"]:
-        return _fail(ctx, fit_id, f"metric {name!r} was deleted")
-    started = st.update_fit(fit_id, {
-        "status": "running", "stage": "loading", "progress": 0.0, "error": None,
-        "started_at": record.get("started_at") or utcnow(),
-        "attempts": int(record.get("attempts") or 0) + 1}, only_if=lambda r: r["status"] in LIVE)
-    if not started:
-        return _result(st.get_fit(fit_id) or record)
+    metric = st.metrics.get(name)
+    if metric is None or metric["uid"] != fit.metric_uid:
+        return _result(fail_attempt(ctx, fit_id, job_id, f"metric {name!r} was deleted"),
+                       fit_id)
+    started = st.fits.change(fit_id, lambda f: _begin(f) if ours(f) else None)
+    if started is None:
+        return _result(st.fits.get(fit_id), fit_id)
     progress("loading", 0.0)
     data = load_training_data(ctx, name)
     if len(data) < 2:
-        return _fail(ctx, fit_id, f"metric {name!r} has {len(data)} batch(es) now; "
-                                  "a fit needs at least 2")
+        return _result(fail_attempt(ctx, fit_id, job_id, f"metric {name!r} has {len(data)} "
+                                    "batch(es) now; a fit needs at least 2"), fit_id)
     batches = [(d["X"], np.asarray(d["labels"])) for d in data]
     selector = MetricSelector(
         method=p["method"], alphas=p["alphas"], n_folds=p["n_folds"], max_rank=p["max_rank"],
@@ -111,10 +128,11 @@ def execute_fit(
     try:
         selector.fit(batches, [d["stats"] for d in data])
     except CoreError as exc:
-        return _fail(ctx, fit_id, f"{exc.field or 'batches'}: {exc.message}")
+        return _result(fail_attempt(ctx, fit_id, job_id,
+                                    f"{exc.field or 'batches'}: {exc.message}"), fit_id)
     fitted, report = selector.metric_, selector.report_
     progress("deciding", 0.92)
-    n = st.next_version_number(name)
+    n = st.versions.next_number(name)
     doc: dict[str, Any] = {
         "summary": {
             "version": n, "created_at": utcnow(), "method": fitted.method,
@@ -128,83 +146,26 @@ def execute_fit(
                     for d in data],
     }
     for _ in range(_COMMIT_ATTEMPTS):
-        active = st.active_version(name)
-        active_doc = st.get_version(name, active, ("summary",)) if active else None
+        active = st.versions.active(name)
+        active_doc = st.versions.get(name, active, ("summary",)) if active else None
         activated, reason = _decide(name, p["activate"], active,
                                     active_doc["summary"] if active_doc else None,
                                     selector, report, n)
-        now = utcnow()
         doc["parent"] = active
-        fields = {"status": "succeeded", "stage": "done", "progress": 1.0, "version": n,
-                  "error": None, "decision": {"activated": activated, "reason": reason},
-                  "ended_at": now}
-        entry = {"from": active, "to": n, "at": now, "who": record["requested_by"],
+        done = started.succeed(n, {"activated": activated, "reason": reason})
+        entry = {"from": active, "to": n, "at": done.ended_at, "who": fit.requested_by,
                  "reason": f"fit {fit_id}: {reason}", "fit_id": fit_id}
         try:
-            st.commit_version(name, metric["uid"], n, doc, expected_active=active,
-                              activate=activated, activation=entry, fit_id=fit_id,
-                              fit_fields=fields)
+            st.versions.commit(name, metric["uid"], n, doc, expected_active=active,
+                               activate=activated, activation=entry, fit=done)
             break
         except ActiveChanged:
             continue
-        except NotFound:  # the metric was deleted (or re-created) while fitting
-            return _fail(ctx, fit_id, f"metric {name!r} was deleted during the fit")
+        except StaleAttempt:  # the warden gave this attempt up; another one owns the fit
+            return _result(st.fits.get(fit_id), fit_id)
+        except MissingMetric:  # the metric was deleted (or re-created) while fitting
+            return _result(fail_attempt(ctx, fit_id, job_id,
+                                        f"metric {name!r} was deleted during the fit"), fit_id)
     else:
         raise Conflict("the active version kept changing; the fit will be retried")
-    return _result(st.get_fit(fit_id) or fields)
-
-
-def _job_error(job: Any) -> str:
-    try:
-        result = job.latest_result()
-        text = (result.exc_string if result is not None else None) or ""
-    except Exception:  # noqa: BLE001 — best effort description only
-        text = ""
-    lines = [ln for ln in text.strip().splitlines() if ln.strip()]
-    return lines[-1].strip() if lines else "the fit job failed"
-
-
-def reconcile(ctx: Context, record: dict[str, Any]) -> dict[str, Any]:
-    """Bring a queued/running fit record in line with its RQ job and return it.
-
-    A job whose worker died stays "started" in RQ until its heartbeat expires; then
-    RQ's registry cleanup (run here) re-queues it if retries are left, or fails it.
-    """
-    if record.get("status") not in LIVE:
-        return record
-    from rq.exceptions import NoSuchJobError
-    from rq.job import Job, JobStatus
-    from rq.registry import StartedJobRegistry
-
-    fit_id, job_id = record["fit_id"], record.get("job_id")
-
-    def fetch() -> Any:
-        try:
-            return Job.fetch(job_id, connection=ctx.redis)
-        except NoSuchJobError:
-            return None
-
-    job = fetch()
-    # Job.fetch has just loaded the status: no second read of it
-    if job is not None and job.get_status(refresh=False) == JobStatus.STARTED:
-        StartedJobRegistry(queue=ctx.queue).cleanup()
-        job = fetch()
-    fields: dict[str, Any] | None = None
-    status = job.get_status(refresh=False) if job is not None else None
-    if job is None:
-        fields = {"status": "failed", "stage": "failed", "ended_at": utcnow(),
-                  "error": "the queue job of this fit no longer exists"}
-    elif status == JobStatus.FAILED:
-        fields = {"status": "failed", "stage": "failed", "ended_at": utcnow(),
-                  "error": record.get("error") or _job_error(job)}
-    elif status in (JobStatus.STOPPED, JobStatus.CANCELED):
-        fields = {"status": "failed", "stage": "failed", "ended_at": utcnow(),
-                  "error": f"the fit job was {status.value}"}
-    elif status in (JobStatus.QUEUED, JobStatus.SCHEDULED) and record["status"] == "running":
-        fields = {"status": "queued", "stage": "waiting for retry"}
-    if fields is not None:
-        ctx.storage.update_fit(
-            fit_id, fields,
-            only_if=lambda r: r.get("status") in LIVE and r.get("job_id") == job_id)
-        return ctx.storage.get_fit(fit_id) or record
-    return record
+    return _result(st.fits.get(fit_id) or done, fit_id)

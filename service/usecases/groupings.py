@@ -42,7 +42,7 @@ def load_version_metric(
     key = (metric["name"], metric["uid"], n)
     loaded = ctx.cache.get(key)
     if loaded is None:
-        doc = ctx.storage.get_version(metric["name"], n, ("metric",))
+        doc = ctx.storage.versions.get(metric["name"], n, ("metric",))
         if doc is None:
             raise NotFound(f"metric {metric['name']!r} has no version {n}")
         features = list(doc["metric"].get("features") or metric["features"])
@@ -61,7 +61,7 @@ def group(
     metric = require_metric(ctx, name)
     k_value = _check_k(k, ctx.settings.max_groups)
     if version is None:
-        version = ctx.storage.active_version(name)
+        version = ctx.storage.versions.active(name)
         if version is None:
             raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
     else:

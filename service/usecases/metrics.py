@@ -6,7 +6,8 @@ import re
 import secrets
 from typing import TYPE_CHECKING, Any
 
-from service.errors import InvalidInput, NotFound
+from service.errors import Conflict, InvalidInput, NotFound
+from service.store import FeaturesLocked
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -28,7 +29,7 @@ def check_name(name: Any) -> str:
 def require_metric(ctx: Context, name: str) -> dict[str, Any]:
     """The stored metric record (with ``uid``) or 404."""
     check_name(name)
-    metric = ctx.storage.get_metric(name)
+    metric = ctx.storage.metrics.get(name)
     if metric is None:
         raise NotFound(f"metric {name!r} does not exist")
     return metric
@@ -51,7 +52,7 @@ def _check_features(ctx: Context, features: Any) -> list[str]:
 
 def _public(ctx: Context, metric: dict[str, Any], counts: dict[str, Any] | None = None
             ) -> dict[str, Any]:
-    counts = counts or ctx.storage.counts(metric["name"])
+    counts = counts or ctx.storage.metrics.counts(metric["name"])
     return {
         "name": metric["name"],
         "features": metric["features"],
@@ -78,13 +79,18 @@ def put_metric(
         description = ""
     if not isinstance(description, str) or len(description) > MAX_DESCRIPTION:
         raise InvalidInput.field("description", f"a string of at most {MAX_DESCRIPTION} characters")
-    record, outcome = ctx.storage.put_metric(name, features, description, secrets.token_hex(8))
+    try:
+        record, outcome = ctx.storage.metrics.put(name, features, description,
+                                                  secrets.token_hex(8))
+    except FeaturesLocked as exc:
+        raise Conflict(str(exc), [{"field": "features",
+                                   "message": "cannot change while batches exist"}]) from exc
     return _public(ctx, record), outcome == "created"
 
 
 def list_metrics(ctx: Context) -> dict[str, Any]:
-    found = [m for m in ctx.storage.get_metrics(ctx.storage.metric_names()) if m is not None]
-    counts = ctx.storage.counts_many([m["name"] for m in found])
+    found = [m for m in ctx.storage.metrics.get_many(ctx.storage.metrics.names()) if m is not None]
+    counts = ctx.storage.metrics.counts_many([m["name"] for m in found])
     return {"metrics": [_public(ctx, m, c) for m, c in zip(found, counts, strict=True)]}
 
 
@@ -94,6 +100,5 @@ def get_metric(ctx: Context, name: str) -> dict[str, Any]:
 
 def delete_metric(ctx: Context, name: str) -> None:
     check_name(name)
-    if not ctx.storage.delete_metric(name):
+    if not ctx.storage.metrics.delete(name):
         raise NotFound(f"metric {name!r} does not exist")
-    ctx.cache.drop_metric(name)

@@ -7,7 +7,7 @@ from typing import TYPE_CHECKING, Any
 
 import redis as redis_lib
 
-from service.storage import iso_utc
+from service.clock import iso_utc
 
 if TYPE_CHECKING:
     from service.context import Context

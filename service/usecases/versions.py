@@ -4,9 +4,10 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
+from service.clock import utcnow
 from service.core import FittedMetric
 from service.errors import InvalidInput, NotFound
-from service.storage import utcnow
+from service.store import MissingVersion
 
 from .metrics import require_metric
 
@@ -24,9 +25,9 @@ def check_version_number(n: Any, field: str = "version") -> int:
 
 def list_versions(ctx: Context, name: str) -> dict[str, Any]:
     require_metric(ctx, name)
-    active = ctx.storage.active_version(name)
+    active = ctx.storage.versions.active(name)
     return {"versions": [{**s, "active": s["version"] == active}
-                         for s in ctx.storage.list_version_summaries(name)]}
+                         for s in ctx.storage.versions.summaries(name)]}
 
 
 def get_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
@@ -34,10 +35,10 @@ def get_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
     and the fitted metric (features, scales, mean, components, matrix …)."""
     require_metric(ctx, name)
     check_version_number(n)
-    doc = ctx.storage.get_version(name, n)
+    doc = ctx.storage.versions.get(name, n)
     if doc is None:
         raise NotFound(f"metric {name!r} has no version {n}")
-    active = ctx.storage.active_version(name)
+    active = ctx.storage.versions.active(name)
     # M = LᵀL is derived from the stored map, not stored itself (d² numbers per version)
     matrix = FittedMetric.from_dict(doc["metric"]).matrix.tolist()
     return {**doc["summary"], "active": n == active, "report": doc["report"],
@@ -54,11 +55,14 @@ def activate(ctx: Context, name: str, version: int, reason: str, who: str) -> di
     if not isinstance(reason, str) or len(reason) > MAX_REASON:
         raise InvalidInput.field("reason", f"a string of at most {MAX_REASON} characters")
     entry = {"at": utcnow(), "who": who, "reason": reason, "fit_id": None}
-    previous = ctx.storage.activate(name, version, entry)
+    try:
+        previous = ctx.storage.versions.activate(name, version, entry)
+    except MissingVersion as exc:
+        raise NotFound(str(exc)) from exc
     return {"name": name, "active_version": version, "previous_version": previous}
 
 
 def history(ctx: Context, name: str) -> dict[str, Any]:
     require_metric(ctx, name)
     keys = ("from", "to", "at", "who", "reason", "fit_id")
-    return {"history": [{k: e.get(k) for k in keys} for e in ctx.storage.history(name)]}
+    return {"history": [{k: e.get(k) for k in keys} for e in ctx.storage.versions.history(name)]}

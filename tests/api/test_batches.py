@@ -48,9 +48,14 @@ def test_columns_form_in_any_order_is_the_same_batch(api: SpecClient, metric: st
         "groups": [int(v) for v in labels],
     }
     a = api.post(URL, json=records_body(X, labels)).get_json()
-    b = api.post(URL, json=by_columns)
+    # Same matrix (in the metric's feature order) and labels → same content hash: the
+    # second post is refused, naming the stored batch, unless duplicates are allowed.
+    dup = api.post(URL, json=by_columns)
+    assert dup.status_code == 409 and dup.get_json()["batch_id"] == a["batch_id"]
+    assert "allow_duplicate" in dup.get_json()["detail"]
+    assert api.get("/v1/metrics/iris").get_json()["batches"] == 1
+    b = api.post(URL + "?allow_duplicate=true", json=by_columns)
     assert b.status_code == 201
-    # Same matrix (in the metric's feature order) and labels → same content hash.
     assert b.get_json()["sha256"] == a["sha256"]
     assert b.get_json()["batch_id"] != a["batch_id"]
 

@@ -20,7 +20,7 @@ from rq.registry import StartedJobRegistry
 
 from service.context import Context
 from service.core import MetricSelector
-from service.usecases import batches, fits, metrics, queues, versions
+from service.usecases import batches, fits, metrics, queues, versions, warden
 from service.usecases.batches import load_training_data
 
 from ._data import as_table, setup_metric
@@ -49,7 +49,7 @@ def test_fit_succeeds_and_version_1_is_active(ctx: Context, run_worker_burst) ->
     _, _, ids = setup_metric(ctx, "m", dataset="wine", n=4)
     fit, created = fits.request_fit(ctx, "m", {}, "etl")
     assert created and fit["status"] == "queued" and fit["version"] is None
-    job_id = ctx.storage.get_fit(fit["fit_id"])["job_id"]
+    job_id = ctx.storage.fits.get(fit["fit_id"]).job_id
     run_worker_burst(ctx)
     done = fits.get_fit(ctx, fit["fit_id"])
     assert done["status"] == "succeeded", done
@@ -58,7 +58,8 @@ def test_fit_succeeds_and_version_1_is_active(ctx: Context, run_worker_burst) ->
     assert "first version" in done["decision"]["reason"]
     assert done["started_at"] <= done["ended_at"]
     meta = Job.fetch(job_id, connection=ctx.redis).get_meta()
-    assert meta["fit_id"] == fit["fit_id"] and meta["progress"] > 0.5 and meta["stage"]
+    # the job carries ids only; progress lives in the fit record
+    assert meta == {"fit_id": fit["fit_id"], "key_prefix": ctx.settings.key_prefix}
     m = metrics.get_metric(ctx, "m")
     assert (m["active_version"], m["versions"]) == (1, 1)
     v = versions.get_version(ctx, "m", 1)
@@ -180,12 +181,12 @@ def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypat
 
     monkeypatch.setattr(MetricSelector, "fit", delete_then_fit)
     fit, _ = fits.request_fit(ctx, "m", {}, "admin")
-    job_id = ctx.storage.get_fit(fit["fit_id"])["job_id"]
+    job_id = ctx.storage.fits.get(fit["fit_id"]).job_id
     run_worker_burst(ctx)
     assert Job.fetch(job_id, connection=ctx.redis).get_status() == "finished"
     assert ctx.queue.failed_job_registry.count == 0
     assert metrics.list_metrics(ctx) == {"metrics": []}
-    assert ctx.storage.version_numbers("m") == [] and ctx.storage.get_fit(fit["fit_id"]) is None
+    assert ctx.storage.versions.numbers("m") == [] and ctx.storage.fits.get(fit["fit_id"]) is None
     monkeypatch.setattr(MetricSelector, "fit", original)
     setup_metric(ctx, "m", n=2)
     again, _ = fits.request_fit(ctx, "m", {}, "admin")
@@ -196,7 +197,10 @@ def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypat
 def test_lost_queue_job_is_reported_failed(ctx: Context, run_worker_burst) -> None:
     setup_metric(ctx, "m", n=2)
     fit, _ = fits.request_fit(ctx, "m", {}, "admin")
-    Job.fetch(ctx.storage.get_fit(fit["fit_id"])["job_id"], connection=ctx.redis).delete()
+    Job.fetch(ctx.storage.fits.get(fit["fit_id"]).job_id, connection=ctx.redis).delete()
+    # reads never write: the fit shows queued until the warden looks at it
+    assert fits.get_fit(ctx, fit["fit_id"])["status"] == "queued"
+    assert warden.sweep(ctx) == 1 and warden.sweep(ctx) == 0
     lost = fits.get_fit(ctx, fit["fit_id"])
     assert lost["status"] == "failed" and "no longer exists" in lost["error"]
     # the dedupe slot is free again, and the fit can be retried
@@ -273,15 +277,13 @@ def test_worker_killed_mid_fit(ctx: Context, run_worker_burst, retries: int) -> 
                           env=env, cwd=ROOT, timeout=120, capture_output=True)
     assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()[-2000:]
     assert fits.get_fit(c, fit["fit_id"])["status"] == "running"
-    # RQ notices a dead worker once its job heartbeat (at least 60 s) expires. Instead of
-    # waiting: with retries, expire the registry entry and let the next read reconcile;
-    # without, run RQ's registry maintenance with the clock advanced by an hour.
+    # The queue notices a dead worker once its job heartbeat (at least 60 s) expires.
+    # Instead of waiting, expire the registry entry; the warden's next sweep heals it.
     wip = StartedJobRegistry(queue=c.queue)
-    if retries:
-        for entry in c.redis.zrange(wip.key, 0, -1):
-            c.redis.zadd(wip.key, {entry: time.time() - 1})
-    else:
-        wip.cleanup(timestamp=time.time() + 3600)
+    for entry in c.redis.zrange(wip.key, 0, -1):
+        c.redis.zadd(wip.key, {entry: time.time() - 1})
+    assert fits.get_fit(c, fit["fit_id"])["status"] == "running"  # reads never write
+    warden.sweep(c)
     out = fits.get_fit(c, fit["fit_id"])
     assert "worker running this fit stopped" in out["error"], out
     if retries:

@@ -45,7 +45,7 @@ def test_grouping_follows_activation(ctx: Context, run_worker_burst) -> None:
         g1 = groupings.group(ctx, "m", table, k=k)
         assert g1["version"] == 1
         assert g1["labels"] == explicit["labels"] and g1["sizes"] == explicit["sizes"]
-        uid = metrics.get_metric(ctx, "m") and ctx.storage.get_metric("m")["uid"]
+        uid = metrics.get_metric(ctx, "m") and ctx.storage.metrics.get("m")["uid"]
         assert ctx.cache.get(("m", uid, 1)) is not None and ctx.cache.get(("m", uid, 2))
         assert len(g1["labels"]) == len(g1["distances"]) == len(g1["margins"]) == len(X)
         assert sum(g1["sizes"]) == len(X) and g1["k"] == k and not g1["k_chosen"]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 
 import numpy as np
@@ -11,7 +12,8 @@ from numpy.testing import assert_allclose, assert_array_equal
 from service.context import Context
 from service.core import BatchStats
 from service.errors import Conflict, NotFound
-from service.storage import ActiveChanged, Storage
+from service.lifecycle import Fit, FitStatus
+from service.store import ActiveChanged, DuplicateBatch, MissingMetric, StaleAttempt, Storage
 from service.usecases import batches, metrics, versions
 from service.usecases.batches import load_training_data
 
@@ -23,33 +25,47 @@ def _doc(n: int) -> dict:
             "report": {"n": n}, "metric": {"m": n}, "batches": [], "parent": None}
 
 
-def _fit(storage: Storage, fit_id: str) -> None:
-    storage._write_fit(storage.redis, fit_id, {"fit_id": fit_id, "status": "running"})
+def _running(storage: Storage, fit_id: str, uid: str) -> Fit:
+    """A fit record in state running under job ``job-<fit_id>``, as a worker leaves it."""
+    fit = Fit(fit_id=fit_id, metric="m", metric_uid=uid, params={}, requested_by="t",
+              job_id=f"job-{fit_id}", dedupe_key=storage.fits.dedupe_key("m", fit_id),
+              created_at="now", created_ts=0.0)
+    storage.fits.create(fit, enqueue=lambda pipe: None)
+    return storage.fits.change(fit_id, lambda f: f.start())
 
 
 def test_version_commit_is_all_or_nothing(ctx: Context) -> None:
     metrics.put_metric(ctx, "m", ["a", "b"])
     st = ctx.storage
-    uid = st.get_metric("m")["uid"]
-    _fit(st, "f1")
-    n = st.next_version_number("m")
-    common = dict(activate=True, activation={"to": n}, fit_id="f1",
-                  fit_fields={"status": "succeeded", "version": n})
-    # a stale decision (active changed) and a re-created metric both leave no trace
+    uid = st.metrics.get("m")["uid"]
+    running = _running(st, "f1", uid)
+    n = st.versions.next_number("m")
+    done = running.succeed(n, {"activated": True, "reason": "test"})
+    common = dict(activate=True, activation={"to": n}, fit=done)
+    # a stale decision (active changed), a re-created metric and an attempt that no
+    # longer owns the fit all leave no trace
     with pytest.raises(ActiveChanged):
-        st.commit_version("m", uid, n, _doc(n), expected_active=7, **common)
-    with pytest.raises(NotFound):
-        st.commit_version("m", "other-uid", n, _doc(n), expected_active=None, **common)
-    assert st.version_numbers("m") == []
-    assert st.get_version("m", n) is None
-    assert st.active_version("m") is None and st.history("m") == []
-    assert st.get_fit("f1")["status"] == "running"
+        st.versions.commit("m", uid, n, _doc(n), expected_active=7, **common)
+    with pytest.raises(MissingMetric):
+        st.versions.commit("m", "other-uid", n, _doc(n), expected_active=None, **common)
+    stale = dataclasses.replace(done, job_id="job-of-an-older-attempt")
+    with pytest.raises(StaleAttempt):
+        st.versions.commit("m", uid, n, _doc(n), expected_active=None, activate=True,
+                           activation={"to": n}, fit=stale)
+    assert st.versions.numbers("m") == []
+    assert st.versions.get("m", n) is None
+    assert st.versions.active("m") is None and st.versions.history("m") == []
+    assert st.fits.get("f1").status is FitStatus.RUNNING
+    assert st.fits.live_ids() == ["f1"]
 
-    st.commit_version("m", uid, n, _doc(n), expected_active=None, **common)
-    assert st.version_numbers("m") == [n]
-    assert st.get_version("m", n)["report"] == {"n": n}
-    assert st.active_version("m") == n and st.history("m") == [{"to": n}]
-    assert st.get_fit("f1")["status"] == "succeeded"
+    st.versions.commit("m", uid, n, _doc(n), expected_active=None, **common)
+    assert st.versions.numbers("m") == [n]
+    assert st.versions.get("m", n)["report"] == {"n": n}
+    assert st.versions.active("m") == n and st.versions.history("m") == [{"to": n}]
+    assert st.fits.get("f1").status is FitStatus.SUCCEEDED
+    # a finished fit leaves the live set and frees its dedupe slot
+    assert st.fits.live_ids() == []
+    assert st.fits.dedupe_holder(st.fits.dedupe_key("m", "f1")) is None
 
 
 def test_reader_never_sees_a_partial_version(ctx: Context) -> None:
@@ -57,38 +73,43 @@ def test_reader_never_sees_a_partial_version(ctx: Context) -> None:
     together while versions are committed: all four must agree at every read."""
     metrics.put_metric(ctx, "m", ["a"])
     st = ctx.storage
-    uid = st.get_metric("m")["uid"]
+    uid = st.metrics.get("m")["uid"]
     done = threading.Event()
     seen: list[tuple] = []
+    k = st.keys
 
     def reader() -> None:
         conn = st.redis
         while not done.is_set():
             for n in range(1, 31):
                 with conn.pipeline(transaction=True) as pipe:
-                    pipe.exists(st._m("m", "version", n))
-                    pipe.zscore(st._m("m", "versions"), str(n))
-                    pipe.hget(st.key("fit", f"f{n}"), "status")
+                    pipe.exists(k.version("m", n))
+                    pipe.zscore(k.version_index("m"), str(n))
+                    pipe.get(k.active("m"))
+                    pipe.hget(k.fit(f"f{n}"), "status")
                     seen.append((n, *pipe.execute()))
 
     thread = threading.Thread(target=reader)
     thread.start()
     try:
         for i in range(1, 31):
-            _fit(st, f"f{i}")
-            n = st.next_version_number("m")
-            st.commit_version("m", uid, n, _doc(n), expected_active=st.active_version("m"),
-                              activate=True, activation={"to": n}, fit_id=f"f{i}",
-                              fit_fields={"status": "succeeded"})
+            running = _running(st, f"f{i}", uid)
+            n = st.versions.next_number("m")
+            st.versions.commit("m", uid, n, _doc(n), expected_active=st.versions.active("m"),
+                               activate=True, activation={"to": n},
+                               fit=running.succeed(n, {"activated": True, "reason": "t"}))
     finally:
         done.set()
         thread.join(timeout=30)
     assert not thread.is_alive()
     assert len(seen) > 30
-    for _n, exists, score, status in seen:
+    for n, exists, score, active, status in seen:
         visible = bool(exists)
         assert visible == (score is not None)
         assert visible == (status == b'"succeeded"')
+        # versions are committed in order and each is activated: version n is visible
+        # exactly when the active pointer has reached it
+        assert visible == (active is not None and int(active) >= n)
 
 
 def test_two_prefixes_share_a_redis_without_seeing_each_other(ctx: Context) -> None:
@@ -119,7 +140,7 @@ def test_batches_round_trip_and_stats_are_stored_as_bytes(ctx: Context) -> None:
         assert row["labels"] == [int(v) for v in y]
         expected = BatchStats.from_batch(X, y)
         assert row["stats"].allclose(expected, rtol=1e-12, atol=1e-12)
-    raw = ctx.redis.hget(ctx.storage._m("m", "batch", ids[0]), "stats")
+    raw = ctx.redis.hget(ctx.storage.keys.batch("m", ids[0]), "stats")
     assert raw == BatchStats.from_batch(*data[0]).to_bytes()
 
 
@@ -146,9 +167,14 @@ def test_both_table_forms_give_the_same_batch(ctx: Context) -> None:
     reversed_cols = {"columns": feats[::-1], "rows": X[:, ::-1].tolist()}
     records = {"records": [dict(zip(feats, row, strict=True)) for row in X.tolist()]}
     a = batches.add_batch(ctx, "m", as_table(feats, X), y.tolist())
-    b = batches.add_batch(ctx, "m", reversed_cols, y.tolist())
-    c = batches.add_batch(ctx, "m", records, y.tolist())
+    # the same content again is refused, naming the stored batch, unless allowed
+    with pytest.raises(DuplicateBatch) as dup:
+        batches.add_batch(ctx, "m", reversed_cols, y.tolist())
+    assert dup.value.batch_id == a["batch_id"]
+    b = batches.add_batch(ctx, "m", reversed_cols, y.tolist(), allow_duplicate=True)
+    c = batches.add_batch(ctx, "m", records, y.tolist(), allow_duplicate=True)
     assert a["sha256"] == b["sha256"] == c["sha256"]
+    assert len({a["batch_id"], b["batch_id"], c["batch_id"]}) == 3
     got = batches.get_batch(ctx, "m", a["batch_id"])
     sizes = {str(k): int(v) for k, v in zip(*np.unique(y, return_counts=True), strict=True)}
     assert got["group_sizes"] == sizes and got["records"] == len(X)
@@ -160,7 +186,7 @@ def test_activation_of_a_missing_version_changes_nothing(ctx: Context) -> None:
     metrics.put_metric(ctx, "m", ["a"])
     with pytest.raises(NotFound):
         versions.activate(ctx, "m", 3, "roll back", "admin")
-    assert ctx.storage.active_version("m") is None
+    assert ctx.storage.versions.active("m") is None
     assert versions.history(ctx, "m") == {"history": []}
 
 

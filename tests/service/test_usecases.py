@@ -82,7 +82,7 @@ def test_delete_metric_removes_every_key(ctx: Context) -> None:
     fits.request_fit(ctx, "m", {}, "admin")
     metrics.delete_metric(ctx, "m")
     assert list(ctx.redis.scan_iter(match=ctx.settings.key_prefix + ":metric:*")) == []
-    assert ctx.storage.fit_ids() == []
+    assert ctx.storage.fits.ids(metric_names=["m"]) == [] and ctx.storage.fits.live_ids() == []
     _raises(NotFound, 404, None, metrics.get_metric, ctx, "m")
 
 

@@ -1,0 +1,97 @@
+"""The fit queue behind our own words: the only module of the service that speaks RQ.
+
+A fit's job carries only the fit id. What the rest of the service needs from the
+queue is here: enqueue a job inside a storage transaction, ask what became of a job
+(:class:`JobState`, in the product's terms), and let the queue notice attempts whose
+worker stopped heartbeating (:func:`heal_stalled`).
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Callable
+from enum import Enum
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from redis.client import Pipeline
+
+    from service.context import Context
+
+JOB_FUNC = "workers.jobs.run_fit"
+FAILURE_CALLBACK = "workers.jobs.on_fit_failure"
+RESULT_TTL = 7 * 86400
+FAILURE_TTL = 30 * 86400
+
+
+class JobState(str, Enum):
+    WAITING = "waiting"  # in the queue, or waiting for a retry
+    RUNNING = "running"  # a worker holds it
+    DONE = "done"  # the job returned
+    FAILED = "failed"  # the job raised and has no retry left
+    STOPPED = "stopped"  # stopped or cancelled by an operator
+    MISSING = "missing"  # the queue no longer knows it
+
+
+_STATES = {"queued": JobState.WAITING, "scheduled": JobState.WAITING,
+           "deferred": JobState.WAITING, "started": JobState.RUNNING,
+           "finished": JobState.DONE, "failed": JobState.FAILED,
+           "stopped": JobState.STOPPED, "canceled": JobState.STOPPED}
+
+
+def job_id_for(ctx: Context, fit_id: str, run: int) -> str:
+    """The job id of run ``run`` of a fit (a retry by a person is a new run)."""
+    slug = re.sub(r"[^A-Za-z0-9_-]", "_", ctx.settings.key_prefix)
+    return f"{slug}-fit-{fit_id}-{run}"
+
+
+def enqueuer(ctx: Context, fit_id: str, job_id: str) -> Callable[[Pipeline], None]:
+    """A callback that enqueues the fit's job on a storage pipeline (same EXEC)."""
+    from rq import Callback, Retry
+
+    s = ctx.settings
+
+    def enqueue(pipe: Pipeline) -> None:
+        ctx.queue.enqueue_call(
+            JOB_FUNC, args=(fit_id,), job_id=job_id, timeout=s.fit_timeout,
+            result_ttl=RESULT_TTL, failure_ttl=FAILURE_TTL,
+            retry=Retry(max=s.fit_retries) if s.fit_retries > 0 else None,
+            on_failure=Callback(FAILURE_CALLBACK),
+            meta={"key_prefix": s.key_prefix, "fit_id": fit_id},
+            description=f"likewise fit {fit_id}", pipeline=pipe)
+
+    return enqueue
+
+
+def job_state(ctx: Context, job_id: str) -> tuple[JobState, str | None]:
+    """What became of a job, and its last error line when it failed."""
+    from rq.exceptions import NoSuchJobError
+    from rq.job import Job
+
+    try:
+        job = Job.fetch(job_id, connection=ctx.redis)
+    except NoSuchJobError:
+        return JobState.MISSING, None
+    status = job.get_status(refresh=False)
+    state = _STATES.get(str(getattr(status, "value", status)), JobState.MISSING)
+    if state is JobState.FAILED:
+        return state, _last_error(job)
+    return state, None
+
+
+def _last_error(job: Any) -> str:
+    try:
+        result = job.latest_result()
+        text = (result.exc_string if result is not None else None) or ""
+    except Exception:  # noqa: BLE001 — best effort description only
+        text = ""
+    lines = [ln for ln in text.strip().splitlines() if ln.strip()]
+    return lines[-1].strip() if lines else "the fit job failed"
+
+
+def heal_stalled(ctx: Context) -> None:
+    """Let the queue hand back jobs whose worker stopped heartbeating: each one is
+    retried if it has retries left, else failed (the failure callback records it)."""
+    from rq.registry import StartedJobRegistry
+
+    StartedJobRegistry(queue=ctx.queue).cleanup()

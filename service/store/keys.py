@@ -1,0 +1,96 @@
+"""Every Redis key of likewise, under one configurable prefix (the only place names live).
+
+Key layout (``P`` = the deployment's key prefix; metric names match
+``[a-z0-9_-]{1,64}`` so they never contain ``:``)::
+
+    P:metrics                       set    metric names
+    P:metric:{name}                 hash   features (JSON), description, created_at,
+                                           updated_at, uid (changes when re-created)
+    P:metric:{name}:records         string records in all batches (INCRBY/DECRBY)
+    P:metric:{name}:batches         zset   batch ids, scored by ingest order
+    P:metric:{name}:batch:{id}      hash   meta (JSON), stats (BatchStats.to_bytes()),
+                                           matrix (codecs.pack_matrix), labels (codecs.pack_json)
+    P:metric:{name}:content         hash   content hash (sha256) → batch id
+    P:metric:{name}:vseq            string version counter (INCR; a crashed fit leaves a gap)
+    P:metric:{name}:versions        zset   visible version numbers
+    P:metric:{name}:version:{n}     hash   summary, report, metric, batches (JSON), fit_id, parent
+    P:metric:{name}:active          string active version number
+    P:metric:{name}:history         list   activations (JSON), oldest first
+    P:metric:{name}:fits            zset   fit ids of this metric, by creation time
+    P:metric:{name}:dedupe:{hash}   string fit id of a queued/running fit with these params
+    P:fit:{fit_id}                  hash   fit record fields (JSON values)
+    P:live-fits                     set    ids of queued and running fits (what the warden checks)
+    P:idem:{digest}                 string a stored answer to an Idempotency-Key (expires)
+    P:batchseq                      string ingest order of batches (INCR)
+"""
+
+from __future__ import annotations
+
+# per-metric keys with a fixed name (deleted with the metric; reset when it is re-created)
+METRIC_SCALARS = ("records", "vseq", "active", "history", "content")
+
+
+class Keys:
+    """Key names of one deployment (``prefix``)."""
+
+    def __init__(self, prefix: str) -> None:
+        self.prefix = prefix
+
+    def join(self, *parts: object) -> str:
+        return ":".join([self.prefix, *map(str, parts)])
+
+    # ---- metrics -------------------------------------------------------------------
+    def metric_names(self) -> str:
+        return self.join("metrics")
+
+    def metric(self, name: str, *parts: object) -> str:
+        return self.join("metric", name, *parts)
+
+    def records(self, name: str) -> str:
+        return self.metric(name, "records")
+
+    # ---- batches -------------------------------------------------------------------
+    def batch_index(self, name: str) -> str:
+        return self.metric(name, "batches")
+
+    def batch(self, name: str, batch_id: str) -> str:
+        return self.metric(name, "batch", batch_id)
+
+    def content(self, name: str) -> str:
+        return self.metric(name, "content")
+
+    def batch_seq(self) -> str:
+        return self.join("batchseq")
+
+    # ---- versions ------------------------------------------------------------------
+    def version_seq(self, name: str) -> str:
+        return self.metric(name, "vseq")
+
+    def version_index(self, name: str) -> str:
+        return self.metric(name, "versions")
+
+    def version(self, name: str, n: int | str) -> str:
+        return self.metric(name, "version", n)
+
+    def active(self, name: str) -> str:
+        return self.metric(name, "active")
+
+    def history(self, name: str) -> str:
+        return self.metric(name, "history")
+
+    # ---- fits ----------------------------------------------------------------------
+    def fit_index(self, name: str) -> str:
+        return self.metric(name, "fits")
+
+    def dedupe(self, name: str, params_hash: str) -> str:
+        return self.metric(name, "dedupe", params_hash)
+
+    def fit(self, fit_id: str) -> str:
+        return self.join("fit", fit_id)
+
+    def live_fits(self) -> str:
+        return self.join("live-fits")
+
+    # ---- retried requests ------------------------------------------------------------
+    def idempotency(self, digest: str) -> str:
+        return self.join("idem", digest)
