@@ -9,7 +9,7 @@ from .learners import METHODS, fit_metric
 from .metric import FittedMetric
 from .optimal1d import kmeans_1d
 from .scores import agreement
-from .selection import MetricSelector, select_metric
+from .selection import MetricSelector
 from .stats import BatchStats
 from .validation import check_batch, check_k, check_matrix
 
@@ -30,5 +30,4 @@ __all__ = [
     "fit_metric",
     "group_records",
     "kmeans_1d",
-    "select_metric",
 ]

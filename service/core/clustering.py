@@ -30,10 +30,10 @@ def _threadpools() -> ThreadpoolController:
 def single_threaded(active: bool = True) -> AbstractContextManager:
     """Limit OpenMP and BLAS to one thread inside the block (no-op when not active).
 
-    k-means and the small dense algebra of the core run on one thread: measured on a
-    2-core machine shared with other processes, OpenMP/BLAS threads spin-waiting made
-    k-means at 100,000 records 5× slower (2.3 s vs 0.45 s) and a d = 50 fit 30× slower;
-    on an idle machine they would gain at most the core count. A service runs one
+    k-means and the small dense algebra of the core run on one thread: on a small
+    machine shared with other processes, OpenMP/BLAS threads spin-waiting made
+    k-means and fits several times slower, while on an idle machine they would gain
+    at most the core count. A service runs one
     fit per worker process, so processes, not threads, use the cores.
     """
     return _threadpools().limit(limits=1) if active else nullcontext()
@@ -44,8 +44,7 @@ def validated_inner_loop() -> Iterator[None]:
     """For loops over inputs the core validated already (cross-validation, k curves).
 
     scikit-learn re-validates parameters and finiteness on every call; in a loop of
-    hundreds of small k-means runs and scores that was about a third of the time
-    (measured: 5.1 → 3.4 ms per KMeans fit, 0.96 → 0.64 ms per ARI on 200 records).
+    hundreds of small k-means runs and scores that was a large share of the time.
     ``sklearn.config_context`` switches those checks off inside the block only.
     """
     with sklearn.config_context(skip_parameter_validation=True, assume_finite=True):

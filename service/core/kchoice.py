@@ -15,9 +15,9 @@ Calinski–Harabasz ratio. Four candidate rules read k̂ from those curves:
 Calibration reads :class:`KEvidence`: per labelled batch, its curves in the learned
 space and its number of expert groups. Each batch is seen through a map that was
 fitted without it, because a metric makes its own training batches look tighter
-than new ones: :func:`k_evidence` refits the learner without each batch (from the
-statistics, O(d³) per batch); the selector uses the map of the cross-validation
-fold that held the batch out. :func:`rule_from_evidence` scores every rule
+than new ones: the selector (:mod:`service.core.selection`) passes the map of the
+cross-validation fold that held the batch out to :func:`evidence_from_maps`.
+:func:`rule_from_evidence` scores every rule
 leave-one-batch-out (thresholds learned on the other batches); a held-out batch
 counts as a hit when k̂ equals its number of expert groups. The rule with the best
 held-out hit rate wins (ties go to the earlier rule in the list above) and is
@@ -30,7 +30,6 @@ records already mapped.
 from __future__ import annotations
 
 import math
-import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -39,10 +38,8 @@ import numpy as np
 
 from . import kcurves
 from .errors import CoreError
-from .learners import fit_metric
 from .metric import FittedMetric
-from .stats import BatchStats, without
-from .validation import check_batch, check_matrix, check_whole
+from .validation import check_matrix, check_whole
 
 RULES = ("silhouette", "calinski_harabasz", "spread", "explained")
 _THRESHOLD_RULES = ("spread", "explained")
@@ -52,13 +49,13 @@ DEFAULT_K_MAX = 10
 @dataclass(frozen=True)
 class KEvidence:
     """What the k rules are calibrated on: per labelled batch, the curves over k in the
-    learned space (each batch mapped by the learner refitted without it where
-    possible, see ``mapping``) and the batch's number of expert groups."""
+    learned space (each batch mapped by a map fitted without it where possible, see
+    ``mapping``) and the batch's number of expert groups."""
 
     curves: list[dict[str, np.ndarray]]
     truths: list[int]
     k_max: int
-    # "leave_one_batch_out", "out_of_fold", "in_sample" or "partly_in_sample"
+    # "out_of_fold", "in_sample" or "partly_in_sample"
     mapping: str
     # per rule without parameters, the k it reads from each batch's curves
     fixed: dict[str, list[int]] = field(default_factory=dict)
@@ -74,44 +71,6 @@ class KEvidence:
             self.k_max, self.mapping,
             {rule: [picks[i] for i in which] for rule, picks in self.fixed.items()},
         )
-
-
-def calibrate_k_rule(*args: Any, **kwargs: Any) -> dict[str, Any]:
-    """Calibrate the rule for unknown k on labelled batches; a JSON-safe dict.
-
-    Parameters as :func:`k_evidence` (metric, batches, k_max, random_state, total,
-    stats); the rule is chosen by :func:`rule_from_evidence`.
-    """
-    return rule_from_evidence(k_evidence(*args, **kwargs))
-
-
-def k_evidence(
-    metric: FittedMetric,
-    batches: Sequence[tuple[np.ndarray, np.ndarray]],
-    k_max: int = DEFAULT_K_MAX,
-    random_state: int | None = 0,
-    total: BatchStats | None = None,
-    stats: Sequence[BatchStats] | None = None,
-) -> KEvidence:
-    """The curves over k of labelled batches that the k rules are calibrated on.
-
-    ``total``: the summed statistics ``metric`` was fitted from, which include every
-    batch given here; defaults to the sum over ``batches``. ``stats``: each batch's
-    own statistics, when ``batches`` are subsamples of the batches that were summed;
-    defaults to the statistics of ``batches``. Batch b is mapped by the learner
-    refitted on ``total − stats(b)``; when that is impossible (a single batch, a
-    method the learners do not know) by ``metric`` itself.
-    """
-    k_max = _check_k_max(k_max)
-    data = [check_batch(X, groups, metric.n_features) for X, groups in batches]
-    if stats is not None:
-        stats = list(stats)
-        if len(stats) != len(data) or any(
-            not isinstance(s, BatchStats) or s.n_features != metric.n_features for s in stats
-        ):
-            raise CoreError("stats must be one BatchStats per batch, same features", "stats")
-    maps, mapping = _out_of_batch_maps(metric, data, total, stats)
-    return evidence_from_maps(maps, data, k_max, random_state, mapping)
 
 
 def evidence_from_maps(
@@ -212,64 +171,6 @@ def choose_k(Z: np.ndarray, rule: dict[str, Any] | None, random_state: int | Non
 
 def _check_k_max(k_max) -> int:
     return check_whole(k_max, "k_max", 2)
-
-
-def _out_of_batch_maps(
-    metric: FittedMetric,
-    data: list[tuple[np.ndarray, np.ndarray]],
-    total: BatchStats | None,
-    parts: list[BatchStats] | None,
-) -> tuple[list[FittedMetric], str]:
-    """Per batch, the learner refitted without it; else ``metric`` (in sample).
-
-    The refits are used only if refitting on ``total`` reproduces ``metric``: then
-    they live in the same learned space (same learner, α, rank and scales).
-    """
-    in_sample = [metric] * len(data), "in_sample"
-    if not data or (total is None and len(data) < 2):
-        return in_sample
-    if parts is None:
-        parts = [BatchStats.from_batch(X, codes) for X, codes in data]
-    total = total if total is not None else BatchStats.sum(parts)
-    # the other batches are all known when the parts make up the whole total
-    complete = sum(p.n_batches for p in parts) == total.n_batches
-    alpha = metric.alpha if metric.alpha > 0 else 1.0  # α is unused by "euclidean"
-
-    def refit(stats: BatchStats) -> FittedMetric:
-        return fit_metric(stats, metric.method, alpha, max_rank=metric.rank)
-
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # zero-spread warnings were given by the fit
-            if not _same_map(refit(total), metric):
-                return in_sample
-            maps = []
-            for i, part in enumerate(parts):
-                others = _without(parts, i)
-                rest = (
-                    without(total, part, lambda others=others: BatchStats.sum(others))
-                    if complete
-                    else total - part
-                )
-                if rest.n_batches < 1:
-                    return in_sample
-                maps.append(refit(rest))
-    except CoreError:
-        return in_sample
-    return maps, "leave_one_batch_out"
-
-
-def _same_map(a: FittedMetric, b: FittedMetric) -> bool:
-    return (
-        a.components.shape == b.components.shape
-        and np.allclose(a.scales, b.scales, rtol=1e-6)
-        and np.allclose(a.mean, b.mean, rtol=1e-6, atol=1e-9 * float(np.abs(b.mean).max()))
-        and np.allclose(a.matrix, b.matrix, rtol=1e-5, atol=1e-8 * float(np.abs(b.matrix).max()))
-    )
-
-
-def _without(items: list, i: int) -> list:
-    return items[:i] + items[i + 1 :]
 
 
 def _statistic(rule: str, curves: dict[str, np.ndarray]) -> np.ndarray:

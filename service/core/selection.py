@@ -12,9 +12,8 @@ Held-out grouping: all candidates of a fold group a held-out batch together
 (:mod:`service.core._stacked`: scikit-learn's k-means++ and Lloyd steps run on every
 candidate at once, with the same random numbers for each, so candidates are
 compared on common random numbers). ``cv_n_init`` restarts (2 by default;
-scikit-learn's own default for k-means++ is 1): against 4 restarts, measured on
-the few-batch bench below, the picks were as good (+0.014 ± 0.008 vs +0.008 ±
-0.009 over arg-max) and the fit took ~20 % less time. The unknown-k rule is
+scikit-learn's own default for k-means++ is 1; ``bench/few_batches.py`` compares
+the picks with more restarts). The unknown-k rule is
 calibrated on each batch as the winning candidate saw it held out
 (:func:`service.core.kchoice.held_out_k_hits` gives its held-out hit rate).
 
@@ -30,17 +29,10 @@ differences* across batches: the default learner (``discriminant``, at its best 
 stands unless another candidate — Euclidean included — beats it by more than one
 paired standard error. ``rule="argmax"`` takes the best mean.
 
-Measured with ``bench/few_batches.py``: problems of 3–5 small batches from five open
-data sets, the picked metric judged on 15 batches from a disjoint pool of records.
-While designing (60 problems): this rule +0.022 ± 0.009 held-out ARI over the
-arg-max; a one-standard-error rule that preferred larger α and simpler learners
-(Euclidean first) −0.045 ± 0.010; a guard keeping Euclidean unless a learner beat it
-clearly −0.02 — the noise mostly costs by picking Euclidean or another learner by
-chance. On fresh seeds (the bench's 30 problems, not used to design the rule):
-+0.014 ± 0.008 (paired s.e.), 7 problems better, 3 worse, the rest equal (with
-scikit-learn ``KMeans`` and 4 restarts per candidate, before the stacked grouping:
-+0.013 ± 0.009, 7 better, 4 worse). A requested method (not ``auto``) takes its
-arg-max α.
+``bench/few_batches.py`` measures this rule against the arg-max on problems of 3–5
+small batches from open data sets, judged on batches from a disjoint pool of
+records; its figures are in the README (Benchmarks), not here. A requested method
+(not ``auto``) takes its arg-max α.
 """
 
 from __future__ import annotations
@@ -347,14 +339,6 @@ class MetricSelector:
             "n_features": int(cv.total.n_features),
             "warnings": list(metric.info.get("warnings", [])),
         }
-
-
-def select_metric(
-    batches: Sequence[Batch], stats: Sequence[BatchStats] | None = None, **params: Any
-) -> tuple[FittedMetric, dict[str, Any]]:
-    """Convenience: ``MetricSelector(**params).fit(batches, stats)`` → (metric, report)."""
-    sel = MetricSelector(**params).fit(batches, stats)
-    return sel.metric_, sel.report_
 
 
 def _check_batches(batches: Sequence[Batch]) -> list[tuple[np.ndarray, np.ndarray]]:

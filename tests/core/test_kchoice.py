@@ -15,8 +15,15 @@ import numpy as np
 import pytest
 from sklearn.datasets import make_blobs
 
-from service.core import BatchStats, CoreError, FittedMetric, fit_metric, group_records
-from service.core.kchoice import RULES, _fit_params, calibrate_k_rule, choose_k
+from service.core import CoreError, FittedMetric, MetricSelector, group_records
+from service.core.kchoice import (
+    RULES,
+    _fit_params,
+    choose_k,
+    evidence_from_maps,
+    rule_from_evidence,
+)
+from service.core.validation import check_batch
 from tests.datasets import load_open, make_batches, split_pool
 
 
@@ -34,12 +41,24 @@ def identity_metric(d: int) -> FittedMetric:
     return FittedMetric("euclidean", 0.0, np.ones(d), np.zeros(d), np.eye(d))
 
 
+def selected(batches, method: str, alpha: float | None = None, k_max: int = 10
+             ) -> tuple[FittedMetric, dict]:
+    """The path the service takes: the selector fits the metric and calibrates its k
+    rule on the batches seen through their out-of-fold maps."""
+    sel = MetricSelector(method=method, alphas=[alpha] if alpha else None, k_max=k_max,
+                         random_state=0).fit(batches)
+    return sel.metric_, sel.metric_.k_rule
+
+
+def in_sample_evidence(batches, k_max: int = 10):
+    """Curves of the batches under the identity map (no learned metric involved)."""
+    data = [check_batch(X, y, 5) for X, y in batches]
+    return evidence_from_maps([identity_metric(5)] * len(data), data, k_max, 0, "in_sample")
+
+
 @pytest.fixture(scope="module")
 def blob_fit() -> tuple[FittedMetric, dict]:
-    batches = [blob_batch(s) for s in range(8)]
-    metric = fit_metric(BatchStats.sum(BatchStats.from_batch(X, y) for X, y in batches),
-                        "euclidean")
-    return metric, calibrate_k_rule(metric, batches, k_max=10)
+    return selected([blob_batch(s) for s in range(8)], "euclidean")
 
 
 @pytest.fixture(scope="module")
@@ -48,7 +67,7 @@ def blob_rule(blob_fit) -> dict:
 
 
 def test_blobs_known_k_is_found_held_out(blob_fit) -> None:
-    metric = blob_fit[0].with_k_rule(blob_fit[1])
+    metric = blob_fit[0]
     held_out = [blob_batch(s) for s in range(100, 130)]
     hits = []
     for X, y in held_out:
@@ -62,11 +81,10 @@ def test_rule_is_json_safe_and_complete(blob_rule: dict) -> None:
     text = json.dumps(blob_rule, allow_nan=False)  # strict JSON: no NaN or infinity
     assert json.loads(text) == blob_rule
     assert blob_rule["rule"] in RULES and blob_rule["k_max"] == 10
-    assert blob_rule["n_batches"] == 8 and blob_rule["mapping"] == "leave_one_batch_out"
+    assert blob_rule["n_batches"] == 8 and blob_rule["mapping"] == "out_of_fold"
     rates = {name: c["held_out_hit_rate"] for name, c in blob_rule["candidates"].items()}
     assert set(rates) == set(RULES)
     assert blob_rule["held_out_hit_rate"] == max(rates.values())
-    assert all(0.0 <= r <= 1.0 for r in rates.values())
     # the rule survives the metric's own serialisation
     metric = FittedMetric.from_dict(
         json.loads(json.dumps(identity_metric(5).with_k_rule(blob_rule).to_dict()))
@@ -81,11 +99,9 @@ def test_open_data_digits_k_accuracy() -> None:
     (Xf, yf), (Xs, ys) = split_pool(X, y, rng)
     train = make_batches(Xf, yf, 12, rng)
     held_out = make_batches(Xs, ys, 30, rng)  # disjoint record pool
-    stats = BatchStats.sum(BatchStats.from_batch(a, b) for a, b in train)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # digits has blank pixels (zero spread)
-        metric = fit_metric(stats, "closed_form", alpha=1e-2)
-    rule = calibrate_k_rule(metric, train, k_max=10, total=stats)
+        metric, rule = selected(train, "closed_form", alpha=1e-2)
     truth = np.array([len(np.unique(b)) for _, b in held_out])
     k_hat = np.array([choose_k(metric.transform(a), rule) for a, _ in held_out])
     accuracy = float(np.mean(k_hat == truth))
@@ -143,38 +159,35 @@ def test_invalid_rule(rule: dict) -> None:
         choose_k(np.eye(3), rule)
 
 
-def test_refits_only_when_they_reproduce_the_metric(blob_fit) -> None:
-    batches = [blob_batch(s) for s in range(4)]
-    # a hand-made metric no learner would produce from these batches: mapped in sample
-    assert calibrate_k_rule(identity_metric(5), batches)["mapping"] == "in_sample"
-    # the learner's own metric, with the statistics it came from: left-out refits
-    stats = [BatchStats.from_batch(X, y) for X, y in batches]
-    total = BatchStats.sum(stats)
-    metric = fit_metric(total, "closed_form", alpha=1e-2)
-    a = calibrate_k_rule(metric, batches[:3], total=total)
-    assert a["mapping"] == "leave_one_batch_out"
-    b = calibrate_k_rule(fit_metric(BatchStats.sum(stats[:3]), "closed_form", alpha=1e-2),
-                         batches[:3])
-    assert b["mapping"] == "leave_one_batch_out"
+def test_hit_rates_are_those_of_the_rules_on_the_curves() -> None:
+    # for a rule without parameters, the held-out hit rate is the share of batches
+    # whose curves it reads as their expert k (calibration changes nothing for it)
+    batches = [blob_batch(s) for s in range(6)]
+    ev = in_sample_evidence(batches)
+    rule = rule_from_evidence(ev)
+    truths = np.array([len(np.unique(y)) for _, y in batches])
+    assert ev.truths == truths.tolist()
+    for name in ("silhouette", "calinski_harabasz"):
+        expected = float(np.mean(np.array(ev.fixed[name]) == truths))
+        assert rule["candidates"][name]["held_out_hit_rate"] == pytest.approx(expected)
+        # and choose_k reads the same k from the records themselves
+        picks = [choose_k(X, {"rule": name, "params": {}, "k_max": 10}) for X, _ in batches]
+        assert picks == ev.fixed[name]
 
 
 def test_single_batch_calibrates_in_sample_without_thresholds() -> None:
-    X, y = blob_batch(1)
-    rule = calibrate_k_rule(identity_metric(5), [(X, y)], k_max=8)
+    rule = rule_from_evidence(in_sample_evidence([blob_batch(1)], k_max=8))
     assert rule["mapping"] == "in_sample"
     assert set(rule["candidates"]) == {"silhouette", "calinski_harabasz"}
     json.dumps(rule, allow_nan=False)
 
 
-def test_invalid_batches_are_rejected() -> None:
+def test_invalid_k_max_is_rejected() -> None:
     with pytest.raises(CoreError):
-        calibrate_k_rule(identity_metric(5), [(np.zeros((4, 3)), [0, 0, 1, 1])])
-    with pytest.raises(CoreError):
-        calibrate_k_rule(identity_metric(5), [blob_batch(1)], k_max=1)
-    with pytest.raises(CoreError) as info:  # per-batch statistics must match the batches
-        calibrate_k_rule(identity_metric(5), [blob_batch(1), blob_batch(2)],
-                         stats=[BatchStats.from_batch(*blob_batch(1))])
-    assert info.value.field == "stats"
+        in_sample_evidence([blob_batch(1)], k_max=1)
+    with pytest.raises(CoreError) as info:
+        MetricSelector(k_max=1).fit([blob_batch(1), blob_batch(2)])
+    assert info.value.field == "k_max"
 
 
 def test_curves_building_blocks_match_scipy_and_sklearn() -> None:
@@ -209,9 +222,7 @@ def test_curves_building_blocks_match_scipy_and_sklearn() -> None:
 def test_held_out_hit_rate_recalibrates_without_each_fold(monkeypatch) -> None:
     from service.core import kchoice
 
-    batches = [blob_batch(s) for s in range(10)]
-    metric = identity_metric(5)
-    ev = kchoice.k_evidence(metric, batches, k_max=10)
+    ev = in_sample_evidence([blob_batch(s) for s in range(10)])
     seen: list[set[int]] = []
     real = kchoice.rule_from_evidence
 

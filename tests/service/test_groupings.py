@@ -5,10 +5,13 @@ Data: wine (Forina et al.) as bundled with scikit-learn.
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
+from numpy.testing import assert_allclose
 from sklearn.metrics import adjusted_rand_score
 
 from service.context import Context
+from service.core import FittedMetric
 from service.errors import Conflict, InvalidInput, NotFound
 from service.usecases import batches, fits, groupings, metrics, versions
 
@@ -49,7 +52,16 @@ def test_grouping_follows_activation(ctx: Context, run_worker_burst) -> None:
         assert ctx.cache.get(("m", uid, 1)) is not None and ctx.cache.get(("m", uid, 2))
         assert len(g1["labels"]) == len(g1["distances"]) == len(g1["margins"]) == len(X)
         assert sum(g1["sizes"]) == len(X) and g1["k"] == k and not g1["k_chosen"]
-        assert min(g1["margins"]) >= 0
+        # distances and margins are those of the records mapped by version 1 to the
+        # centres of their groups (k-means centres are their groups' means)
+        v1 = FittedMetric.from_dict(versions.get_version(ctx, "m", 1)["metric"])
+        Z, lab = v1.transform(X), np.asarray(g1["labels"])
+        centres = np.stack([Z[lab == j].mean(axis=0) for j in range(k)])
+        d = np.linalg.norm(Z[:, None, :] - centres[None, :, :], axis=2)
+        assert_allclose(g1["distances"], d[np.arange(len(Z)), lab], rtol=1e-6, atol=1e-9)
+        runner_up = np.sort(d, axis=1)[:, 1]
+        assert_allclose(g1["margins"], runner_up - d[np.arange(len(Z)), lab],
+                        rtol=1e-6, atol=1e-9)
         # label-invariant agreement with the true classes (sanity bound, common practice)
         assert adjusted_rand_score(y, g1["labels"]) > 0.5
         auto = groupings.group(ctx, "m", table, k="auto")

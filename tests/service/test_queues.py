@@ -24,10 +24,17 @@ def test_overview_counts_queued_and_finished(ctx: Context, run_worker_burst) -> 
     assert empty["queues"] == [{"name": ctx.settings.queue_name, "queued": 0, "running": 0,
                                 "failed": 0, "finished": 0, "oldest_queued_age_seconds": None}]
     setup_metric(ctx, "m", n=2)
+    before = time.time()
     fits.request_fit(ctx, "m", {"method": "euclidean"}, "admin")
+    enqueued = time.time()
     fits.request_fit(ctx, "m", {"method": "diagonal"}, "admin")
+    asked = time.time()
     q = queues.queue_overview(ctx)["queues"][0]
-    assert q["queued"] == 2 and q["oldest_queued_age_seconds"] >= 0.0
+    answered = time.time()
+    # the oldest job was enqueued between `before` and `enqueued`, the age read between
+    # `asked` and `answered` (the queue stores times to the microsecond)
+    assert q["queued"] == 2
+    assert asked - enqueued - 1e-3 <= q["oldest_queued_age_seconds"] <= answered - before + 1e-3
     run_worker_burst(ctx)
     q = queues.queue_overview(ctx)["queues"][0]
     assert (q["queued"], q["running"], q["finished"], q["oldest_queued_age_seconds"]) == (
