@@ -39,6 +39,9 @@ from typing import Any
 ENV_PREFIX = "LIKEWISE_"
 ADMIN_NAME = "admin"
 MIB = 1024 * 1024
+# the ceiling of LIKEWISE_MAX_BATCH_FEATURES: request envelopes refuse longer name
+# lists before looking at a single name
+MAX_FEATURES = 10_000
 
 
 def _parse_tokens(raw: str) -> dict[str, str]:
@@ -92,6 +95,8 @@ class Settings:
                      "idempotency_hours"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")
+        if self.max_batch_features > MAX_FEATURES:
+            raise ValueError(f"max_batch_features must be at most {MAX_FEATURES}")
         if self.fit_retries < 0:
             raise ValueError("fit_retries must be ≥ 0")
 

@@ -25,6 +25,7 @@ from service.errors import InvalidInput, PayloadTooLarge
 
 _NUMBER_TYPES = {int, float}
 MAX_LABEL_LENGTH = 200
+MAX_INT_LABEL = 2**53 - 1  # the largest whole number every JSON reader keeps exactly
 
 
 def _bad(field: str, message: str) -> InvalidInput:
@@ -164,6 +165,9 @@ def check_groups(groups: Any, n_records: int) -> list[Any]:
             raise _bad("groups", f"labels are at most {MAX_LABEL_LENGTH} characters")
     elif types != {int}:
         raise _bad("groups", "labels must be all strings or all whole numbers")
+    elif max(groups) > MAX_INT_LABEL or min(groups) < -MAX_INT_LABEL:
+        raise _bad("groups", f"whole-number labels are at most {MAX_INT_LABEL} in size "
+                             "(use string labels for longer identifiers)")
     if len(set(groups)) < 2:
         raise _bad("groups", "a batch needs at least two groups")
     return groups

@@ -11,6 +11,7 @@ from typing import TYPE_CHECKING
 from flask import Blueprint, Flask
 
 from .auth import require_token
+from .bodies import bound_body
 from .problems import register_problem_handlers
 
 if TYPE_CHECKING:
@@ -36,6 +37,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     app.extensions["likewise.principals"] = settings.principals()
 
     register_problem_handlers(app)
+    app.before_request(bound_body)
     telemetry.install(app)
 
     v1 = Blueprint("v1", __name__, url_prefix="/v1")

@@ -14,12 +14,14 @@ from typing import Any
 
 from flask import request
 from marshmallow import Schema, ValidationError, fields, validate, validates_schema
-from werkzeug.exceptions import BadRequest
 
+from service.config import MAX_FEATURES
 from service.errors import MalformedRequest
 from service.usecases import fits
 from service.usecases.metrics import MAX_DESCRIPTION
 from service.usecases.versions import MAX_REASON
+
+from .bodies import parse_json
 
 # one source of truth: the use cases' lists and limits (the methods come from the
 # core's learners)
@@ -58,6 +60,20 @@ class KField(fields.Field):
         return value
 
 
+class BoundedList(fields.List):
+    """A list whose length is checked before any of its items (a huge list of names
+    is refused at once, not after validating millions of items)."""
+
+    def __init__(self, inner: fields.Field, max_items: int, **kwargs: Any) -> None:
+        super().__init__(inner, **kwargs)
+        self.max_items = max_items
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> list:
+        if isinstance(value, list) and len(value) > self.max_items:
+            raise ValidationError(f"At most {self.max_items} items.")
+        return super()._deserialize(value, attr, data, **kwargs)
+
+
 class PositiveNumber(fields.Field):
     """A finite JSON number > 0 (no strings, no booleans)."""
 
@@ -79,8 +95,9 @@ class _Strict(Schema):
 
 
 class MetricSchema(_Strict):
-    features = fields.List(
+    features = BoundedList(
         fields.String(validate=validate.Length(min=1, max=128)),
+        MAX_FEATURES,
         required=True,
         validate=validate.Length(min=1),
     )
@@ -91,7 +108,7 @@ class _TableSchema(_Strict):
     """Either ``records`` (objects keyed by feature) or ``columns`` + ``rows``."""
 
     records = JSONArray(validate=validate.Length(min=1))
-    columns = fields.List(fields.String(), validate=validate.Length(min=1))
+    columns = BoundedList(fields.String(), MAX_FEATURES, validate=validate.Length(min=1))
     rows = JSONArray(validate=validate.Length(min=1))
 
     @validates_schema
@@ -184,8 +201,8 @@ def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
             f"{request.mimetype or 'no content type'}."
         )
     try:
-        data = request.get_json()
-    except BadRequest as exc:
+        data = parse_json(request.get_data(cache=True), frozenset(schema.fields))
+    except ValueError as exc:  # JSONDecodeError, or bytes that are not UTF-8
         raise MalformedRequest("The body is not valid JSON.") from exc
     except RecursionError as exc:  # the parser recurses once per nesting level
         raise MalformedRequest("The body's JSON is nested too deeply.") from exc

@@ -112,6 +112,25 @@ def _children_gone(pid: int) -> bool:
     return out.stdout.strip() == ""
 
 
+def _chunked_put(base: str, path: str, raw: bytes) -> tuple[int, dict]:
+    """PUT ``raw`` with ``Transfer-Encoding: chunked`` (64 KiB chunks)."""
+    import http.client
+    from urllib.parse import urlsplit
+
+    url = urlsplit(base)
+    conn = http.client.HTTPConnection(url.hostname, url.port, timeout=30)
+    try:
+        chunks = (raw[i:i + 65536] for i in range(0, len(raw), 65536))
+        conn.request("PUT", path, body=chunks, encode_chunked=True,
+                     headers={"Authorization": f"Bearer {TOKEN}",
+                              "Content-Type": "application/json"})
+        resp = conn.getresponse()
+        assert resp.getheader("Content-Type") == "application/problem+json"
+        return resp.status, json.loads(resp.read())
+    finally:
+        conn.close()
+
+
 def _fit(http: Http, name: str, body: dict) -> dict:
     status, fit, headers = http("POST", f"/v1/metrics/{name}/fits", body)
     assert status == 202, fit
@@ -190,6 +209,12 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
         assert moves == [(None, 1), (1, 2), (2, 1)]
         rollback = history[-1]
         assert rollback["who"] == "admin" and rollback["reason"] == "e2e roll back"
+
+        # a chunked body (no Content-Length) over the route's limit is a 413 problem,
+        # from the real HTTP server, not a parse error of a silently cut body
+        status, problem = _chunked_put(base, "/v1/metrics/wide",
+                                       b'{"features": ["' + b"x" * (2 * 1024 * 1024) + b'"]}')
+        assert status == 413 and problem["status"] == 413, problem
 
         status, queues, _ = http("GET", "/v1/queues")
         assert status == 200

@@ -1,0 +1,86 @@
+"""Request bodies: bounded before they are read, parsed once, duplicate keys refused.
+
+- Every body has a size limit: ``LIKEWISE_MAX_REQUEST_BYTES`` for batches and
+  groupings, :data:`SMALL_BODY` for the small envelopes (metric definitions, fit
+  requests, activations), so validation cost follows what a route allows, not
+  what a caller sends.
+- A chunked body (no ``Content-Length``) is read up to the limit plus one byte in
+  :func:`bound_body`: over the limit it is a 413, like a body that declares its
+  length; the WSGI layer would otherwise cut it silently at the limit.
+- :func:`parse_json` refuses an object with the same key twice (a 422 naming the
+  record, or the body), instead of letting the last value win.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+from typing import Any
+
+from flask import request
+from werkzeug.exceptions import RequestEntityTooLarge
+
+from service.errors import InvalidInput
+
+SMALL_BODY = 1024 * 1024
+# endpoints whose bodies are small envelopes (the largest: 1,000 feature names of
+# up to 128 characters, each character escaped as \uXXXX, is about 0.8 MiB)
+SMALL_ENDPOINTS = frozenset({
+    "v1.metrics.put_metric", "v1.versions.activate", "v1.fits.request_fit",
+    "v1.fits.retry_fit",
+})
+
+
+def bound_body() -> None:
+    """``before_request``: the route's body limit; chunked bodies read within it."""
+    limit = request.max_content_length
+    if request.endpoint in SMALL_ENDPOINTS:
+        limit = SMALL_BODY if limit is None else min(limit, SMALL_BODY)
+        request.max_content_length = limit
+    env = request.environ
+    # a server that de-chunks marks the stream as terminated; werkzeug then reads it
+    # up to the limit and stops there, without a word
+    unbounded = env.get("wsgi.input_terminated") or (
+        "chunked" in env.get("HTTP_TRANSFER_ENCODING", "").lower()
+        and not env.get("CONTENT_LENGTH"))
+    if limit is None or not unbounded:
+        return
+    data = env["wsgi.input"].read(limit + 1)
+    if len(data) > limit:
+        raise RequestEntityTooLarge()
+    env["wsgi.input"] = io.BytesIO(data)
+    env["CONTENT_LENGTH"] = str(len(data))  # from here on a body of known length
+    env.pop("wsgi.input_terminated", None)
+    env.pop("HTTP_TRANSFER_ENCODING", None)
+
+
+class _Duplicate(Exception):
+    def __init__(self, key: str, index: int, keys: list[str]) -> None:
+        self.key, self.index, self.keys = key, index, keys
+
+
+def parse_json(raw: bytes, envelope: frozenset[str]) -> Any:
+    """``json.loads`` that refuses duplicate keys; InvalidInput names where.
+
+    Objects are completed inner first, so in a records body the i-th object parsed
+    is ``records[i]``; an object whose keys are all envelope keys is the body itself.
+    """
+    seen = 0
+
+    def unique(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+        nonlocal seen
+        obj = dict(pairs)
+        if len(obj) != len(pairs):
+            names = [k for k, _ in pairs]
+            dup = next(k for i, k in enumerate(names) if k in names[:i])
+            raise _Duplicate(dup, seen, names)
+        seen += 1
+        return obj
+
+    try:
+        return json.loads(raw, object_pairs_hook=unique)
+    except _Duplicate as exc:
+        where = "body" if set(exc.keys) <= envelope else f"records[{exc.index}]"
+        raise InvalidInput.field(
+            where, f"the key {exc.key!r} appears more than once",
+            f"{where}: the key {exc.key!r} appears more than once") from None
