@@ -61,19 +61,33 @@ class Context:
     cache: VersionCache
 
     @classmethod
-    def build(cls, settings: Settings, connection: redis.Redis | None = None) -> Context:
-        """Wire the dependencies; requires ``settings.redis_url`` unless ``connection``."""
+    def build(cls, settings: Settings, connection: redis.Redis | None = None,
+              answer_within: float | None = None) -> Context:
+        """Wire the dependencies; requires ``settings.redis_url`` unless ``connection``.
+
+        ``answer_within`` (seconds) bounds every Redis call — connecting, and waiting
+        for a reply — with no retry: the web tier answers 503 in that time when Redis
+        hangs or is gone, instead of holding a request. Workers leave it unset (the
+        queue blocks on Redis by design).
+        """
         import redis as redis_lib
         import rq
+        from redis.backoff import NoBackoff
+        from redis.retry import Retry
 
         from service.store import Storage
 
         if connection is None:
             if not settings.redis_url:
                 raise ValueError("LIKEWISE_REDIS_URL is not set (no Redis to connect to)")
+            bounded: dict[str, Any] = {}
+            if answer_within is not None:
+                bounded = {"socket_timeout": answer_within,
+                           "socket_connect_timeout": answer_within,
+                           "retry": Retry(NoBackoff(), 0)}
             connection = redis_lib.Redis.from_url(
-                settings.redis_url, decode_responses=False, health_check_interval=30
-            )
+                settings.redis_url, decode_responses=False, health_check_interval=30,
+                **bounded)
         storage = Storage(connection, settings.key_prefix)
         queue = rq.Queue(
             settings.queue_name, connection=connection, default_timeout=settings.fit_timeout

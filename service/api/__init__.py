@@ -19,6 +19,11 @@ if TYPE_CHECKING:
     from service.context import Context
 
 
+# the longest a request waits for Redis before answering 503 (a 64 MiB batch is
+# written in well under this on a healthy server)
+REDIS_ANSWER_SECONDS = 1.5
+
+
 def create_app(settings: Settings | None = None, context: Context | None = None) -> Flask:
     """Build the app. ``context`` wins over ``settings``; with neither, the environment."""
     from service.config import Settings
@@ -27,7 +32,8 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     from . import batches, fits, groupings, health, metrics, telemetry, versions
 
     if context is None:
-        context = Context.build(settings if settings is not None else Settings.from_env())
+        context = Context.build(settings if settings is not None else Settings.from_env(),
+                                answer_within=REDIS_ANSWER_SECONDS)
     settings = context.settings
 
     app = Flask(__name__, static_folder=None)
