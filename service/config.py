@@ -10,7 +10,8 @@ LIKEWISE_REDIS_URL          redis_url                      None (launcher decide
 LIKEWISE_KEY_PREFIX         key_prefix                     ``likewise``
 LIKEWISE_DATA_DIR           data_dir                       ``./var``
 LIKEWISE_ADMIN_TOKEN        admin_token                    None
-LIKEWISE_TOKENS             tokens (``name=token,…``)      {}
+LIKEWISE_TOKENS             tokens (``name=token[:scopes],…``) {}
+LIKEWISE_TOKEN_FILE         token_file (hashed tokens)     None
 LIKEWISE_QUEUE              queue_name                     ``<key_prefix>-fits``
 LIKEWISE_FIT_TIMEOUT        fit_timeout (seconds)          1800
 LIKEWISE_FIT_RETRIES        fit_retries                    2
@@ -34,7 +35,10 @@ import dataclasses
 import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from service.tokens import TokenBook
 
 ENV_PREFIX = "LIKEWISE_"
 ADMIN_NAME = "admin"
@@ -70,6 +74,7 @@ class Settings:
     data_dir: str = "./var"
     admin_token: str | None = field(default=None, repr=False)
     tokens: dict[str, str] = field(default_factory=dict, repr=False)
+    token_file: str | None = None
     queue_name: str = ""  # empty → "<key_prefix>-fits"
     fit_timeout: int = 1800
     fit_retries: int = 2
@@ -123,12 +128,11 @@ class Settings:
         values.update(overrides)
         return cls(**values)
 
-    def principals(self) -> dict[str, str]:
-        """Bearer token → principal name (``"admin"`` for the admin token)."""
-        out = {token: name for name, token in self.tokens.items()}
-        if self.admin_token:
-            out[self.admin_token] = ADMIN_NAME
-        return out
+    def token_book(self) -> TokenBook:
+        """Every configured token (as hashes) with its principal, scopes and metrics."""
+        from service.tokens import book
+
+        return book(self.admin_token, self.tokens, self.token_file)
 
     def replace(self, **changes: Any) -> Settings:
         """A copy with some fields changed (``queue_name`` follows a new prefix unless given)."""

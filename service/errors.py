@@ -64,6 +64,22 @@ class Unauthorized(ServiceError):
     status, title, slug = 401, "Unauthorized", "unauthorized"
 
 
+class Forbidden(ServiceError):
+    """The token is valid but may not do this; ``missing_scope`` names what it lacks."""
+
+    status, title, slug = 403, "Forbidden", "forbidden"
+
+    def __init__(self, detail: str, missing_scope: str | None = None) -> None:
+        super().__init__(detail)
+        self.missing_scope = missing_scope
+
+    def to_problem(self, instance: str | None = None) -> dict[str, Any]:
+        body = super().to_problem(instance)
+        if self.missing_scope is not None:
+            body["missing_scope"] = self.missing_scope
+        return body
+
+
 class NotFound(ServiceError):
     status, title, slug = 404, "Not found", "not-found"
 

@@ -40,7 +40,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     app.config["MAX_CONTENT_LENGTH"] = settings.max_request_bytes
     app.json.sort_keys = False  # keep the use cases' key order
     app.extensions["likewise.context"] = context
-    app.extensions["likewise.principals"] = settings.principals()
+    app.extensions["likewise.tokens"] = settings.token_book()
 
     register_problem_handlers(app)
     app.before_request(bound_body)

@@ -1,41 +1,79 @@
-"""Bearer-token authentication for every ``/v1`` route.
+"""Bearer tokens and scopes for every ``/v1`` route (see :mod:`service.tokens`).
 
-Tokens come from the settings (``LIKEWISE_ADMIN_TOKEN`` → principal ``admin``,
-``LIKEWISE_TOKENS`` → their names). Every configured token is compared with
-:func:`hmac.compare_digest`, so the time taken does not tell which one nearly matched.
-The principal's name is ``who`` for activations and ``requested_by`` for fits.
+Every ``/v1`` endpoint needs one scope (:data:`SCOPE_OF`; an endpoint missing from
+the table is refused, never open). A token restricted to some metrics may touch
+only those: a route naming a metric (or a fit of one) outside them is a 403, and
+lists show only the metrics it may touch. The principal's name is ``who`` for
+activations and ``requested_by`` for fits.
 """
 
 from __future__ import annotations
 
-import hmac
-
 from flask import current_app, g, request
 
-from service.errors import Unauthorized
+from service.errors import Forbidden, Unauthorized
+from service.tokens import Principal, TokenBook
 
-
-def _match(presented: str, principals: dict[str, str]) -> str | None:
-    found: str | None = None
-    given = presented.encode("utf-8")
-    for token, name in principals.items():
-        if hmac.compare_digest(given, token.encode("utf-8")):
-            found = name
-    return found
+SCOPE_OF: dict[str, str] = {
+    "v1.metrics.list_metrics": "view",
+    "v1.metrics.get_metric": "view",
+    "v1.metrics.put_metric": "manage",
+    "v1.metrics.delete_metric": "manage",
+    "v1.batches.add_batch": "feed",
+    "v1.batches.list_batches": "view",
+    "v1.batches.get_batch": "view",
+    "v1.batches.delete_batch": "feed",
+    "v1.fits.request_fit": "fit",
+    "v1.fits.list_fits": "view",
+    "v1.fits.get_fit": "view",
+    "v1.fits.retry_fit": "fit",
+    "v1.versions.list_versions": "view",
+    "v1.versions.get_version": "view",
+    "v1.versions.activate": "release",
+    "v1.versions.history": "view",
+    "v1.groupings.group": "view",
+    "v1.queues.queues": "view",
+}
 
 
 def require_token() -> None:
-    """``before_request`` hook: sets ``g.principal`` or raises a 401 problem."""
+    """``before_request`` hook: sets ``g.principal`` or raises a 401/403 problem."""
     header = request.headers.get("Authorization", "")
     scheme, _, presented = header.partition(" ")
     if scheme.lower() != "bearer" or not presented.strip():
         raise Unauthorized("Send 'Authorization: Bearer <token>'.")
-    name = _match(presented.strip(), current_app.extensions["likewise.principals"])
-    if name is None:
+    tokens: TokenBook = current_app.extensions["likewise.tokens"]
+    who = tokens.find(presented.strip())
+    if who is None:
         raise Unauthorized("The Bearer token is not valid.")
-    g.principal = name
+    g.principal = who
+    if request.endpoint is None:  # no such route: the 404/405 handlers answer
+        return
+    scope = SCOPE_OF.get(request.endpoint)
+    if scope is None or not who.may(scope):
+        needed = scope or "an unknown scope"
+        raise Forbidden(f"This token lacks the scope {needed!r} that this request needs.",
+                        missing_scope=needed)
+    args = request.view_args or {}
+    metric = args.get("name")
+    if metric is None and "fit_id" in args:
+        metric = _metric_of_fit(str(args["fit_id"]))
+    if metric is not None and not who.may_touch(str(metric)):
+        raise Forbidden(f"This token may not touch metric {metric!r}.")
+
+
+def _metric_of_fit(fit_id: str) -> str | None:
+    from .deps import context
+
+    fit = context().storage.fits.get(fit_id) if len(fit_id) <= 64 else None
+    return fit.metric if fit is not None else None
+
+
+def current() -> Principal:
+    """The authenticated caller (only inside a ``/v1`` request)."""
+    return g.principal
 
 
 def principal() -> str:
     """The authenticated caller's name (only inside a ``/v1`` request)."""
-    return str(g.principal)
+    return current().name

@@ -6,7 +6,7 @@ from flask import Blueprint, Response
 
 from service.usecases import fits as uc
 
-from .auth import principal
+from .auth import current, principal
 from .deps import context, reply
 from .idempotency import idempotent
 from .schemas import FitQuerySchema, FitSchema, json_body, query_args
@@ -29,7 +29,9 @@ def request_fit(name: str) -> Response:
 @bp.get("/fits")
 def list_fits() -> Response:
     query = query_args(FitQuerySchema())
-    return reply(uc.list_fits(context(), query.get("metric"), query.get("status")))
+    who = current()
+    listed = uc.list_fits(context(), query.get("metric"), query.get("status"))["fits"]
+    return reply({"fits": [f for f in listed if who.may_touch(f["metric"])]})
 
 
 @bp.get("/fits/<fit_id>")

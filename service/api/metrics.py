@@ -6,6 +6,7 @@ from flask import Blueprint, Response
 
 from service.usecases import metrics as uc
 
+from .auth import current
 from .deps import context, no_content, reply
 from .idempotency import idempotent
 from .schemas import MetricSchema, json_body
@@ -25,7 +26,9 @@ def put_metric(name: str) -> Response:
 
 @bp.get("/metrics")
 def list_metrics() -> Response:
-    return reply(uc.list_metrics(context()))
+    who = current()
+    listed = uc.list_metrics(context())["metrics"]
+    return reply({"metrics": [m for m in listed if who.may_touch(m["name"])]})
 
 
 @bp.get("/metrics/<name>")

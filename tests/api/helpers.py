@@ -15,7 +15,8 @@ from .spec import SpecClient
 IRIS_FEATURES = ["sepal_length", "sepal_width", "petal_length", "petal_width"]
 PROBLEM_BASE = "urn:likewise:problem:"
 SLUGS = {
-    400: {"malformed-request"}, 401: {"unauthorized"}, 404: {"not-found"},
+    400: {"malformed-request"}, 401: {"unauthorized"}, 403: {"forbidden"},
+    404: {"not-found"},
     405: {"method-not-allowed"}, 409: {"conflict"}, 413: {"payload-too-large"},
     422: {"invalid-input"}, 500: {"internal-error"}, 503: {"unavailable", "not-ready"},
 }

@@ -13,7 +13,7 @@ from service.errors import InvalidInput, NotFound, from_core
 def test_defaults_have_no_secrets() -> None:
     s = Settings.from_env({})
     assert s.redis_url is None and s.admin_token is None and s.tokens == {}
-    assert s.principals() == {}
+    assert len(s.token_book()) == 0
     assert (s.key_prefix, s.queue_name, s.data_dir) == ("likewise", "likewise-fits", "./var")
     assert (s.fit_timeout, s.fit_retries, s.max_batch_records, s.max_batch_features) == (
         1800, 2, 100_000, 1000)
@@ -28,7 +28,11 @@ def test_environment_and_overrides() -> None:
     s = Settings.from_env(env, port=9100)
     assert (s.redis_url, s.key_prefix, s.queue_name) == ("redis://h:1/2", "blue", "blue-fits")
     assert (s.fit_timeout, s.port, s.workers) == (60, 9100, 3)
-    assert s.principals() == {"t1": "etl", "t2": "viewer", "sekrit": "admin"}
+    book = s.token_book()
+    assert sorted(book.names()) == ["admin", "etl", "viewer"]
+    assert (book.find("t1").name, book.find("t2").name, book.find("sekrit").name) == (
+        "etl", "viewer", "admin")
+    assert book.find("t3") is None
     assert "sekrit" not in repr(s) and "t1" not in repr(s)
     assert Settings.from_env({**env, "LIKEWISE_QUEUE": "q"}).queue_name == "q"
     assert s.replace(key_prefix="green").queue_name == "green-fits"
