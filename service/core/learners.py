@@ -1,6 +1,6 @@
 """Learners: fitted metrics from summed batch statistics, O(d³), no raw records.
 
-Every learner starts the same way (METHOD.md):
+Every learner starts the same way (docs/method.md):
 
 * feature scales ``s_j = sqrt(G_raw[j, j] / N)`` (pooled within-batch spread); a
   feature without spread gets scale 1, a :class:`ZeroSpreadWarning` and an entry in
@@ -82,7 +82,7 @@ def fit_metric(
     max_rank: int | None = None,
     rel_tol: float = 1e-8,
 ) -> FittedMetric:
-    """Fit one learner from summed statistics (see the module doc and METHOD.md)."""
+    """Fit one learner from summed statistics (see the module doc and docs/method.md)."""
     if method not in METHODS:
         raise CoreError(
             f"unknown method {method!r}; expected one of {', '.join(METHODS)}", "method"

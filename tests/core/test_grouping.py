@@ -42,7 +42,7 @@ def wine():
 
 
 def test_identity_metric_equals_sklearn_kmeans_from_same_centres(wine) -> None:
-    # reference: scikit-learn KMeans on the standardised records (METHOD.md, M = I)
+    # reference: scikit-learn KMeans on the standardised records (docs/method.md, M = I)
     batches, (X, y) = wine
     metric = euclidean_metric(batches)
     standardised = (X - metric.mean) / metric.scales

@@ -1,4 +1,4 @@
-"""The maths core imports numpy, scipy and scikit-learn only (CONVENTIONS.md)."""
+"""The maths core imports numpy, scipy and scikit-learn only (DEVELOPERS.md)."""
 
 from __future__ import annotations
 

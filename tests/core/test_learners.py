@@ -9,7 +9,7 @@
 * k = 2: the map is rank one along Fisher's direction (G + λI)⁻¹(μ₁ − μ₂)
   (ESL Ex. 4.2); as λ → 0, scikit-learn's LDA direction on breast cancer Wisconsin
   diagnostic (UCI, Wolberg et al.).
-* Exact recovery with n − 1 ≤ d generic records (a fact of the method, METHOD.md).
+* Exact recovery with n − 1 ≤ d generic records (a fact of the method, docs/method.md).
 Data: scikit-learn's bundled wine (UCI, Forina et al.) and optical digits (UCI,
 Alpaydin & Kaynak). ARI: Hubert & Arabie (1985), via scikit-learn.
 """
@@ -122,7 +122,7 @@ def test_two_groups_match_scikit_learns_fisher_direction() -> None:
 
 
 def test_exact_recovery_when_records_are_linearly_independent() -> None:
-    # A fact of the method (METHOD.md): with n − 1 ≤ d generic records the centred
+    # A fact of the method (docs/method.md): with n − 1 ≤ d generic records the centred
     # records are linearly independent, the regression fits the normalised assignment
     # exactly as α → 0, every group maps to a single point, and k-means finds the
     # expert grouping exactly.
@@ -155,7 +155,7 @@ def test_zero_spread_feature_warns_and_gets_scale_one() -> None:
 
 def test_real_spread_on_a_huge_offset_is_kept() -> None:
     # spread ~1 on values ~1e12 (ulp 1.2e-4) is real variation, not rounding: the fit
-    # must match the fit of the unshifted records (translation invariance, METHOD.md)
+    # must match the fit of the unshifted records (translation invariance, docs/method.md)
     X, y = load_open("iris")
     plain = fit_metric(BatchStats.from_batch(X, y), "closed_form", alpha=0.01)
     with warnings.catch_warnings():

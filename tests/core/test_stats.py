@@ -1,4 +1,4 @@
-"""Batch statistics: they add, subtract and serialise exactly (METHOD.md, sufficient
+"""Batch statistics: they add, subtract and serialise exactly (docs/method.md, sufficient
 statistics). Hand-built cases; no outside source needed beyond the definitions."""
 
 from __future__ import annotations
