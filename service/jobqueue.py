@@ -2,14 +2,17 @@
 
 A fit's job carries only the fit id. What the rest of the service needs from the
 queue is here: enqueue a job inside a storage transaction, ask what became of a job
-(:class:`JobState`, in the product's terms), and let the queue notice attempts whose
-worker stopped heartbeating (:func:`heal_stalled`).
+(:class:`JobState`, in the product's terms), let the queue notice attempts whose
+worker stopped heartbeating (:func:`heal_stalled`), and show operators the queue and
+its workers (:func:`queue_counts`, :func:`workers`, :class:`WorkerState`).
 """
 
 from __future__ import annotations
 
 import re
 from collections.abc import Callable
+from dataclasses import dataclass
+from datetime import datetime, timezone
 from enum import Enum
 from typing import TYPE_CHECKING, Any
 
@@ -95,3 +98,65 @@ def heal_stalled(ctx: Context) -> None:
     from rq.registry import StartedJobRegistry
 
     StartedJobRegistry(queue=ctx.queue).cleanup()
+
+
+# ---- what operators see: the queue and its workers, in our words --------------------
+class WorkerState(str, Enum):
+    STARTING = "starting"
+    READY = "ready"  # waiting for a fit
+    FITTING = "fitting"
+    PAUSED = "paused"
+
+
+_WORKER_STATES = {"starting": WorkerState.STARTING, "started": WorkerState.STARTING,
+                  "idle": WorkerState.READY, "busy": WorkerState.FITTING,
+                  "suspended": WorkerState.PAUSED}
+_JOB_ID = re.compile(r".+-fit-([0-9a-f]{20})-\d+")
+
+
+def _aware(dt: datetime) -> datetime:
+    """The queue's timestamps are naive UTC."""
+    return dt.replace(tzinfo=timezone.utc) if dt.tzinfo is None else dt
+
+
+def queue_counts(ctx: Context) -> dict[str, Any]:
+    """Fits waiting, being fitted, failed and done on this deployment's queue, and how
+    long the oldest waiting one has waited (seconds; None when none waits)."""
+    from rq.job import Job
+
+    q = ctx.queue
+    oldest = None
+    first = q.get_job_ids(0, 1)
+    if first:
+        job = Job.fetch(first[0], connection=ctx.redis)
+        if job is not None and job.enqueued_at is not None:
+            waited = datetime.now(timezone.utc) - _aware(job.enqueued_at)
+            oldest = max(0.0, waited.total_seconds())
+    return {"name": q.name, "waiting": q.count, "fitting": q.started_job_registry.count,
+            "failed": q.failed_job_registry.count, "done": q.finished_job_registry.count,
+            "oldest_waiting_seconds": oldest}
+
+
+@dataclass(frozen=True)
+class WorkerView:
+    name: str
+    state: WorkerState
+    last_heartbeat: datetime | None
+    queues: list[str]
+    current_fit: str | None
+
+
+def workers(ctx: Context) -> list[WorkerView]:
+    """The workers registered on this deployment's queue, by name."""
+    from rq import Worker
+
+    out = []
+    for w in Worker.all(queue=ctx.queue):
+        raw = w.get_state()
+        state = _WORKER_STATES.get(str(getattr(raw, "value", raw)), WorkerState.STARTING)
+        job_id = w.get_current_job_id()
+        match = _JOB_ID.fullmatch(job_id) if job_id else None
+        beat = _aware(w.last_heartbeat) if w.last_heartbeat is not None else None
+        out.append(WorkerView(w.name, state, beat, w.queue_names(),
+                              match.group(1) if match else None))
+    return sorted(out, key=lambda v: v.name)

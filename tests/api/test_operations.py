@@ -80,15 +80,15 @@ def test_queue_counts_follow_a_fit(
     api: SpecClient, ctx: Context, with_batches: list[str], run_worker_burst
 ) -> None:
     empty = api.get("/v1/queues").get_json()["queues"]
-    assert [(q["name"], q["queued"], q["oldest_queued_age_seconds"]) for q in empty] == [
+    assert [(q["name"], q["waiting"], q["oldest_waiting_seconds"]) for q in empty] == [
         (ctx.settings.queue_name, 0, None)
     ]
     api.post("/v1/metrics/iris/fits")
     queued = api.get("/v1/queues").get_json()["queues"][0]
-    assert queued["queued"] == 1 and queued["oldest_queued_age_seconds"] >= 0
+    assert queued["waiting"] == 1 and queued["oldest_waiting_seconds"] >= 0
     run_worker_burst(ctx, max_jobs=1)
     done = api.get("/v1/queues").get_json()
-    assert (done["queues"][0]["queued"], done["queues"][0]["finished"]) == (0, 1)
+    assert (done["queues"][0]["waiting"], done["queues"][0]["done"]) == (0, 1)
     assert done["workers"] == []  # a burst worker unregisters when it stops
 
 

@@ -19,10 +19,10 @@ from ._data import setup_metric
 ROOT = Path(__file__).resolve().parents[2]
 
 
-def test_overview_counts_queued_and_finished(ctx: Context, run_worker_burst) -> None:
+def test_overview_counts_waiting_and_done(ctx: Context, run_worker_burst) -> None:
     empty = queues.queue_overview(ctx)
-    assert empty["queues"] == [{"name": ctx.settings.queue_name, "queued": 0, "running": 0,
-                                "failed": 0, "finished": 0, "oldest_queued_age_seconds": None}]
+    assert empty["queues"] == [{"name": ctx.settings.queue_name, "waiting": 0, "fitting": 0,
+                                "failed": 0, "done": 0, "oldest_waiting_seconds": None}]
     setup_metric(ctx, "m", n=2)
     before = time.time()
     fits.request_fit(ctx, "m", {"method": "euclidean"}, "admin")
@@ -33,11 +33,11 @@ def test_overview_counts_queued_and_finished(ctx: Context, run_worker_burst) -> 
     answered = time.time()
     # the oldest job was enqueued between `before` and `enqueued`, the age read between
     # `asked` and `answered` (the queue stores times to the microsecond)
-    assert q["queued"] == 2
-    assert asked - enqueued - 1e-3 <= q["oldest_queued_age_seconds"] <= answered - before + 1e-3
+    assert q["waiting"] == 2
+    assert asked - enqueued - 1e-3 <= q["oldest_waiting_seconds"] <= answered - before + 1e-3
     run_worker_burst(ctx)
     q = queues.queue_overview(ctx)["queues"][0]
-    assert (q["queued"], q["running"], q["finished"], q["oldest_queued_age_seconds"]) == (
+    assert (q["waiting"], q["fitting"], q["done"], q["oldest_waiting_seconds"]) == (
         0, 0, 2, None)
 
 
@@ -66,10 +66,12 @@ def test_readiness_needs_a_live_worker(ctx: Context) -> None:
         assert _wait(lambda: queues.readiness(ctx)[0]), proc.stderr
         ok, detail = queues.readiness(ctx)
         assert detail == {"redis": True, "workers_seen": 1}
+        # an idle worker reads as ready, in our words, once it listens on the queue
+        assert _wait(lambda: [w["state"] for w in queues.queue_overview(ctx)["workers"]]
+                     == ["ready"])
         [w] = queues.queue_overview(ctx)["workers"]
         assert w["name"] == name and w["queues"] == [s.queue_name]
-        assert w["state"] in ("idle", "busy", "started") and w["last_heartbeat"].endswith("Z")
-        assert w["current_job"] is None
+        assert w["last_heartbeat"].endswith("Z") and w["current_fit"] is None
     finally:
         proc.send_signal(signal.SIGTERM)
         proc.wait(timeout=30)
