@@ -13,4 +13,4 @@ RUN pip install . && useradd --system --uid 10001 likewise
 USER likewise
 
 EXPOSE 8000
-CMD ["gunicorn", "--bind", "0.0.0.0:8000", "--workers", "2", "--access-logfile", "-", "service.api:create_app()"]
+CMD ["gunicorn", "--config", "python:service.webserver", "--bind", "0.0.0.0:8000", "--workers", "2", "--access-logfile", "-", "service.api:create_app()"]

@@ -275,6 +275,7 @@ def run(settings: Settings) -> int:
         bind = f"{settings.host}:{settings.port}"
         gunicorn = [
             sys.executable, "-m", "gunicorn",
+            "--config", "python:service.webserver",  # problem+json for server-level errors
             "--bind", bind,
             "--workers", "2",
             "--access-logfile", "-",

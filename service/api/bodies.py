@@ -23,6 +23,7 @@ from werkzeug.exceptions import RequestEntityTooLarge
 from service.errors import InvalidInput
 
 SMALL_BODY = 1024 * 1024
+DRAIN_BYTES = 64 * 1024
 # endpoints whose bodies are small envelopes (the largest: 1,000 feature names of
 # up to 128 characters, each character escaped as \uXXXX, is about 0.8 MiB)
 SMALL_ENDPOINTS = frozenset({
@@ -47,6 +48,9 @@ def bound_body() -> None:
         return
     data = env["wsgi.input"].read(limit + 1)
     if len(data) > limit:
+        # read a little more (bounded) so a body just over the limit is consumed and the
+        # connection closes cleanly, the 413 reaching the client instead of a reset
+        env["wsgi.input"].read(DRAIN_BYTES)
         raise RequestEntityTooLarge()
     env["wsgi.input"] = io.BytesIO(data)
     env["CONTENT_LENGTH"] = str(len(data))  # from here on a body of known length

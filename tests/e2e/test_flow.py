@@ -133,6 +133,21 @@ def _chunked_put(base: str, path: str, raw: bytes) -> tuple[int, dict]:
         conn.close()
 
 
+def _raw_get(base: str, path: str, headers: dict[str, str]) -> tuple[int, dict]:
+    import http.client
+    from urllib.parse import urlsplit
+
+    url = urlsplit(base)
+    conn = http.client.HTTPConnection(url.hostname, url.port, timeout=30)
+    try:
+        conn.request("GET", path, headers={"Authorization": f"Bearer {TOKEN}", **headers})
+        resp = conn.getresponse()
+        assert resp.getheader("Content-Type") == "application/problem+json"
+        return resp.status, json.loads(resp.read())
+    finally:
+        conn.close()
+
+
 def _fit(http: Http, name: str, body: dict) -> dict:
     status, fit, headers = http("POST", f"/v1/metrics/{name}/fits", body)
     assert status == 202, fit
@@ -214,9 +229,15 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
 
         # a chunked body (no Content-Length) over the route's limit is a 413 problem,
         # from the real HTTP server, not a parse error of a silently cut body
-        status, problem = _chunked_put(base, "/v1/metrics/wide",
-                                       b'{"features": ["' + b"x" * (2 * 1024 * 1024) + b'"]}')
+        over = b'{"features": ["' + b"x" * (1024 * 1024) + b'"]}'  # just over 1 MiB
+        status, problem = _chunked_put(base, "/v1/metrics/wide", over)
         assert status == 413 and problem["status"] == 413, problem
+
+        # what the HTTP server refuses before the app is problem+json too
+        status, problem = _raw_get(base, "/v1/metrics/" + "x" * 5000, {})
+        assert status == 414 and problem["status"] == 414, problem
+        status, problem = _raw_get(base, "/v1/metrics", {"X-Big": "y" * 9000})
+        assert status in (400, 431) and problem["status"] == status, problem
 
         status, queues, _ = http("GET", "/v1/queues")
         assert status == 200
