@@ -77,7 +77,7 @@ def test_fit_succeeds_and_version_1_is_active(ctx: Context, run_worker_burst) ->
     assert (entry["from"], entry["to"], entry["who"], entry["fit_id"]) == (
         None, 1, "etl", fit["fit_id"])
     q = queues.queue_overview(ctx)["queues"][0]
-    assert (q["queued"], q["running"], q["failed"], q["finished"]) == (0, 0, 0, 1)
+    assert (q["waiting"], q["fitting"], q["failed"], q["done"]) == (0, 0, 0, 1)
 
 
 def test_activation_policies(ctx: Context, run_worker_burst) -> None:
