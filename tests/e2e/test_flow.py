@@ -277,6 +277,15 @@ def test_embedded_redis_token_file_and_persistence(tmp_path):
         assert any("appendonly" in f.name for f in files)
         for item in redis_dir.rglob("*"):
             assert item.stat().st_mode & 0o777 == (0o700 if item.is_dir() else 0o600), item
+        # the embedded Redis crashes: the launcher starts it again on the same data,
+        # and every write it acknowledged is still there
+        [redis_pid] = [pid for pid, args in _children(proc.pid) if "redis-server" in args]
+        os.kill(redis_pid, signal.SIGKILL)
+        _wait(lambda: http("GET", "/v1/metrics/kept")[0] == 200, 30, "Redis back", proc)
+        assert proc.poll() is None
+        assert "redis exited with code -9; started it again" in (
+            tmp_path / "launcher.log").read_text()
+        assert http("GET", "/v1/metrics/kept")[1]["features"] == ["a", "b"]
     finally:
         assert _stop(proc) == 0
     # a second start reuses the token and finds the metric: the append-only file kept it
@@ -296,6 +305,13 @@ def _embedded_port(log: Path) -> int:
     found = re.findall(r"embedded Redis at redis://:\*\*\*@127\.0\.0\.1:(\d+)/0", text)
     assert found, text[-2000:]
     return int(found[-1])
+
+
+def _children(launcher_pid: int) -> list[tuple[int, str]]:
+    out = subprocess.run(["ps", "-o", "pid=,args=", "--ppid", str(launcher_pid)],
+                         capture_output=True, text=True, check=True).stdout
+    return [(int(pid), args) for pid, _, args in
+            (line.strip().partition(" ") for line in out.splitlines() if line.strip())]
 
 
 def _worker_pids(launcher_pid: int) -> set[int]:
