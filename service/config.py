@@ -25,6 +25,7 @@ LIKEWISE_PORT               port                           8000
 LIKEWISE_WORKERS            workers                        1
 LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
 LIKEWISE_WARDEN_SECONDS     warden_seconds (sweep period)  5
+LIKEWISE_LEASE_SECONDS      lease_seconds (attempt alive)  10
 LIKEWISE_IDEMPOTENCY_HOURS  idempotency_hours (answers kept) 24
 =========================== ============================== ===========================
 """
@@ -88,6 +89,7 @@ class Settings:
     workers: int = 1
     worker_seen_seconds: int = 60
     warden_seconds: int = 5
+    lease_seconds: int = 10
     idempotency_hours: int = 24
 
     def __post_init__(self) -> None:
@@ -97,7 +99,7 @@ class Settings:
             object.__setattr__(self, "queue_name", f"{self.key_prefix}-fits")
         for name in ("fit_timeout", "max_batch_records", "max_batch_features", "max_groups",
                      "max_batch_bytes", "max_request_bytes", "workers", "warden_seconds",
-                     "idempotency_hours"):
+                     "lease_seconds", "idempotency_hours"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")
         if self.max_batch_features > MAX_FEATURES:

@@ -92,6 +92,17 @@ def _last_error(job: Any) -> str:
     return lines[-1].strip() if lines else "the fit job failed"
 
 
+def forget(ctx: Context, job_id: str) -> None:
+    """Drop a job whose attempt was given up (the fit moved on to a new job)."""
+    from rq.exceptions import NoSuchJobError
+    from rq.job import Job
+
+    try:
+        Job.fetch(job_id, connection=ctx.redis).delete()
+    except NoSuchJobError:
+        pass
+
+
 def heal_stalled(ctx: Context) -> None:
     """Let the queue hand back jobs whose worker stopped heartbeating: each one is
     retried if it has retries left, else failed (the failure callback records it)."""

@@ -5,6 +5,7 @@
     queued ──start──> running ──succeed──> succeeded
       │  ^              │  │
       │  └──wait_retry──┘  └──fail──> failed ──requeue──> queued
+      │  └──hand_over───┘ (a new job after the attempt's lease lapsed)
       └──────────────fail─────────────^
 
 Every change of a fit record goes through :class:`Fit`'s methods; storage applies a
@@ -121,6 +122,11 @@ class Fit:
         """A running attempt ended without a result; another attempt follows."""
         return self._to(FitStatus.QUEUED, stage="waiting for retry", error=error,
                         job_id=job_id or self.job_id)
+
+    def hand_over(self, error: str, job_id: str) -> Fit:
+        """A running attempt died; a new job (a new run) will make the next attempt."""
+        return self._to(FitStatus.QUEUED, stage="waiting for retry", error=error,
+                        job_id=job_id, runs=self.runs + 1)
 
     def requeue(self, job_id: str, by: str) -> Fit:
         """A failed fit is queued again by a person (same id and parameters)."""

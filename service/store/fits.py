@@ -1,4 +1,4 @@
-"""Fit records, the dedupe slots of live fits and the live set.
+"""Fit records, the dedupe slots of live fits, the live set and attempt leases.
 
 A record changes only through :meth:`FitStore.change`, which reads it under WATCH,
 asks a :class:`~service.lifecycle.Fit` method for the next record and writes it in
@@ -27,6 +27,10 @@ Enqueue = Callable[["Pipeline"], None]
 # delete the dedupe key only while it still points at this fit (atomic inside MULTI)
 _DROP_DEDUPE = ("if redis.call('GET', KEYS[1]) == ARGV[1] then "
                 "return redis.call('DEL', KEYS[1]) end return 0")
+_RENEW = ("if redis.call('GET', KEYS[1]) == ARGV[1] then "
+          "return redis.call('PEXPIRE', KEYS[1], ARGV[2]) end return 0")
+_RELEASE = ("if redis.call('GET', KEYS[1]) == ARGV[1] then "
+            "return redis.call('DEL', KEYS[1]) end return 0")
 _PROGRESS = ("if redis.call('HGET', KEYS[1], 'status') == ARGV[3] then "
              "redis.call('HSET', KEYS[1], 'stage', ARGV[1], 'progress', ARGV[2]) end")
 
@@ -83,6 +87,7 @@ class FitStore:
             pipe.sadd(k.live_fits(), fit.fit_id)
         else:
             pipe.srem(k.live_fits(), fit.fit_id)
+            pipe.eval(_RELEASE, 1, k.lease(fit.fit_id), fit.job_id)
             if fit.dedupe_key and (previous is None or previous.live):
                 pipe.eval(_DROP_DEDUPE, 1, fit.dedupe_key, fit.fit_id)
 
@@ -139,6 +144,21 @@ class FitStore:
         one that is no longer running."""
         self.redis.eval(_PROGRESS, 1, self.keys.fit(fit_id), dumps(stage), dumps(progress),
                         dumps(FitStatus.RUNNING.value))
+
+    # ---- leases: a running attempt proves it is alive --------------------------------
+    def take_lease(self, fit_id: str, job_id: str, ttl_ms: int) -> None:
+        self.redis.set(self.keys.lease(fit_id), job_id, px=ttl_ms)
+
+    def renew_lease(self, fit_id: str, job_id: str, ttl_ms: int) -> bool:
+        """Extend this attempt's lease; False if it lapsed or another attempt holds it."""
+        return bool(self.redis.eval(_RENEW, 1, self.keys.lease(fit_id), job_id, ttl_ms))
+
+    def release_lease(self, fit_id: str, job_id: str) -> None:
+        self.redis.eval(_RELEASE, 1, self.keys.lease(fit_id), job_id)
+
+    def lease_holder(self, fit_id: str) -> str | None:
+        """The job id whose attempt holds the fit's lease (None once it lapsed)."""
+        return text(self.redis.get(self.keys.lease(fit_id)))
 
     def forget_live(self, fit_id: str) -> None:
         """Drop an id from the live set (its record is gone)."""

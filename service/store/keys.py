@@ -19,6 +19,7 @@ Key layout (``P`` = the deployment's key prefix; metric names match
     P:metric:{name}:fits            zset   fit ids of this metric, by creation time
     P:metric:{name}:dedupe:{hash}   string fit id of a queued/running fit with these params
     P:fit:{fit_id}                  hash   fit record fields (JSON values)
+    P:fit:{fit_id}:lease            string job id of the attempt running it (expires unless renewed)
     P:live-fits                     set    ids of queued and running fits (what the warden checks)
     P:idem:{digest}                 string a stored answer to an Idempotency-Key (expires)
     P:batchseq                      string ingest order of batches (INCR)
@@ -87,6 +88,9 @@ class Keys:
 
     def fit(self, fit_id: str) -> str:
         return self.join("fit", fit_id)
+
+    def lease(self, fit_id: str) -> str:
+        return self.join("fit", fit_id, "lease")
 
     def live_fits(self) -> str:
         return self.join("live-fits")

@@ -130,7 +130,7 @@ class MetricStore:
             doomed += [k.metric(name, s) for s in METRIC_SCALARS]
             doomed += [k.batch(name, b) for b in batch_ids]
             doomed += [k.version(name, v) for v in versions]
-            doomed += [k.fit(f) for f in fit_ids]
+            doomed += [k.fit(f) for f in fit_ids] + [k.lease(f) for f in fit_ids]
             pipe.multi()
             pipe.delete(*doomed)
             pipe.srem(k.metric_names(), name)

@@ -9,6 +9,7 @@ warden has already given up on changes nothing.
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
@@ -46,6 +47,43 @@ def fail_attempt(ctx: Context, fit_id: str, job_id: str | None, message: str) ->
     ours = _ours(job_id)
     ctx.storage.fits.change(fit_id, lambda f: f.fail(message) if ours(f) else None)
     return ctx.storage.fits.get(fit_id)
+
+
+class _Lease:
+    """The attempt's lease on its fit, renewed by a thread while the fit runs.
+
+    Taken before the fit becomes running, so a running fit without a lease is an
+    attempt that died (its process was killed, its machine lost): the warden hands
+    the fit to a new job once the lease lapses (``Settings.lease_seconds``).
+    """
+
+    def __init__(self, ctx: Context, fit_id: str, job_id: str) -> None:
+        self.fits, self.fit_id, self.job_id = ctx.storage.fits, fit_id, job_id
+        self.ttl_ms = ctx.settings.lease_seconds * 1000
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._renew, name="likewise-lease",
+                                        daemon=True)
+
+    def __enter__(self) -> _Lease:
+        self.fits.take_lease(self.fit_id, self.job_id, self.ttl_ms)
+        self._thread.start()
+        return self
+
+    def _renew(self) -> None:
+        while not self._stop.wait(self.ttl_ms / 4000):
+            try:
+                if not self.fits.renew_lease(self.fit_id, self.job_id, self.ttl_ms):
+                    return  # lapsed or handed over: the commit is fenced anyway
+            except Exception:  # noqa: BLE001 — a missed renewal is retried next tick
+                continue
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join(timeout=5)
+        try:
+            self.fits.release_lease(self.fit_id, self.job_id)
+        except Exception:  # noqa: BLE001 — it expires by itself
+            pass
 
 
 def _begin(fit: Fit) -> Fit:
@@ -94,11 +132,19 @@ def execute_fit(
     """Run fit ``fit_id`` to completion as attempt ``job_id`` (None: whichever job the
     record names). Invalid data fails the fit (no retry); unexpected errors propagate
     so the queue can retry the job."""
-    st = ctx.storage
-    fit = st.fits.get(fit_id)
+    fit = ctx.storage.fits.get(fit_id)
     if fit is None or not fit.live:
         return _result(fit, fit_id)
     job_id = job_id or fit.job_id
+    if fit.job_id != job_id:  # a job the fit has moved on from: nothing to do
+        return _result(fit, fit_id)
+    with _Lease(ctx, fit_id, job_id):
+        return _attempt(ctx, fit, job_id, progress_cb)
+
+
+def _attempt(ctx: Context, fit: Fit, job_id: str,
+             progress_cb: Callable[[str, float], None] | None) -> dict[str, Any]:
+    st, fit_id = ctx.storage, fit.fit_id
     ours = _ours(job_id)
     name, p = fit.metric, fit.params
 

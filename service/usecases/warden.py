@@ -5,7 +5,9 @@ deleted or an operator stops it, the fit record alone would say "running" foreve
 The warden runs in every worker process (``workers.worker``, every
 ``Settings.warden_interval`` seconds) and :func:`sweep` checks each live fit:
 
-- the queue first hands back jobs whose worker stopped heartbeating (retried while
+- a running fit whose attempt's lease lapsed (its worker died) gets a new job while
+  attempts are left (``Settings.fit_retries``), else fails;
+- the queue hands back jobs whose worker stopped heartbeating (retried while
   retries are left, else failed);
 - a fit whose job no longer exists fails ("the queue job of this fit no longer exists");
 - a fit whose job failed or was stopped fails with the job's error;
@@ -55,6 +57,8 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
     """
     if not fit.live:
         return fit
+    if fit.status is FitStatus.RUNNING and ctx.storage.fits.lease_holder(fit.fit_id) is None:
+        return _hand_over(ctx, fit)
     state, error = jobqueue.job_state(ctx, fit.job_id)
     if _move(fit, state, error) is None:
         return fit
@@ -63,6 +67,26 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
         fit.fit_id,
         lambda f: _move(f, state, error) if (f.status, f.job_id, f.attempts) == seen
         else None)
+    return changed or ctx.storage.fits.get(fit.fit_id) or fit
+
+
+def _hand_over(ctx: Context, fit: Fit) -> Fit:
+    """A running fit whose attempt's lease lapsed: its worker died. Queue a new job
+    (while attempts are left) or fail it; the old job is forgotten by the queue."""
+    seen = (fit.status, fit.job_id, fit.attempts)
+    message = "the worker running this fit stopped"
+    if fit.attempts > ctx.settings.fit_retries:
+        changed = ctx.storage.fits.change(
+            fit.fit_id, lambda f: f.fail(f"{message} ({f.attempts} attempts)")
+            if (f.status, f.job_id, f.attempts) == seen else None)
+    else:
+        job_id = jobqueue.job_id_for(ctx, fit.fit_id, fit.runs + 1)
+        changed = ctx.storage.fits.change(
+            fit.fit_id, lambda f: f.hand_over(f"{message}; it is queued again", job_id)
+            if (f.status, f.job_id, f.attempts) == seen else None,
+            enqueue=jobqueue.enqueuer(ctx, fit.fit_id, job_id))
+    if changed is not None:
+        jobqueue.forget(ctx, fit.job_id)
     return changed or ctx.storage.fits.get(fit.fit_id) or fit
 
 

@@ -16,7 +16,6 @@ from pathlib import Path
 import numpy as np
 import pytest
 from rq.job import Job
-from rq.registry import StartedJobRegistry
 
 from service.context import Context
 from service.core import MetricSelector
@@ -264,34 +263,37 @@ run_worker(Settings.from_env(), burst=True, name=sys.argv[1], simple=True)
 
 @pytest.mark.parametrize("retries", [1, 0])
 def test_worker_killed_mid_fit(ctx: Context, run_worker_burst, retries: int) -> None:
-    """A worker process dies by SIGKILL while running a fit. Until RQ sees its heartbeat
-    expire the fit stays running; then it is re-queued (and runs) or marked failed."""
-    c = _ctx_with(ctx, fit_retries=retries)
+    """A worker process dies by SIGKILL while running a fit. Its attempt's lease lapses
+    (``lease_seconds``); the warden's next sweep gives the fit a new job, which another
+    worker completes, or fails it when no attempt is left."""
+    c = _ctx_with(ctx, fit_retries=retries, lease_seconds=1)
     setup_metric(c, "m", n=2)
     fit, _ = fits.request_fit(c, "m", {}, "admin")
     s = c.settings
     env = {**os.environ, "PYTHONPATH": str(ROOT), "LIKEWISE_REDIS_URL": s.redis_url,
            "LIKEWISE_KEY_PREFIX": s.key_prefix, "LIKEWISE_QUEUE": s.queue_name,
-           "LIKEWISE_FIT_TIMEOUT": "120", "LIKEWISE_FIT_RETRIES": str(retries)}
+           "LIKEWISE_FIT_TIMEOUT": "120", "LIKEWISE_FIT_RETRIES": str(retries),
+           "LIKEWISE_LEASE_SECONDS": "1"}
     proc = subprocess.run([sys.executable, "-c", WORKER_SCRIPT, f"{s.key_prefix}-dying"],
                           env=env, cwd=ROOT, timeout=120, capture_output=True)
     assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()[-2000:]
-    assert fits.get_fit(c, fit["fit_id"])["status"] == "running"
-    # The queue notices a dead worker once its job heartbeat (at least 60 s) expires.
-    # Instead of waiting, expire the registry entry; the warden's next sweep heals it.
-    wip = StartedJobRegistry(queue=c.queue)
-    for entry in c.redis.zrange(wip.key, 0, -1):
-        c.redis.zadd(wip.key, {entry: time.time() - 1})
+    first_job = c.storage.fits.get(fit["fit_id"]).job_id
     assert fits.get_fit(c, fit["fit_id"])["status"] == "running"  # reads never write
-    warden.sweep(c)
+    # the lease lapses within its TTL (bounded wait on Redis, not a sleep)
+    deadline = time.monotonic() + 10
+    while c.storage.fits.lease_holder(fit["fit_id"]) is not None:
+        assert time.monotonic() < deadline, "the dead attempt's lease did not lapse"
+        time.sleep(0.1)
+    assert warden.sweep(c) == 1
     out = fits.get_fit(c, fit["fit_id"])
     assert "worker running this fit stopped" in out["error"], out
+    assert not Job.exists(first_job, connection=c.redis)  # the dead job is forgotten
     if retries:
         assert out["status"] == "queued"
+        assert c.storage.fits.get(fit["fit_id"]).job_id != first_job
         run_worker_burst(c)
         out = fits.get_fit(c, fit["fit_id"])
         assert (out["status"], out["attempts"], out["version"]) == ("succeeded", 2, 1), out
     else:
         assert out["status"] == "failed"
         assert fits.retry_fit(c, fit["fit_id"], "admin")["status"] == "queued"
-
