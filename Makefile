@@ -26,6 +26,7 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/fit.py
 	$(BIN)/python bench/few_batches.py
+	$(BIN)/python bench/fit_latency.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

@@ -28,3 +28,11 @@ def test_few_batches_bench_runs_with_one_seed_per_data_set() -> None:
         capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
     ).stdout
     assert "one_se − argmax over 5 problems" in out
+
+
+def test_fit_latency_bench_runs_one_trial() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "fit_latency.py"), "--trials", "1"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "request→version" in out and "target:" in out
