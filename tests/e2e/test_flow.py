@@ -344,3 +344,44 @@ def test_a_killed_fit_worker_is_started_again(settings, tmp_path):
     finally:
         assert _stop(proc) == 0
     assert _children_gone(proc.pid)
+
+
+@pytest.mark.timeout(300)
+def test_sigterm_during_a_fit_then_a_new_start_finishes_it(settings, tmp_path):
+    """``likewise run`` is stopped (SIGTERM) while a fit runs; after a new start the fit
+    ends — succeeded, or failed with a reason — and is never left running."""
+    env = launcher_env(settings)
+    proc, base = _start(env, tmp_path)
+    http = Http(base)
+    rng = np.random.default_rng(7)
+    X, y = load_open("digits")
+    features = [f"px{i}" for i in range(X.shape[1])]
+    assert http("PUT", "/v1/metrics/digits", {"features": features})[0] == 201
+    for Xb, yb in make_batches(X, y, 24, rng):
+        _post_batch(http, "digits", features, Xb, yb)
+    # a deliberately long fit: every learner over many α and folds
+    alphas = [10.0 ** e for e in np.linspace(-4, 3, 32)]
+    status, fit, _ = http("POST", "/v1/metrics/digits/fits",
+                          {"alphas": alphas, "n_folds": 20, "k_max": 20})
+    assert status == 202, fit
+    try:
+        _wait(lambda: http("GET", f"/v1/fits/{fit['fit_id']}")[1]["status"] == "running",
+              60, "the fit to start", proc)
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(timeout=60) == 0
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+    assert _children_gone(proc.pid)
+    proc2, base2 = _start(env, tmp_path)
+    try:
+        http2 = Http(base2)
+
+        def ended():
+            body = http2("GET", f"/v1/fits/{fit['fit_id']}")[1]
+            return body if body["status"] in ("succeeded", "failed") else None
+
+        out = _wait(ended, 120, "the interrupted fit to end", proc2)
+        assert out["status"] == "succeeded" or out["error"], out
+    finally:
+        assert _stop(proc2) == 0
