@@ -23,6 +23,7 @@ LIKEWISE_MAX_REQUEST_BYTES  max_request_bytes              64 MiB
 LIKEWISE_HOST               host                           ``127.0.0.1``
 LIKEWISE_PORT               port                           8000
 LIKEWISE_WORKERS            workers                        1
+LIKEWISE_WEB_WORKERS        web_workers (HTTP processes)   2
 LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
 LIKEWISE_WARDEN_SECONDS     warden_seconds (sweep period)  5
 LIKEWISE_LEASE_SECONDS      lease_seconds (attempt alive)  10
@@ -87,6 +88,7 @@ class Settings:
     host: str = "127.0.0.1"
     port: int = 8000
     workers: int = 1
+    web_workers: int = 2
     worker_seen_seconds: int = 60
     warden_seconds: int = 5
     lease_seconds: int = 10
@@ -98,7 +100,8 @@ class Settings:
         if not self.queue_name:
             object.__setattr__(self, "queue_name", f"{self.key_prefix}-fits")
         for name in ("fit_timeout", "max_batch_records", "max_batch_features", "max_groups",
-                     "max_batch_bytes", "max_request_bytes", "workers", "warden_seconds",
+                     "max_batch_bytes", "max_request_bytes", "workers", "web_workers",
+                     "warden_seconds",
                      "lease_seconds", "idempotency_hours"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")

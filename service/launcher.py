@@ -286,7 +286,7 @@ def run(settings: Settings) -> int:
             sys.executable, "-m", "gunicorn",
             "--config", "python:service.webserver",  # problem+json for server-level errors
             "--bind", bind,
-            "--workers", "2",
+            "--workers", str(settings.web_workers),
             "--access-logfile", "-",
             "--no-control-socket",  # several deployments may share a host
             "service.api:create_app()",

@@ -1,5 +1,9 @@
 """gunicorn settings of the web tier (``gunicorn -c python:service.webserver …``).
 
+Each web process serves with a few threads (gunicorn's ``gthread`` worker), so a
+request that parses a large body does not hold up ``/healthz`` or small requests
+behind it; ``LIKEWISE_WEB_WORKERS`` sets the number of processes.
+
 Some requests never reach the app: gunicorn itself refuses an over-long request
 line (414), too many or too large headers (431) and malformed HTTP (400). Its own
 answer to those is an HTML page; loading this module replaces that writer, so these
@@ -37,6 +41,9 @@ def _write_problem(sock, status_int, reason, mesg) -> None:  # noqa: ANN001 — 
 
 
 util.write_error = _write_problem  # read by gunicorn's workers when they answer an error
+
+worker_class = "gthread"
+threads = 4
 
 # the HTTP limits gunicorn applies before the app (its defaults, stated here)
 limit_request_line = 4094

@@ -385,3 +385,54 @@ def test_sigterm_during_a_fit_then_a_new_start_finishes_it(settings, tmp_path):
         assert out["status"] == "succeeded" or out["error"], out
     finally:
         assert _stop(proc2) == 0
+
+
+@pytest.mark.timeout(300)
+def test_two_worst_case_bodies_leave_healthz_answering(settings, tmp_path):
+    """Two bodies at the size limit, each as costly to parse as JSON gets (millions of
+    tiny numbers), posted at once: /healthz keeps answering within 1 s throughout
+    (load check; the bound is the issue's, not a performance claim)."""
+    import threading
+
+    limit = 16 * 1024 * 1024
+    env = {**launcher_env(settings), "LIKEWISE_MAX_REQUEST_BYTES": str(limit)}
+    proc, base = _start(env, tmp_path)
+    http = Http(base)
+    try:
+        assert http("PUT", "/v1/metrics/wide", {"features": ["a", "b", "c", "d"]})[0] == 201
+        row = b"[0,0,0,0],"
+        body = b'{"rows": [' + row * ((limit - 64) // len(row)) + b'[0,0,0,0]], ' \
+               b'"columns": ["a","b","c","d"], "groups": [0]}'
+        assert len(body) <= limit
+        answers: list[int] = []
+
+        def post() -> None:
+            import http.client
+            from urllib.parse import urlsplit
+
+            url = urlsplit(base)
+            conn = http.client.HTTPConnection(url.hostname, url.port, timeout=120)
+            try:
+                conn.request("POST", "/v1/metrics/wide/batches", body=body,
+                             headers={"Authorization": f"Bearer {TOKEN}",
+                                      "Content-Type": "application/json"})
+                answers.append(conn.getresponse().status)
+            finally:
+                conn.close()
+
+        posters = [threading.Thread(target=post) for _ in range(2)]
+        for t in posters:
+            t.start()
+        slowest = 0.0
+        anon = Http(base, None)
+        while any(t.is_alive() for t in posters):
+            started = time.monotonic()
+            assert anon("GET", "/healthz")[0] == 200
+            slowest = max(slowest, time.monotonic() - started)
+        for t in posters:
+            t.join(timeout=120)
+        # refused as too many records / labels, never a 500 or a stall
+        assert len(answers) == 2 and all(400 <= a < 500 for a in answers), answers
+        assert slowest < 1.0, slowest
+    finally:
+        assert _stop(proc) == 0
