@@ -37,8 +37,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from service.config import ADMIN_NAME
+
 SCOPES = ("view", "feed", "fit", "release", "manage")
-ADMIN_NAME = "admin"
 _HEX64 = re.compile(r"[0-9a-f]{64}")
 _NAME = re.compile(r"[A-Za-z0-9_.@-]{1,64}")
 

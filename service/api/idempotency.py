@@ -6,7 +6,7 @@ for ``Settings.idempotency_hours``. Within that time:
 
 - the same key with the same request (method, path, query and body) replays the first
   answer — same status, same body, same ``Location`` — with
-  ``Idempotent-Replayed: true``, and changes nothing;
+  ``Answer-Replayed: true``, and changes nothing;
 - the same key with a different request is a 422 problem naming the header;
 - the same key while the first request still runs is a 409 problem (retry shortly;
   a first request cut off mid-way holds its key for at most ``CLAIM_SECONDS``).
@@ -65,7 +65,7 @@ def _replay(status: int, body: Any, location: str | None) -> Response:
     resp = Response(json.dumps(body), status=status, mimetype="application/json")
     if location:
         resp.headers["Location"] = location
-    resp.headers["Idempotent-Replayed"] = "true"
+    resp.headers["Answer-Replayed"] = "true"
     return resp
 
 

@@ -45,8 +45,8 @@ def _ours(job_id: str | None) -> Callable[[Fit], bool]:
 def fail_attempt(ctx: Context, fit_id: str, job_id: str | None, message: str) -> Fit | None:
     """Fail the fit if this attempt still owns it; returns the stored fit."""
     ours = _ours(job_id)
-    ctx.storage.fits.change(fit_id, lambda f: f.fail(message) if ours(f) else None)
-    return ctx.storage.fits.get(fit_id)
+    failed = ctx.storage.fits.change(fit_id, lambda f: f.fail(message) if ours(f) else None)
+    return failed or ctx.storage.fits.get(fit_id)
 
 
 class _Lease:

@@ -38,8 +38,8 @@ def test_same_key_same_batch_replays_the_first_answer(api: SpecClient, ctx: Cont
     assert first.status_code == again.status_code == 201
     assert again.get_json() == first.get_json()
     assert again.headers["Location"] == first.headers["Location"]
-    assert again.headers["Idempotent-Replayed"] == "true"
-    assert "Idempotent-Replayed" not in first.headers
+    assert again.headers["Answer-Replayed"] == "true"
+    assert "Answer-Replayed" not in first.headers
     assert api.get("/v1/metrics/iris").get_json()["batches"] == 1
     # the answer is kept for the documented time (LIKEWISE_IDEMPOTENCY_HOURS)
     [slot] = ctx.redis.keys(f"{ctx.settings.key_prefix}:idem:*")
@@ -69,7 +69,7 @@ def test_keys_are_scoped_to_the_token_and_the_metric(api: SpecClient, app,
     dup = etl.post(URL, json=records_body(X, y), headers=_key("shared"))
     assert_problem(dup, 409)
     assert dup.get_json()["batch_id"] == stored["batch_id"]
-    assert "Idempotent-Replayed" not in dup.headers
+    assert "Answer-Replayed" not in dup.headers
     # another metric with the same key is a new request as well
     assert api.put("/v1/metrics/iris2", json={"features": IRIS_FEATURES}).status_code == 201
     other = api.post("/v1/metrics/iris2/batches", json=records_body(X, y),
@@ -83,7 +83,7 @@ def test_a_failed_request_keeps_nothing(api: SpecClient, metric: str) -> None:
     bad["groups"] = bad["groups"][:-1]  # one label short
     assert_problem(api.post(URL, json=bad, headers=_key("k2")), 422, "groups")
     fixed = api.post(URL, json=records_body(X, y), headers=_key("k2"))
-    assert fixed.status_code == 201 and "Idempotent-Replayed" not in fixed.headers
+    assert fixed.status_code == 201 and "Answer-Replayed" not in fixed.headers
 
 
 def test_a_key_still_held_by_a_running_request_is_a_conflict(api: SpecClient, ctx: Context,
@@ -115,7 +115,7 @@ def test_fits_activations_and_metrics_replay(api: SpecClient, ctx: Context,
     b = api.post("/v1/metrics/iris/fits", json={"method": "diagonal"}, headers=_key("f"))
     assert a.status_code == b.status_code == 202
     assert a.get_json()["fit_id"] == b.get_json()["fit_id"]
-    assert b.headers["Idempotent-Replayed"] == "true"
+    assert b.headers["Answer-Replayed"] == "true"
     assert ctx.queue.count == 1
     run_worker_burst(ctx, max_jobs=2)
     second = api.post("/v1/metrics/iris/fits", json={"method": "euclidean",
