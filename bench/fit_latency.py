@@ -36,6 +36,7 @@ from service import jobqueue  # noqa: E402
 from service.config import Settings  # noqa: E402
 from service.context import Context  # noqa: E402
 from service.core import MetricSelector  # noqa: E402
+from service.tables import from_json  # noqa: E402
 from service.usecases import batches, fits, metrics  # noqa: E402
 from tests.datasets import load_open, make_batches  # noqa: E402
 
@@ -82,8 +83,8 @@ def main(trials: int) -> None:
                         group_size=(15, 25))
     metrics.put_metric(ctx, "bench", FEATURES)
     for Xb, yb in data:
-        batches.add_batch(ctx, "bench", {"columns": FEATURES, "rows": Xb.tolist()},
-                          [int(v) for v in yb])
+        table = from_json({"columns": FEATURES, "rows": Xb.tolist()})
+        batches.add_batch(ctx, "bench", table.with_groups([int(v) for v in yb]))
     env = {**os.environ, "PYTHONPATH": str(ROOT), "LIKEWISE_REDIS_URL": url,
            "LIKEWISE_KEY_PREFIX": prefix}
     worker = subprocess.Popen([sys.executable, "-m", "service.cli", "worker", "--name",

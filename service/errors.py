@@ -92,6 +92,10 @@ class PayloadTooLarge(ServiceError):
     status, title, slug = 413, "Payload too large", "payload-too-large"
 
 
+class UnsupportedMediaType(ServiceError):
+    status, title, slug = 415, "Unsupported media type", "unsupported-media-type"
+
+
 class InvalidInput(ServiceError):
     status, title, slug = 422, "Invalid input", "invalid-input"
 

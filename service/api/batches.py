@@ -7,8 +7,9 @@ from flask import Blueprint, Response
 from service.usecases import batches as uc
 
 from .deps import context, no_content, reply
+from .formats import read_table
 from .idempotency import idempotent
-from .schemas import BatchQuerySchema, BatchSchema, json_body, query_args, table_of
+from .schemas import BatchQuerySchema, BatchSchema
 
 bp = Blueprint("batches", __name__)
 
@@ -16,10 +17,9 @@ bp = Blueprint("batches", __name__)
 @bp.post("/metrics/<name>/batches")
 @idempotent
 def add_batch(name: str) -> Response:
-    query = query_args(BatchQuerySchema())
-    data = json_body(BatchSchema())
-    batch = uc.add_batch(context(), name, table_of(data), data["groups"],
-                         allow_duplicate=query["allow_duplicate"])
+    table, options = read_table(BatchSchema(), BatchQuerySchema())
+    batch = uc.add_batch(context(), name, table, allow_duplicate=options["allow_duplicate"],
+                         ignore_extra=options["ignore_extra_columns"])
     return reply(batch, 201, location=f"/v1/metrics/{name}/batches/{batch['batch_id']}")
 
 

@@ -7,13 +7,17 @@ from flask import Blueprint, Response
 from service.usecases import groupings as uc
 
 from .deps import context, reply
-from .schemas import GroupingSchema, json_body, table_of
+from .formats import read_table
+from .schemas import GroupingQuerySchema, GroupingSchema
 
 bp = Blueprint("groupings", __name__)
 
 
 @bp.post("/metrics/<name>/groupings")
 def group(name: str) -> Response:
-    data = json_body(GroupingSchema())
-    result = uc.group(context(), name, table_of(data), data["k"], data.get("version"))
+    table, options = read_table(GroupingSchema(), GroupingQuerySchema(),
+                                tabular_only=("k", "version"))
+    result = uc.group(context(), name, table, options.get("k"), options.get("version"),
+                      ignore_extra=options["ignore_extra_columns"],
+                      id_column=options.get("id_column"))
     return reply(result)

@@ -18,7 +18,10 @@ bp = Blueprint("metrics", __name__)
 @idempotent
 def put_metric(name: str) -> Response:
     data = json_body(MetricSchema())
-    metric, created = uc.put_metric(context(), name, data["features"], data["description"])
+    metric, created = uc.put_metric(
+        context(), name, data["features"], data["description"],
+        categories=data["categories"], missing_values=data["missing_values"],
+        ignore_extra_columns=data["ignore_extra_columns"])
     if created:
         return reply(metric, 201, location=f"/v1/metrics/{name}")
     return reply(metric)

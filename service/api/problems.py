@@ -123,7 +123,7 @@ _HTTP_SLUGS = {
     404: "not-found",
     405: "method-not-allowed",
     413: "payload-too-large",
-    415: "malformed-request",
+    415: "unsupported-media-type",
 }
 
 

@@ -18,7 +18,7 @@ from marshmallow import Schema, ValidationError, fields, validate, validates_sch
 from service.config import MAX_FEATURES
 from service.errors import MalformedRequest
 from service.usecases import fits
-from service.usecases.metrics import MAX_DESCRIPTION
+from service.usecases.metrics import MAX_DESCRIPTION, MISSING_POLICIES
 from service.usecases.versions import MAX_REASON
 
 from .bodies import parse_json
@@ -102,6 +102,14 @@ class MetricSchema(_Strict):
         validate=validate.Length(min=1),
     )
     description = fields.String(load_default="", validate=validate.Length(max=MAX_DESCRIPTION))
+    categories = fields.Dict(
+        keys=fields.String(validate=validate.Length(min=1, max=128)),
+        values=BoundedList(fields.String(validate=validate.Length(min=1, max=128)),
+                           MAX_FEATURES, validate=validate.Length(min=1)),
+        load_default=dict)
+    missing_values = fields.String(load_default="refuse",
+                                   validate=validate.OneOf(MISSING_POLICIES))
+    ignore_extra_columns = fields.Boolean(load_default=False)
 
 
 class _TableSchema(_Strict):
@@ -124,13 +132,6 @@ class _TableSchema(_Strict):
         if has_columns != has_rows:
             missing = "rows" if has_columns else "columns"
             raise ValidationError("columns and rows go together.", missing)
-
-
-def table_of(data: dict[str, Any]) -> dict[str, Any]:
-    """The table part of a loaded batch or grouping body, as the use cases take it."""
-    if "records" in data:
-        return {"records": data["records"]}
-    return {"columns": data["columns"], "rows": data["rows"]}
 
 
 class BatchSchema(_TableSchema):
@@ -163,8 +164,29 @@ class ActivationSchema(_Strict):
     reason = fields.String(load_default="", validate=validate.Length(max=MAX_REASON))
 
 
+class QueryKField(KField):
+    """``k`` in a query string: digits, or ``auto``."""
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str) and value.isdigit() and len(value) <= 6:
+            value = int(value)
+        return super()._deserialize(value, attr, data, **kwargs)
+
+
+_COLUMN = validate.Length(min=1, max=128)
+
+
 class BatchQuerySchema(_Strict):
     allow_duplicate = fields.Boolean(load_default=False)
+    ignore_extra_columns = fields.Boolean(load_default=None)
+    group_column = fields.String(validate=_COLUMN)
+
+
+class GroupingQuerySchema(_Strict):
+    ignore_extra_columns = fields.Boolean(load_default=None)
+    id_column = fields.String(validate=_COLUMN)
+    k = QueryKField()
+    version = fields.Integer(validate=validate.Range(min=1, max=2**31))
 
 
 class FitQuerySchema(_Strict):

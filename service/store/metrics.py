@@ -17,11 +17,18 @@ if TYPE_CHECKING:
     from redis.client import Pipeline
 
 
+# how a metric reads its tables; ``categories`` is locked with the features (it
+# decides the encoding of stored batches), the rest may change at any time
+DEFAULT_INPUTS: dict[str, Any] = {
+    "categories": {}, "missing_values": "refuse", "ignore_extra_columns": False}
+
+
 def _decode(name: str, raw: dict[bytes, bytes]) -> dict[str, Any]:
     d = {text(k): text(v) for k, v in raw.items()}
     return {
         "name": name,
         "features": json.loads(d["features"]),
+        "inputs": {**DEFAULT_INPUTS, **json.loads(d.get("inputs") or "{}")},
         "description": d.get("description") or "",
         "created_at": d["created_at"],
         "updated_at": d["updated_at"],
@@ -70,12 +77,14 @@ class MetricStore:
             for batches, records, versions, active in zip(*[iter(values)] * 4, strict=True)
         ]
 
-    def put(self, name: str, features: list[str], description: str, uid: str
-            ) -> tuple[dict[str, Any], str]:
+    def put(self, name: str, features: list[str], description: str, uid: str,
+            inputs: dict[str, Any] | None = None) -> tuple[dict[str, Any], str]:
         """Create or update; returns (record, "created"|"updated"|"unchanged").
 
-        Raises FeaturesLocked if the features change while the metric has batches.
+        Raises FeaturesLocked if the features or the categories change while the
+        metric has batches.
         """
+        inputs = {**DEFAULT_INPUTS, **(inputs or {})}
         mkey, bkey = self.keys.metric(name), self.keys.batch_index(name)
 
         def body(pipe: Pipeline) -> tuple[dict[str, Any], str]:
@@ -83,7 +92,8 @@ class MetricStore:
             now = utcnow()
             if not raw:
                 fields = {"features": json.dumps(features), "description": description,
-                          "created_at": now, "updated_at": now, "uid": uid}
+                          "created_at": now, "updated_at": now, "uid": uid,
+                          "inputs": json.dumps(inputs)}
                 pipe.multi()
                 # a fit racing an earlier deletion may have left a counter behind
                 pipe.delete(*(self.keys.metric(name, s) for s in METRIC_SCALARS))
@@ -92,17 +102,22 @@ class MetricStore:
                 return _decode(name, {k.encode(): v.encode() for k, v in fields.items()}), \
                     "created"
             current = _decode(name, raw)
-            if current["features"] == features and current["description"] == description:
+            if (current["features"], current["description"], current["inputs"]) == (
+                    features, description, inputs):
                 pipe.multi()
                 return current, "unchanged"
-            if current["features"] != features and pipe.zcard(bkey) > 0:
+            encoding_changes = (current["features"] != features
+                                or current["inputs"]["categories"] != inputs["categories"])
+            if encoding_changes and pipe.zcard(bkey) > 0:
                 raise FeaturesLocked(
-                    f"metric {name!r} has batches; its features cannot change "
-                    "(delete its batches or create a new metric)")
+                    f"metric {name!r} has batches; its features and categories cannot "
+                    "change (delete its batches or create a new metric)")
             pipe.multi()
             pipe.hset(mkey, mapping={"features": json.dumps(features),
-                                     "description": description, "updated_at": now})
-            current.update(features=features, description=description, updated_at=now)
+                                     "description": description, "updated_at": now,
+                                     "inputs": json.dumps(inputs)})
+            current.update(features=features, description=description, updated_at=now,
+                           inputs=inputs)
             return current, "updated"
 
         return transact(self.redis, [mkey, bkey], body)

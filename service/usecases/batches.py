@@ -14,7 +14,7 @@ from service.clock import utcnow
 from service.core import BatchStats, CoreError
 from service.errors import InvalidInput, NotFound, from_core
 from service.store.codecs import pack_json, pack_matrix
-from service.tables import check_groups, to_matrix
+from service.tables import Table, check_groups
 
 from .metrics import require_metric
 
@@ -40,18 +40,25 @@ def _check_batch_id(batch_id: Any) -> str:
     return batch_id
 
 
-def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any], *,
-              allow_duplicate: bool = False) -> dict[str, Any]:
+def add_batch(ctx: Context, name: str, table: Table, *, allow_duplicate: bool = False,
+              ignore_extra: bool | None = None) -> dict[str, Any]:
     """Validate, reduce to statistics and store one labelled batch (one transaction).
 
-    A batch whose content hash is already stored on the metric is refused
-    (DuplicateBatch, naming the stored batch) unless ``allow_duplicate``.
+    The table carries its group labels. A batch whose content hash is already stored
+    on the metric is refused (DuplicateBatch, naming the stored batch) unless
+    ``allow_duplicate``. ``ignore_extra`` (None: the metric's setting) drops columns
+    that are not features.
     """
     metric = require_metric(ctx, name)
-    s = ctx.settings
-    X = to_matrix(metric["features"], table, s.max_batch_records, s.max_batch_bytes)
-    labels = check_groups(groups, X.shape[0])
-    field = "records" if "records" in table else "rows"
+    inputs = metric["inputs"]
+    if ignore_extra is None:
+        ignore_extra = inputs["ignore_extra_columns"]
+    m = table.matrix(metric["features"], ignore_extra=ignore_extra,
+                     fill="own" if inputs["missing_values"] == "impute_mean" else None,
+                     categories=inputs["categories"])
+    X = m.X
+    labels = check_groups(table.groups, X.shape[0], table.group_field)
+    field = table.field
     try:
         with np.errstate(over="ignore", invalid="ignore"):
             stats = BatchStats.from_batch(X, labels)
@@ -71,6 +78,7 @@ def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any],
         "created_at": utcnow(),
         "sha256": content_hash(X, labels),
         "group_sizes": {str(k): int(v) for k, v in sizes.items()},
+        "imputed": m.imputed,
     }
     ctx.storage.batches.add(name, metric["uid"], meta, stats.to_bytes(), pack_matrix(X),
                             pack_json(labels), allow_duplicate=allow_duplicate)
@@ -78,7 +86,9 @@ def add_batch(ctx: Context, name: str, table: dict[str, Any], groups: list[Any],
 
 
 def _summary(meta: dict[str, Any]) -> dict[str, Any]:
-    return {k: meta[k] for k in ("batch_id", "records", "groups", "created_at", "sha256")}
+    out = {k: meta[k] for k in ("batch_id", "records", "groups", "created_at", "sha256")}
+    out["imputed"] = int(meta.get("imputed", 0))
+    return out
 
 
 def list_batches(ctx: Context, name: str) -> dict[str, Any]:

@@ -20,6 +20,7 @@ from service.core import CoreError, MetricSelector
 from service.errors import Conflict
 from service.lifecycle import Fit, FitStatus
 from service.store import ActiveChanged, MissingMetric, StaleAttempt
+from service.tables import encoded_names
 
 from .batches import load_training_data
 
@@ -187,7 +188,16 @@ def _attempt(ctx: Context, fit: Fit, job_id: str,
             "beats_baseline": bool(report.get("beats_baseline")),
         },
         "report": report,
-        "metric": {**fitted.to_dict(), "features": metric["features"]},
+        "metric": {
+            **fitted.to_dict(),
+            # the matrix's columns (a categorical feature gives one per level)
+            "features": encoded_names(metric["features"], metric["inputs"]["categories"]),
+            "inputs": {"features": metric["features"],
+                       "categories": metric["inputs"]["categories"],
+                       "missing_values": metric["inputs"]["missing_values"],
+                       "imputed_in_training": sum(int(d["meta"].get("imputed", 0))
+                                                  for d in data)},
+        },
         "batches": [{"batch_id": d["meta"]["batch_id"], "sha256": d["meta"]["sha256"]}
                     for d in data],
     }

@@ -13,7 +13,7 @@ import numpy as np
 
 from service.core import CoreError, FittedMetric, RecordOverflowError, group_records
 from service.errors import Conflict, InvalidInput, NotFound, from_core
-from service.tables import to_matrix
+from service.tables import Table
 
 from .metrics import require_metric
 from .versions import check_version_number
@@ -33,20 +33,22 @@ def _check_k(k: Any, limit: int) -> int | None:
     return k
 
 
-def load_version_metric(
-    ctx: Context, metric: dict[str, Any], n: int
-) -> tuple[FittedMetric, list[str]]:
-    """Version ``n``'s fitted map and the features it was fitted on, in its column order
-    (the metric's features may have been reordered or renamed since, once its batches
-    were deleted)."""
+def load_version_metric(ctx: Context, metric: dict[str, Any], n: int) -> tuple[
+        FittedMetric, list[str], dict[str, Any]]:
+    """Version ``n``'s fitted map, the features it was fitted on (in its column order:
+    the metric's may have been reordered or renamed since, once its batches were
+    deleted) and how it read its tables (categories, missing values)."""
     key = (metric["name"], metric["uid"], n)
     loaded = ctx.cache.get(key)
     if loaded is None:
         doc = ctx.storage.versions.get(metric["name"], n, ("metric",))
         if doc is None:
             raise NotFound(f"metric {metric['name']!r} has no version {n}")
-        features = list(doc["metric"].get("features") or metric["features"])
-        loaded = (FittedMetric.from_dict(doc["metric"]), features)
+        stored = doc["metric"]
+        inputs = stored.get("inputs") or {
+            "features": list(stored.get("features") or metric["features"]),
+            "categories": {}, "missing_values": "refuse"}
+        loaded = (FittedMetric.from_dict(stored), inputs["features"], inputs)
         ctx.cache.put(key, loaded)
     return loaded
 
@@ -54,10 +56,15 @@ def load_version_metric(
 def group(
     ctx: Context,
     name: str,
-    table: dict[str, Any],
+    table: Table,
     k: int | str | None = None,
     version: int | None = None,
+    *,
+    ignore_extra: bool | None = None,
+    id_column: str | None = None,
 ) -> dict[str, Any]:
+    """Group the table's records; ``id_column`` is echoed back as ``ids`` (and may be
+    a column the metric does not use)."""
     metric = require_metric(ctx, name)
     k_value = _check_k(k, ctx.settings.max_groups)
     if version is None:
@@ -66,19 +73,24 @@ def group(
             raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
     else:
         check_version_number(version)
-    fitted, features = load_version_metric(ctx, metric, version)
-    s = ctx.settings
-    X = to_matrix(features, table, s.max_batch_records, s.max_batch_bytes)
+    fitted, features, inputs = load_version_metric(ctx, metric, version)
+    if ignore_extra is None:
+        ignore_extra = metric["inputs"]["ignore_extra_columns"]
+    ids = table.column_values(id_column) if id_column is not None else None
+    m = table.matrix(features, ignore_extra=ignore_extra,
+                     allowed=(id_column,) if id_column else (),
+                     fill=fitted.mean if inputs.get("missing_values") == "impute_mean" else None,
+                     categories=inputs.get("categories"))
     try:
-        g = group_records(fitted, X, k=k_value)
+        g = group_records(fitted, m.X, k=k_value)
     except RecordOverflowError as exc:
         # finite numbers (each passed the table checks) can still overflow once rescaled
-        field = f"{'records' if 'records' in table else 'rows'}[{exc.row}]"
+        field = table.row_field(exc.row)
         message = "values too large: their distances under this metric overflow float64"
         raise InvalidInput.field(field, message, f"{field}: {message}") from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
-    return {
+    answer = {
         "version": version,
         "k": int(g.k),
         "k_chosen": bool(g.k_chosen),
@@ -87,4 +99,10 @@ def group(
         # one group has no runner-up centre: its margin is undefined (null), not Infinity
         "margins": [float(v) if np.isfinite(v) else None for v in g.margins],
         "sizes": [int(v) for v in g.sizes],
+        "imputed": m.imputed,
     }
+    if m.imputed:
+        answer["imputed_by_feature"] = m.imputed_by_feature
+    if ids is not None:
+        answer["ids"] = ids
+    return answer

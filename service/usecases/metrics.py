@@ -1,4 +1,15 @@
-"""Metrics: a name and an ordered list of features."""
+"""Metrics: a name, an ordered list of features, and how their tables are read.
+
+``inputs`` says how a posted table becomes the metric's matrix:
+
+- ``categories``: ``{feature: [level, ...]}`` — a categorical feature, one-hot encoded
+  inside (one column per level, reported by level in a version's explanation);
+- ``missing_values``: ``refuse`` (the default) or ``impute_mean`` (a batch's gaps
+  are filled with its own feature means, a grouping's with the version's training
+  means; both are counted);
+- ``ignore_extra_columns``: drop columns that are not features instead of refusing
+  them (a request may say so itself).
+"""
 
 from __future__ import annotations
 
@@ -8,6 +19,7 @@ from typing import TYPE_CHECKING, Any
 
 from service.errors import Conflict, InvalidInput, NotFound
 from service.store import FeaturesLocked
+from service.tables import LEVEL_SEPARATOR, encoded_names
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -15,6 +27,7 @@ if TYPE_CHECKING:
 NAME_RE = re.compile(r"[a-z0-9_-]{1,64}")
 FEATURE_RE = re.compile(r"[^\x00-\x1f]{1,128}")
 MAX_DESCRIPTION = 2000
+MISSING_POLICIES = ("refuse", "impute_mean")
 
 
 def check_name(name: Any) -> str:
@@ -50,12 +63,46 @@ def _check_features(ctx: Context, features: Any) -> list[str]:
     return list(features)
 
 
+def _check_inputs(ctx: Context, features: list[str], categories: Any, missing: Any,
+                  ignore_extra: Any) -> dict[str, Any]:
+    categories = categories or {}
+    if not isinstance(categories, dict):
+        raise InvalidInput.field("categories", "an object of feature: [level, ...]")
+    for name, levels in categories.items():
+        where = f"categories.{name}"
+        if name not in features:
+            raise InvalidInput.field(where, "not one of the metric's features")
+        if (not isinstance(levels, list) or not levels
+                or not all(isinstance(v, str) and v for v in levels)):
+            raise InvalidInput.field(where, "a non-empty list of level names")
+        if len(set(levels)) != len(levels):
+            raise InvalidInput.field(where, "level names must be unique")
+    encoded = encoded_names(features, categories)
+    if len(set(encoded)) != len(encoded):
+        raise InvalidInput.field(
+            "categories", f"a level column ('feature{LEVEL_SEPARATOR}level') has the name "
+                          "of another feature")
+    width = len(encoded)
+    if width > ctx.settings.max_batch_features:
+        raise InvalidInput.field(
+            "categories", f"the features with their levels make {width} columns "
+                          f"(at most {ctx.settings.max_batch_features})")
+    missing = missing or "refuse"
+    if missing not in MISSING_POLICIES:
+        raise InvalidInput.field("missing_values", "one of " + ", ".join(MISSING_POLICIES))
+    if not isinstance(ignore_extra or False, bool):
+        raise InvalidInput.field("ignore_extra_columns", "true or false")
+    return {"categories": {f: list(categories[f]) for f in features if f in categories},
+            "missing_values": missing, "ignore_extra_columns": bool(ignore_extra)}
+
+
 def _public(ctx: Context, metric: dict[str, Any], counts: dict[str, Any] | None = None
             ) -> dict[str, Any]:
     counts = counts or ctx.storage.metrics.counts(metric["name"])
     return {
         "name": metric["name"],
         "features": metric["features"],
+        **metric["inputs"],
         "description": metric["description"],
         "created_at": metric["created_at"],
         "updated_at": metric["updated_at"],
@@ -67,21 +114,24 @@ def _public(ctx: Context, metric: dict[str, Any], counts: dict[str, Any] | None 
 
 
 def put_metric(
-    ctx: Context, name: str, features: list[str], description: str = ""
+    ctx: Context, name: str, features: list[str], description: str = "", *,
+    categories: dict[str, list[str]] | None = None, missing_values: str = "refuse",
+    ignore_extra_columns: bool = False,
 ) -> tuple[dict[str, Any], bool]:
-    """Create a metric or update its description/features; True when created.
+    """Create a metric or update it; True when created.
 
-    409 if the features change while the metric has batches.
+    409 if the features or categories change while the metric has batches.
     """
     check_name(name)
     features = _check_features(ctx, features)
+    inputs = _check_inputs(ctx, features, categories, missing_values, ignore_extra_columns)
     if description is None:
         description = ""
     if not isinstance(description, str) or len(description) > MAX_DESCRIPTION:
         raise InvalidInput.field("description", f"a string of at most {MAX_DESCRIPTION} characters")
     try:
         record, outcome = ctx.storage.metrics.put(name, features, description,
-                                                  secrets.token_hex(8))
+                                                  secrets.token_hex(8), inputs)
     except FeaturesLocked as exc:
         raise Conflict(str(exc), [{"field": "features",
                                    "message": "cannot change while batches exist"}]) from exc

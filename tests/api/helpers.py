@@ -18,6 +18,7 @@ SLUGS = {
     400: {"malformed-request"}, 401: {"unauthorized"}, 403: {"forbidden"},
     404: {"not-found"},
     405: {"method-not-allowed"}, 409: {"conflict"}, 413: {"payload-too-large"},
+    415: {"unsupported-media-type"},
     422: {"invalid-input"}, 500: {"internal-error"}, 503: {"unavailable", "not-ready"},
 }
 

@@ -88,7 +88,6 @@ def _no_batches(api: SpecClient) -> None:
 @pytest.mark.parametrize(
     "kwargs",
     [
-        {"data": "{}"},
         {"data": "{records", "content_type": "application/json"},
         {"json": [1, 2]},
         # nesting deeper than the JSON parser recurses (was a 500)
@@ -99,6 +98,15 @@ def _no_batches(api: SpecClient) -> None:
 def test_post_malformed_is_400(api: SpecClient, metric: str, unchanged, kwargs: dict) -> None:
     with unchanged():
         assert_problem(api.post(URL, **kwargs), 400)
+    _no_batches(api)
+
+
+@pytest.mark.parametrize("content_type", [None, "text/plain", "application/xml"])
+def test_post_unsupported_media_is_415(api: SpecClient, metric: str, unchanged,
+                                       content_type: str | None) -> None:
+    with unchanged():
+        kwargs = {"content_type": content_type} if content_type else {}
+        assert_problem(api.post(URL, data="{}", **kwargs), 415)
     _no_batches(api)
 
 

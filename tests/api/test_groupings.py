@@ -115,7 +115,6 @@ def _invalid(X: np.ndarray) -> list[tuple[dict, str]]:
 
 
 MALFORMED = [
-    {"data": '{"records": []}'},
     {"data": '{"records": [', "content_type": "application/json"},
     {"json": "records"},
 ]
@@ -132,6 +131,9 @@ def test_every_error_of_a_fitted_metric(
         assert_problem(api.post(URL, json={"records": records, "version": 4}), 404)
         for kwargs in MALFORMED:
             assert_problem(api.post(URL, **kwargs), 400)
+        # a body in no format this endpoint reads
+        assert_problem(api.post(URL, data='{"records": []}'), 415)
+        assert_problem(api.post(URL, data="a,b\n1,2\n", content_type="text/plain"), 415)
         for body, field in _invalid(X):
             assert_problem(api.post(URL, json=body), 422, field)
     small = Context.build(ctx.settings.replace(max_batch_records=len(X) - 1),

@@ -148,7 +148,7 @@ def test_failed_fit_is_retried_on_request(ctx: Context, run_worker_burst) -> Non
     with pytest.raises(fits.Conflict):
         fits.retry_fit(ctx, fit["fit_id"], "admin")  # still one batch
     X, y = data[1]
-    batches.add_batch(ctx, "m", as_table(feats, X), y.tolist())
+    batches.add_batch(ctx, "m", as_table(feats, X, y.tolist()))
     again = fits.retry_fit(ctx, fit["fit_id"], "admin")
     assert again["fit_id"] == fit["fit_id"] and again["status"] == "queued"
     assert again["error"] is None

@@ -15,7 +15,7 @@ from service.core import FittedMetric
 from service.errors import Conflict, InvalidInput, NotFound
 from service.usecases import batches, fits, groupings, metrics, versions
 
-from ._data import as_table, open_batches, setup_metric
+from ._data import as_table, open_batches, setup_metric, table_of
 
 
 def _fit(ctx: Context, run_worker_burst, params: dict) -> int:
@@ -81,10 +81,11 @@ def test_grouping_errors(ctx: Context, run_worker_burst) -> None:
             groupings.group(ctx, "m", table, k=bad)
         assert err.value.errors[0]["field"] == "k"
     with pytest.raises(InvalidInput) as err:
-        groupings.group(ctx, "m", {"columns": feats, "rows": [[1.0] * len(feats)]}, k=2)
+        groupings.group(ctx, "m", table_of({"columns": feats, "rows": [[1.0] * len(feats)]}),
+                        k=2)
     assert err.value.errors[0]["field"] == "k"
     with pytest.raises(InvalidInput) as err:
-        groupings.group(ctx, "m", {"columns": feats[:-1], "rows": [[1.0]]}, k=1)
+        groupings.group(ctx, "m", table_of({"columns": feats[:-1], "rows": [[1.0] * 3]}), k=1)
     assert err.value.errors[0]["field"] == "columns"
     with pytest.raises(NotFound):
         groupings.group(ctx, "m", table, k=2, version=9)

@@ -17,7 +17,7 @@ from service.store import ActiveChanged, DuplicateBatch, MissingMetric, StaleAtt
 from service.usecases import batches, metrics, versions
 from service.usecases.batches import load_training_data
 
-from ._data import as_table, open_batches, setup_metric
+from ._data import as_table, open_batches, setup_metric, table_of
 
 
 def _doc(n: int) -> dict:
@@ -164,15 +164,17 @@ def test_both_table_forms_give_the_same_batch(ctx: Context) -> None:
     feats, data = open_batches("iris", 1)
     X, y = data[0]
     metrics.put_metric(ctx, "m", feats)
-    reversed_cols = {"columns": feats[::-1], "rows": X[:, ::-1].tolist()}
-    records = {"records": [dict(zip(feats, row, strict=True)) for row in X.tolist()]}
-    a = batches.add_batch(ctx, "m", as_table(feats, X), y.tolist())
+    labels = y.tolist()
+    reversed_cols = table_of({"columns": feats[::-1], "rows": X[:, ::-1].tolist()}, labels)
+    records = table_of({"records": [dict(zip(feats, row, strict=True))
+                                    for row in X.tolist()]}, labels)
+    a = batches.add_batch(ctx, "m", as_table(feats, X, labels))
     # the same content again is refused, naming the stored batch, unless allowed
     with pytest.raises(DuplicateBatch) as dup:
-        batches.add_batch(ctx, "m", reversed_cols, y.tolist())
+        batches.add_batch(ctx, "m", reversed_cols)
     assert dup.value.batch_id == a["batch_id"]
-    b = batches.add_batch(ctx, "m", reversed_cols, y.tolist(), allow_duplicate=True)
-    c = batches.add_batch(ctx, "m", records, y.tolist(), allow_duplicate=True)
+    b = batches.add_batch(ctx, "m", reversed_cols, allow_duplicate=True)
+    c = batches.add_batch(ctx, "m", records, allow_duplicate=True)
     assert a["sha256"] == b["sha256"] == c["sha256"]
     assert len({a["batch_id"], b["batch_id"], c["batch_id"]}) == 3
     got = batches.get_batch(ctx, "m", a["batch_id"])

@@ -6,9 +6,17 @@ import pytest
 
 from service.context import Context
 from service.errors import Conflict, InvalidInput, NotFound, PayloadTooLarge, ServiceError
+from service.tables import from_json
 from service.usecases import batches, fits, groupings, metrics, versions
 
-from ._data import as_table, setup_metric
+from ._data import as_table, setup_metric, table_of
+
+
+def _post_batch(ctx: Context, name: str, body, groups):
+    """A batch as the API takes it: the body parsed at the edge, then the use case."""
+    s = ctx.settings
+    table = from_json(body, s.max_batch_records, s.max_batch_bytes)
+    return batches.add_batch(ctx, name, table.with_groups(groups))
 
 
 def _raises(exc_type: type[ServiceError], status: int, field: str | None, fn, *args, **kw):
@@ -66,11 +74,11 @@ def test_missing_metric_is_404_everywhere(ctx: Context) -> None:
     table = {"columns": ["a"], "rows": [[1.0], [2.0]]}
     for fn, args in [
         (metrics.get_metric, ()), (metrics.delete_metric, ()),
-        (batches.add_batch, (table, [0, 1])), (batches.list_batches, ()),
+        (_post_batch, (table, [0, 1])), (batches.list_batches, ()),
         (batches.get_batch, ("0" * 16,)), (batches.delete_batch, ("0" * 16,)),
         (fits.request_fit, ({}, "admin")), (versions.list_versions, ()),
         (versions.get_version, (1,)), (versions.activate, (1, "r", "admin")),
-        (versions.history, ()), (groupings.group, (table,)),
+        (versions.history, ()), (groupings.group, (table_of(table),)),
     ]:
         _raises(NotFound, 404, None, fn, ctx, "nope", *args)
     _raises(NotFound, 404, None, fits.list_fits, ctx, "nope")
@@ -111,7 +119,7 @@ BAD_TABLES = [
 @pytest.mark.parametrize("table,field", BAD_TABLES)
 def test_bad_tables_are_422_with_the_field(ctx: Context, table, field) -> None:
     metrics.put_metric(ctx, "m", ["a", "b"])
-    _raises(InvalidInput, 422, field, batches.add_batch, ctx, "m", table, [0, 1])
+    _raises(InvalidInput, 422, field, _post_batch, ctx, "m", table, [0, 1])
     _nothing_stored(ctx)
 
 
@@ -120,7 +128,7 @@ def test_bad_tables_are_422_with_the_field(ctx: Context, table, field) -> None:
 def test_bad_groups_are_422(ctx: Context, groups) -> None:
     metrics.put_metric(ctx, "m", ["a", "b"])
     table = {"columns": ["a", "b"], "rows": [[1, 2], [3, 4], [5, 7]]}
-    _raises(InvalidInput, 422, "groups", batches.add_batch, ctx, "m", table, groups)
+    _raises(InvalidInput, 422, "groups", _post_batch, ctx, "m", table, groups)
     _nothing_stored(ctx)
 
 
@@ -129,14 +137,14 @@ def test_batch_size_caps_are_413(ctx: Context) -> None:
     c2 = Context(small, ctx.redis, ctx.storage, ctx.queue, ctx.cache)
     metrics.put_metric(c2, "m", ["a", "b"])
     rows = [[float(i), float(i % 2)] for i in range(4)]
-    _raises(PayloadTooLarge, 413, "rows", batches.add_batch, c2, "m",
+    _raises(PayloadTooLarge, 413, "rows", _post_batch, c2, "m",
             {"columns": ["a", "b"], "rows": rows}, [0, 1, 0, 1])
     records = [{"a": r[0], "b": r[1]} for r in rows]
-    _raises(PayloadTooLarge, 413, "records", batches.add_batch, c2, "m",
+    _raises(PayloadTooLarge, 413, "records", _post_batch, c2, "m",
             {"records": records}, [0, 1, 0, 1])
     c3 = Context(ctx.settings.replace(max_batch_bytes=8 * 2 * 2), ctx.redis, ctx.storage,
                  ctx.queue, ctx.cache)
-    _raises(PayloadTooLarge, 413, "rows", batches.add_batch, c3, "m",
+    _raises(PayloadTooLarge, 413, "rows", _post_batch, c3, "m",
             {"columns": ["a", "b"], "rows": rows[:3]}, [0, 1, 0])
     _nothing_stored(c2)
 
