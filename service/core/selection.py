@@ -19,7 +19,11 @@ calibrated on each batch as the winning candidate saw it held out
 
 Cost cap: at most ``max_heldout_records`` records of a held-out batch are grouped
 (a deterministic subsample drawn from ``random_state``). Statistics are never
-subsampled.
+subsampled. Held-out budget: with more than ``min_heldout_batches`` batches, each fold
+scores a stratified sample of its held-out batches, grown until the sampling standard
+error of the mean held-out ARI is within ``heldout_tolerance`` (or
+``max_heldout_batches`` are scored); ``heldout_tolerance=None`` scores every batch
+(:mod:`service.core._budget`, docs/method.md "Held-out budget").
 
 Selection rule (``rule="one_se"``, the default for ``method="auto"``). With three
 to five small batches the held-out ARI of the candidates differs by noise, and the
