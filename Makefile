@@ -28,6 +28,8 @@ bench: $(STAMP)
 	$(BIN)/python bench/few_batches.py
 	$(BIN)/python bench/fit_latency.py
 	$(BIN)/python bench/ingest.py
+	$(BIN)/python bench/fit_budget.py
+	$(BIN)/python bench/store_codecs.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

@@ -46,3 +46,22 @@ def test_ingest_bench_runs_small() -> None:
     for fmt in ("json", "csv", "arrow", "parquet"):
         assert out.count(f" {fmt} ") == 2  # a line in each table
     assert "target: Arrow" in out and "Peak memory" in out
+
+
+def test_fit_budget_bench_runs_small_sizes() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "fit_budget.py"), "--sizes", "60", "120",
+         "--max-unbudgeted", "60", "--repeats", "1"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "target:" in out and ("same" in out or "DIFFERENT" in out)
+    assert "skipped (> 60 batches)" in out
+
+
+def test_store_codecs_bench_runs_small() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "store_codecs.py"), "--rows", "2000",
+         "--repeats", "1"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "zstd 3" in out and "pack_matrix as stored now" in out

@@ -10,6 +10,7 @@ from typing import Any
 
 import numpy as np
 
+from ._budget import GROWTH, MAX_ROUNDS, Budget, allocate, needed, sampling_se, stratified_draw
 from ._stacked import chunk_size, kmeans_stacked
 from .clustering import cluster, overflowing_row
 from .errors import CoreError, RecordOverflowError
@@ -53,7 +54,8 @@ def make_folds(
         perm = rng.permutation(n_batches)
         for i, part in enumerate(np.array_split(perm, n_folds)):
             held = tuple(sorted(int(b) for b in part))
-            folds.append(Fold(i, r, held, tuple(b for b in every if b not in held)))
+            out = set(held)  # a set: O(n) per fold, not O(n²) at 10,000 batches
+            folds.append(Fold(i, r, held, tuple(b for b in every if b not in out)))
     return folds
 
 
@@ -114,6 +116,11 @@ class CrossValidation:
         # per candidate, per (fold, batch): the held-out grouping's scores
         self._scores: dict[Candidate, dict[tuple[int, int], Scores]] = {}
         self._raw: dict[int, Scores] = {}
+        # the held-out batches that are scored (all of them unless ``score`` budgets)
+        self.sample: list[int] = list(range(len(self.batches)))
+        # per candidate, its per-batch scores over the sample: built once, dropped
+        # only when the candidate gets new scores
+        self._per_batch: dict[Candidate, dict[str, np.ndarray]] = {}
 
     # ------------------------------------------------------------ data access
     def held_out_data(self, b: int) -> tuple[np.ndarray, np.ndarray]:
@@ -180,26 +187,90 @@ class CrossValidation:
             del self._prepared[i]
 
     # ---------------------------------------------------------------- scoring
+    def in_sample(self, i: int) -> list[int]:
+        """Fold ``i``'s held-out batches that are scored."""
+        chosen = self._chosen
+        return [b for b in self.folds[i].held_out if chosen[b]]
+
+    @property
+    def _chosen(self) -> np.ndarray:
+        chosen = np.zeros(len(self.batches), dtype=bool)
+        chosen[self.sample] = True
+        return chosen
+
     def run(
         self, cands: Sequence[Candidate], progress: Callable[[float], None] | None = None
     ) -> None:
-        """Score ``cands`` on every fold (cached: a candidate is scored once per fold)."""
+        """Score ``cands`` on every fold's sampled batches (cached: a candidate is scored
+        once per (fold, batch))."""
+        chosen = self._chosen
         for i, fold in enumerate(self.folds):
-            todo = [c for c in cands if (i, fold.held_out[0]) not in self._scores.get(c, {})]
+            held = [b for b in fold.held_out if chosen[b]]
+            todo = [c for c in cands if any((i, b) not in self._scores.get(c, {}) for b in held)]
             if todo:
-                metrics = [self._scoring_metric(i, c) for c in todo]
-                for b in fold.held_out:
+                metrics = dict(zip(todo, (self._scoring_metric(i, c) for c in todo), strict=True))
+                for b in held:
+                    lacking = [c for c in todo if (i, b) not in self._scores.get(c, {})]
+                    if not lacking:
+                        continue
                     # the raw baseline rides along the first time its batch is grouped
                     raw = [] if b in self._raw else [self._raw_metric(b)]
-                    preds = self._group_all(metrics + raw, b, (0, i, b))
+                    preds = self._group_all([metrics[c] for c in lacking] + raw, b, (0, i, b))
                     scored = _scored(self.held_out_data(b)[1], preds)
                     if raw:
                         self._raw[b] = scored.pop()
-                    for cand, one in zip(todo, scored, strict=True):
+                    for cand, one in zip(lacking, scored, strict=True):
                         self._scores.setdefault(cand, {})[(i, b)] = one
+                for c in todo:
+                    self._per_batch.pop(c, None)
             if progress is not None:
                 progress((i + 1) / len(self.folds))
             self.forget(i)
+
+    def score(
+        self,
+        cands: Sequence[Candidate],
+        budget: Budget,
+        progress: Callable[[float], None] | None = None,
+    ) -> dict[str, Any]:
+        """Score ``cands`` on every batch, or within ``budget`` on a stratified sample
+        (:mod:`service.core._budget`); returns what the report says of the sample."""
+        n = len(self.batches)
+        out: dict[str, Any] = {
+            "tolerance": budget.tolerance, "min_batches": budget.min_batches,
+            "max_batches": budget.max_batches, "strata": "expert groups, then records",
+        }
+        if not budget.applies(n):
+            self.sample = list(range(n))
+            self.run(cands, progress)
+            return {**out, "applied": False, "rounds": 1, "scored_batches": n}
+        keys = np.array([[s.n_groups, s.n] for s in self.stats], dtype=np.int64)
+        seed = None if self.random_state is None else [int(self.random_state), 1, 0]
+        rng = np.random.default_rng(seed)
+        first = [i for i, f in enumerate(self.folds) if f.repeat == 0]
+        cap = min(budget.max_batches, n)
+        target, chosen, rounds = min(budget.min_batches, cap), set(), 0
+        spread = 0.0
+        for rounds in range(1, MAX_ROUNDS + 1):
+            shares = allocate(target, [len(self.folds[i].held_out) for i in first])
+            for i, share in zip(first, shares, strict=True):
+                mine = [b for b in self.folds[i].held_out if b in chosen]
+                pool = [b for b in self.folds[i].held_out if b not in chosen]
+                chosen.update(stratified_draw(pool, keys, share - len(mine), rng))
+            self.sample = sorted(chosen)
+            lo, hi = 1.0 - 0.5 ** (rounds - 1), 1.0 - 0.5**rounds
+            self.run(cands, None if progress is None else (
+                lambda f, lo=lo, hi=hi: progress(lo + (hi - lo) * f)))
+            spread = max(float(np.std(self.per_batch_ari(c), ddof=1)) for c in cands)
+            m = len(self.sample)
+            se = spread / math.sqrt(m) * math.sqrt(1.0 - m / n)
+            if se <= budget.tolerance or m >= cap:
+                break
+            target = min(cap, max(needed(spread, budget.tolerance, n), math.ceil(GROWTH * m)))
+        if progress is not None:
+            progress(1.0)
+        return {**out, "applied": True, "rounds": rounds, "scored_batches": len(self.sample),
+                "largest_sd": spread, "sample": list(self.sample)}
 
     def _group_all(
         self, metrics: Sequence[FittedMetric | None], b: int, stream: tuple[int, ...]
@@ -284,47 +355,60 @@ class CrossValidation:
         return self._raw[b]
 
     # -------------------------------------------------------------- summaries
-    def per_batch(self, cand: Candidate, keys: Sequence[str] = _KEYS) -> dict[str, list[float]]:
-        """Each batch's scores averaged over the repeats in which it was held out."""
-        by_batch: dict[int, list[Scores]] = {}
-        for (_, bb), v in self._scores[cand].items():  # one pass: O(folds), not O(b²)
-            by_batch.setdefault(bb, []).append(v)
-        out: dict[str, list[float]] = {key: [] for key in keys}
-        for b in range(len(self.batches)):
-            rows = by_batch[b]
-            for key in keys:
-                out[key].append(float(np.mean([r[key] for r in rows])))
-        return out
+    def per_batch(self, cand: Candidate, keys: Sequence[str] = _KEYS) -> dict[str, np.ndarray]:
+        """Each sampled batch's scores (in ``sample`` order) averaged over the repeats in
+        which it was held out; built once per candidate (read-only arrays)."""
+        if cand not in self._per_batch:
+            where = np.full(len(self.batches), -1)
+            where[self.sample] = np.arange(len(self.sample))
+            sums = np.zeros((len(_KEYS), len(self.sample)))
+            counts = np.zeros(len(self.sample))
+            for (_, bb), v in self._scores[cand].items():  # one pass over the scores
+                p = where[bb]
+                counts[p] += 1
+                for j, key in enumerate(_KEYS):
+                    sums[j, p] += v[key]
+            table = {}
+            for j, key in enumerate(_KEYS):
+                table[key] = sums[j] / counts
+                table[key].setflags(write=False)
+            self._per_batch[cand] = table
+        return {key: self._per_batch[cand][key] for key in keys}
 
     def per_batch_ari(self, cand: Candidate) -> np.ndarray:
-        return np.asarray(self.per_batch(cand, ("ari",))["ari"])
+        return self.per_batch(cand, ("ari",))["ari"]
 
     def summary(self, cand: Candidate, keys: Sequence[str] = _KEYS) -> dict[str, Any]:
+        """Mean scores over the sampled batches; ``ari_se`` the standard error of the
+        mean ARI across batches (s/√m), ``sampling_se`` the part of it that comes from
+        scoring a sample instead of every batch (:func:`_budget.sampling_se`)."""
         pb = self.per_batch(cand, keys)
-        ari = np.asarray(pb["ari"])
+        ari = pb["ari"]
         se = float(ari.std(ddof=1) / math.sqrt(ari.size)) if ari.size > 1 else 0.0
         out: dict[str, Any] = {key: float(np.mean(pb[key])) for key in keys}
         out["ari_se"] = se
+        out["sampling_se"] = sampling_se(ari, len(self.batches))
         out["per_batch"] = pb
         return out
 
     def raw_summary(self) -> dict[str, float]:
-        rows = [self._raw_scores(b) for b in range(len(self.batches))]
+        rows = [self._raw_scores(b) for b in self.sample]
         return {key: float(np.mean([r[key] for r in rows])) for key in _KEYS}
 
     def fold_reports(self, cands: Sequence[Candidate]) -> list[dict[str, Any]]:
         reports = []
         for i, fold in enumerate(self.folds):
-            scores = []
+            scores, held = [], self.in_sample(i)
             for cand in cands:
-                rows = [self._scores[cand][(i, b)] for b in fold.held_out]
-                ari = float(np.mean([r["ari"] for r in rows]))
+                rows = [self._scores[cand][(i, b)]["ari"] for b in held]
+                ari = float(np.mean(rows)) if rows else None
                 scores.append({"method": cand.method, "alpha": cand.alpha, "ari": ari})
             reports.append(
                 {
                     "fold": fold.index,
                     "repeat": fold.repeat,
                     "held_out": list(fold.held_out),
+                    "scored_batches": len(held),
                     "train_batches": len(fold.train),
                     "scores": scores,
                 }

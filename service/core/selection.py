@@ -19,7 +19,11 @@ calibrated on each batch as the winning candidate saw it held out
 
 Cost cap: at most ``max_heldout_records`` records of a held-out batch are grouped
 (a deterministic subsample drawn from ``random_state``). Statistics are never
-subsampled.
+subsampled. Held-out budget: with more than ``min_heldout_batches`` batches, each fold
+scores a stratified sample of its held-out batches, grown until the sampling standard
+error of the mean held-out ARI is within ``heldout_tolerance`` (or
+``max_heldout_batches`` are scored); ``heldout_tolerance=None`` scores every batch
+(:mod:`service.core._budget`, docs/method.md "Held-out budget").
 
 Selection rule (``rule="one_se"``, the default for ``method="auto"``). With three
 to five small batches the held-out ARI of the candidates differs by noise, and the
@@ -45,6 +49,7 @@ from typing import Any
 import numpy as np
 
 from . import kchoice
+from ._budget import Budget
 from ._cv import Candidate, CrossValidation, make_folds
 from .clustering import validated_inner_loop
 from .errors import CoreError, NotEnoughDataError
@@ -62,6 +67,11 @@ _SCORE_KEYS = ("ari", "nmi", "rand")
 # a smaller mean held-out ARI gain is not called "better" (rule of thumb, no source)
 MIN_GAIN = 0.02
 _K_FOLDS = 5  # folds of the calibration batches behind the k-accuracy estimate
+# the held-out budget (docs/method.md, "Held-out budget"): target sampling standard
+# error of the mean held-out ARI, and the floor and cap on the batches scored
+HELDOUT_TOLERANCE = 0.01
+MIN_HELDOUT_BATCHES = 50
+MAX_HELDOUT_BATCHES = 200
 
 
 class MetricSelector:
@@ -87,6 +97,9 @@ class MetricSelector:
         cv_n_init: int = 2,
         estimate_k: bool = True,
         max_k_batches: int = 20,
+        heldout_tolerance: float | None = HELDOUT_TOLERANCE,
+        min_heldout_batches: int = MIN_HELDOUT_BATCHES,
+        max_heldout_batches: int = MAX_HELDOUT_BATCHES,
     ) -> None:
         self.method = method
         self.alphas = alphas
@@ -101,6 +114,9 @@ class MetricSelector:
         self.cv_n_init = cv_n_init
         self.estimate_k = estimate_k
         self.max_k_batches = max_k_batches
+        self.heldout_tolerance = heldout_tolerance
+        self.min_heldout_batches = min_heldout_batches
+        self.max_heldout_batches = max_heldout_batches
 
     # ------------------------------------------------------------------ public
     def fit(
@@ -128,7 +144,10 @@ class MetricSelector:
             n_init=self.cv_n_init,
         )
         cands = self._candidates()
-        self._cv.run(cands, lambda f: self._report_progress("cross-validation", 0.05 + 0.75 * f))
+        budget = Budget(self.heldout_tolerance, self.min_heldout_batches, self.max_heldout_batches)
+        self._budget = self._cv.score(
+            cands, budget, lambda f: self._report_progress("cross-validation", 0.05 + 0.75 * f)
+        )
         winner, reason, best = self._select(cands)
         self._report_progress("refit", 0.8)
         with warnings.catch_warnings(record=True) as caught:
@@ -168,7 +187,7 @@ class MetricSelector:
             "alpha": cand.alpha,
             "score": _score_pair(res, base),
             "ari_se": res["ari_se"],
-            "per_batch_ari": res["per_batch"]["ari"],
+            "per_batch_ari": res["per_batch"]["ari"].tolist(),
         }
 
     # ----------------------------------------------------------------- private
@@ -190,6 +209,17 @@ class MetricSelector:
         if self.max_rank is not None:
             check_whole(self.max_rank, "max_rank", 1)
         check_whole(self.k_max, "k_max", 2)
+        tol = self.heldout_tolerance
+        if tol is not None and (
+            isinstance(tol, bool) or not isinstance(tol, (int, float)) or not math.isfinite(tol)
+            or tol <= 0
+        ):
+            raise CoreError(
+                "heldout_tolerance must be a number greater than 0, or None to score every "
+                "held-out batch", "heldout_tolerance",
+            )
+        low = check_whole(self.min_heldout_batches, "min_heldout_batches", 2)
+        check_whole(self.max_heldout_batches, "max_heldout_batches", low)
 
     def _candidates(self) -> list[Candidate]:
         methods = (
@@ -282,6 +312,16 @@ class MetricSelector:
             mapping = "partly_in_sample"
         return kchoice.evidence_from_maps(maps, data, self.k_max, self.random_state, mapping)
 
+    def _budget_report(self, res: dict[str, Any], n_batches: int) -> dict[str, Any]:
+        """The held-out sample and the winner's sampling standard error (0 when every
+        batch was scored); ``tolerance_met`` is false only when the cap stopped it."""
+        out = dict(self._budget)
+        out["n_batches"] = n_batches
+        out["sampling_se"] = res["sampling_se"]
+        tol = out["tolerance"]
+        out["tolerance_met"] = tol is None or res["sampling_se"] <= tol
+        return out
+
     def _report_progress(self, stage: str, fraction: float) -> None:
         if self.progress is not None:
             self.progress(stage, float(min(max(fraction, 0.0), 1.0)))
@@ -331,6 +371,7 @@ class MetricSelector:
             "n_folds": len({f.index for f in cv.folds}),
             "n_repeats": max(f.repeat for f in cv.folds) + 1,
             "max_heldout_records": self.max_heldout_records,
+            "heldout_budget": self._budget_report(res, len(cv.batches)),
             "k_accuracy": k_acc,
             "k_trials": k_trials,
             "k_rule": (metric.k_rule or {}).get("rule"),

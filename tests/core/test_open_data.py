@@ -61,6 +61,11 @@ def test_learned_metric_beats_euclidean_kmeans_on_held_out_batches(
 
     selector = MetricSelector(method="auto", random_state=0, estimate_k=False)
     metric = selector.fit(fit_batches).metric_
+    # the held-out budget leaves the choice alone here: 12 batches are below its floor,
+    # so every one is scored, as unbudgeted (tests/core/test_budget.py compares budgeted
+    # and unbudgeted picks where the budget samples)
+    budget = selector.report_["heldout_budget"]
+    assert budget["applied"] is False and budget["scored_batches"] == N_FIT
 
     learned, raw, standardised = [], [], []
     for Xb, yb in score_batches:

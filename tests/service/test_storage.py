@@ -198,3 +198,20 @@ def test_feature_change_with_batches_is_a_conflict(ctx: Context) -> None:
         metrics.put_metric(ctx, "m", feats[:2])
     assert err.value.status == 409
     assert metrics.get_metric(ctx, "m")["features"] == feats
+
+
+def test_matrices_stored_in_the_old_zlib_format_still_load(ctx: Context) -> None:
+    # the format before Zstandard, written out by hand: header (magic LWM1, rows,
+    # columns) and little-endian float64, as one zlib stream at level 6
+    import struct
+    import zlib
+
+    feats, data, ids = setup_metric(ctx, "m", n=2)
+    X = data[0][0]
+    raw = struct.pack("<4sqq", b"LWM1", *X.shape) + np.ascontiguousarray(X, "<f8").tobytes()
+    key = ctx.storage.keys.batch("m", ids[0])
+    assert ctx.redis.hget(key, "matrix")[:4] == b"\x28\xb5\x2f\xfd"  # stored now: Zstandard
+    ctx.redis.hset(key, "matrix", zlib.compress(raw, 6))
+    rows = load_training_data(ctx, "m")
+    assert_array_equal(rows[0]["X"], X)
+    assert_array_equal(rows[1]["X"], data[1][0])
