@@ -9,10 +9,12 @@ from __future__ import annotations
 
 import os
 import secrets
+import shutil
 import signal
 import socket
 import subprocess
 import sys
+import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -25,6 +27,7 @@ if TYPE_CHECKING:
     from .config import Settings
 
 TOKEN_FILE = "admin-token"
+MULTIPROC_ENV = "PROMETHEUS_MULTIPROC_DIR"  # read by prometheus-client in the web tier
 READY_TIMEOUT_SECONDS = 30.0
 
 
@@ -246,7 +249,9 @@ def run(settings: Settings) -> int:
              f"e.g.  LIKEWISE_PORT={settings.port + 1} make run")
         return 2
     children: list[_Child] = []
+    cleanup: list[Callable[[], None]] = []
     env = dict(os.environ)
+    env.pop(MULTIPROC_ENV, None)  # workers never write web samples
     stopping = False
 
     def _on_signal(signum, _frame):  # noqa: ANN001
@@ -291,9 +296,14 @@ def run(settings: Settings) -> int:
             "--no-control-socket",  # several deployments may share a host
             "service.api:create_app()",
         ]
-        children.append(_Child.start("http", gunicorn, env))
+        # a fresh private folder per start for the web processes' samples (/metrics)
+        samples = tempfile.mkdtemp(prefix="likewise-metrics-")
+        cleanup.append(lambda: shutil.rmtree(samples, ignore_errors=True))
+        children.append(_Child.start("http", gunicorn, {**env, MULTIPROC_ENV: samples}))
         _say(f"serving on http://{bind}  ({settings.workers} fit worker(s)); Ctrl-C stops all")
         return 1 if _supervise(children, lambda: stopping) else 0
     finally:
         _stop(children)
+        for undo in cleanup:
+            undo()
         _say("stopped")

@@ -44,7 +44,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
 
     register_problem_handlers(app)
     app.before_request(bound_body)
-    telemetry.install(app)
+    telemetry.install(app, context)
 
     v1 = Blueprint("v1", __name__, url_prefix="/v1")
     v1.before_request(require_token)

@@ -6,6 +6,7 @@ from flask import Blueprint, Response
 
 from service.usecases import groupings as uc
 
+from . import telemetry
 from .deps import context, reply
 from .schemas import GroupingSchema, json_body, table_of
 
@@ -16,4 +17,5 @@ bp = Blueprint("groupings", __name__)
 def group(name: str) -> Response:
     data = json_body(GroupingSchema())
     result = uc.group(context(), name, table_of(data), data["k"], data.get("version"))
+    telemetry.note_grouping(len(result["labels"]))
     return reply(result)
