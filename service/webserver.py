@@ -13,6 +13,9 @@ answers are RFC 9457 problem+json like every other answer of the service.
 processes write their samples to files in ``PROMETHEUS_MULTIPROC_DIR``. On start
 the server uses the folder the launcher made (emptying it) or makes a private one of
 its own (removed on exit); when a web process exits its live gauges are dropped.
+
+Logging: ``logconfig_dict`` is :func:`service.logs.dict_config` (read when gunicorn
+loads this module), so gunicorn's lines and the app's share one format.
 """
 
 from __future__ import annotations
@@ -27,6 +30,7 @@ from typing import Any
 from gunicorn import util
 
 from service.errors import PROBLEM_BASE
+from service.logs import dict_config
 
 _SLUGS = {400: "malformed-request", 403: "forbidden", 414: "uri-too-long",
           417: "malformed-request", 431: "headers-too-large", 500: "internal-error",
@@ -89,6 +93,11 @@ def on_exit(_server: Any) -> None:
     for path in _made:
         shutil.rmtree(path, ignore_errors=True)
 
+
+# every line in LIKEWISE_LOG_FORMAT (JSON by default), gunicorn's own included; no
+# access log: the app logs each request itself, with its id
+logconfig_dict = dict_config()
+accesslog = None
 
 worker_class = "gthread"
 threads = 4

@@ -7,14 +7,17 @@ Data: scikit-learn's bundled iris (Fisher 1936).
 
 from __future__ import annotations
 
+import json
 import subprocess
+import urllib.request
 from pathlib import Path
 
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
 from tests.api.helpers import iris_batches, records_body
-from tests.e2e.test_flow import Http, _fit, _start, _stop, launcher_env
+from tests.e2e.test_flow import TOKEN, Http, _fit, _start, _stop, launcher_env
+from tests.service.test_worker_words import RQ_SENTENCES
 
 N_REQUESTS = 40
 MAX_REQUESTS = 1000
@@ -83,7 +86,7 @@ def test_metrics_add_up_across_two_web_processes(settings, tmp_path):
         batches = iris_batches(6)
         for X, labels in batches:
             assert http("POST", "/v1/metrics/iris/batches", records_body(X, labels))[0] == 201
-        _fit(http, "iris", {})
+        fit = _fit(http, "iris", {})
         X, labels = batches[0]
         body = {"records": records_body(X, labels)["records"], "k": 3}
         assert http("POST", "/v1/metrics/iris/groupings", body)[0] == 200
@@ -109,6 +112,26 @@ def test_metrics_add_up_across_two_web_processes(settings, tmp_path):
             ))
         assert seen == [(by_outcome, by_outcome, len(history), 0, 1, len(X), 1)] * SCRAPES
         assert by_outcome == {"succeeded": 1, "failed": 0}
+
+        req = urllib.request.Request(base + "/v1/metrics/iris",
+                                     headers={"Authorization": f"Bearer {TOKEN}",
+                                              "X-Request-Id": "e2e-telemetry-1"})
+        with urllib.request.urlopen(req, timeout=30) as resp:
+            assert resp.headers["X-Request-Id"] == "e2e-telemetry-1"
     finally:
         assert _stop(proc) == 0
     assert not folder.exists()  # the launcher removes the samples folder
+
+    # every line of the launcher, gunicorn, the app and the worker is one JSON object
+    text = (tmp_path / "launcher.log").read_text()
+    lines = [json.loads(line) for line in text.splitlines()]
+    assert all({"time", "level", "logger", "message"} <= set(line) for line in lines)
+    (mine,) = [line for line in lines if line.get("request_id") == "e2e-telemetry-1"]
+    assert (mine["logger"], mine["route"], mine["status"], mine["metric"]) == (
+        "likewise.http", "/v1/metrics/<name>", 200, "iris")
+    assert mine["duration_ms"] >= 0 and mine["principal"] == "admin"
+    fit_lines = [line for line in lines if line.get("fit_id") == fit["fit_id"]]
+    assert {line["logger"] for line in fit_lines} >= {"likewise.http", "likewise.worker"}
+    assert TOKEN not in text
+    for sentence in RQ_SENTENCES:
+        assert sentence not in text
