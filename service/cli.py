@@ -9,7 +9,9 @@ import sys
 def _cmd_run(_args: argparse.Namespace) -> int:
     from .config import Settings
     from .launcher import run
+    from .logs import configure
 
+    configure()
     return run(Settings.from_env())
 
 
@@ -17,12 +19,14 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     from workers.worker import run_worker
 
     from .config import Settings
+    from .logs import configure
 
     settings = Settings.from_env()
     if not settings.redis_url:
         print("likewise worker: set LIKEWISE_REDIS_URL", file=sys.stderr)
         return 2
-    run_worker(settings, burst=args.burst, name=args.name, logging_level="INFO")
+    configure()
+    run_worker(settings, burst=args.until_empty, name=args.name, logging_level="INFO")
     return 0
 
 
@@ -46,7 +50,8 @@ def build_parser() -> argparse.ArgumentParser:
     p_run.set_defaults(func=_cmd_run)
     p_worker = sub.add_parser("worker", help="start one fit worker (needs LIKEWISE_REDIS_URL)")
     p_worker.add_argument("--name", default=None, help="worker name shown in /v1/queues")
-    p_worker.add_argument("--burst", action="store_true", help="exit when the queue is empty")
+    p_worker.add_argument("--until-empty", action="store_true",
+                          help="run the fits waiting now, then exit once none is left")
     p_worker.set_defaults(func=_cmd_worker)
     p_demo = sub.add_parser(
         "demo", help="post the invented cold-chain scenario to a running service"

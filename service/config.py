@@ -28,7 +28,12 @@ LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
 LIKEWISE_WARDEN_SECONDS     warden_seconds (sweep period)  5
 LIKEWISE_LEASE_SECONDS      lease_seconds (attempt alive)  10
 LIKEWISE_IDEMPOTENCY_HOURS  idempotency_hours (answers kept) 24
+LIKEWISE_LOG_FORMAT         (service/logs.py) ``json``|``text`` ``json``, ``text`` on a terminal
+LIKEWISE_LOG_LEVEL          (service/logs.py) log level    ``INFO``
 =========================== ============================== ===========================
+
+The two log variables are read by the entry points' logging setup
+(:mod:`service.logs`), not kept in :class:`Settings`.
 """
 
 from __future__ import annotations

@@ -7,12 +7,15 @@ one of them exits on its own.
 
 from __future__ import annotations
 
+import logging
 import os
 import secrets
+import shutil
 import signal
 import socket
 import subprocess
 import sys
+import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -25,11 +28,15 @@ if TYPE_CHECKING:
     from .config import Settings
 
 TOKEN_FILE = "admin-token"
+MULTIPROC_ENV = "PROMETHEUS_MULTIPROC_DIR"  # read by prometheus-client in the web tier
 READY_TIMEOUT_SECONDS = 30.0
 
 
-def _say(message: str) -> None:
-    print(f"likewise: {message}", flush=True)
+log = logging.getLogger("likewise.launcher")
+
+
+def _say(message: str, level: int = logging.INFO) -> None:
+    log.log(level, message)
 
 
 def ensure_admin_token(settings: Settings) -> tuple[str, bool]:
@@ -227,9 +234,9 @@ def _supervise(children: list[_Child], stopped: Callable[[], bool]) -> bool:
                 continue
             cmd = child.again() if child.again is not None else _worker_cmd(slot)
             if child.restart and child.respawn(cmd):
-                _say(f"{child.name} exited with code {code}; started it again")
+                _say(f"{child.name} exited with code {code}; started it again", logging.WARNING)
                 continue
-            _say(f"{child.name} exited with code {code}; stopping everything")
+            _say(f"{child.name} exited with code {code}; stopping everything", logging.ERROR)
             return True
         time.sleep(0.2)
     return False
@@ -243,10 +250,12 @@ def run(settings: Settings) -> int:
     """
     if port_in_use(settings.host, settings.port):
         _say(f"{settings.host}:{settings.port} is already in use; choose another port, "
-             f"e.g.  LIKEWISE_PORT={settings.port + 1} make run")
+             f"e.g.  LIKEWISE_PORT={settings.port + 1} make run", logging.ERROR)
         return 2
     children: list[_Child] = []
+    cleanup: list[Callable[[], None]] = []
     env = dict(os.environ)
+    env.pop(MULTIPROC_ENV, None)  # workers never write web samples
     stopping = False
 
     def _on_signal(signum, _frame):  # noqa: ANN001
@@ -287,13 +296,18 @@ def run(settings: Settings) -> int:
             "--config", "python:service.webserver",  # problem+json for server-level errors
             "--bind", bind,
             "--workers", str(settings.web_workers),
-            "--access-logfile", "-",
+            # no access log: the app logs each request itself, with its id
             "--no-control-socket",  # several deployments may share a host
             "service.api:create_app()",
         ]
-        children.append(_Child.start("http", gunicorn, env))
+        # a fresh private folder per start for the web processes' samples (/metrics)
+        samples = tempfile.mkdtemp(prefix="likewise-metrics-")
+        cleanup.append(lambda: shutil.rmtree(samples, ignore_errors=True))
+        children.append(_Child.start("http", gunicorn, {**env, MULTIPROC_ENV: samples}))
         _say(f"serving on http://{bind}  ({settings.workers} fit worker(s)); Ctrl-C stops all")
         return 1 if _supervise(children, lambda: stopping) else 0
     finally:
         _stop(children)
+        for undo in cleanup:
+            undo()
         _say("stopped")

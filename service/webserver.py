@@ -8,15 +8,29 @@ Some requests never reach the app: gunicorn itself refuses an over-long request
 line (414), too many or too large headers (431) and malformed HTTP (400). Its own
 answer to those is an HTML page; loading this module replaces that writer, so these
 answers are RFC 9457 problem+json like every other answer of the service.
+
+``/metrics`` adds up every web process (prometheus-client's multiprocess mode): the
+processes write their samples to files in ``PROMETHEUS_MULTIPROC_DIR``. On start
+the server uses the folder the launcher made (emptying it) or makes a private one of
+its own (removed on exit); when a web process exits its live gauges are dropped.
+
+Logging: ``logconfig_dict`` is :func:`service.logs.dict_config` (read when gunicorn
+loads this module), so gunicorn's lines and the app's share one format.
 """
 
 from __future__ import annotations
 
 import json
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any
 
 from gunicorn import util
 
 from service.errors import PROBLEM_BASE
+from service.logs import dict_config
 
 _SLUGS = {400: "malformed-request", 403: "forbidden", 414: "uri-too-long",
           417: "malformed-request", 431: "headers-too-large", 500: "internal-error",
@@ -41,6 +55,49 @@ def _write_problem(sock, status_int, reason, mesg) -> None:  # noqa: ANN001 — 
 
 
 util.write_error = _write_problem  # read by gunicorn's workers when they answer an error
+
+MULTIPROC_ENV = "PROMETHEUS_MULTIPROC_DIR"
+_made: list[str] = []  # a folder this server made itself (removed on exit)
+
+
+def prepare_multiprocess_dir(environ: Any = os.environ) -> str:
+    """The folder of the web processes' samples, empty and private (700).
+
+    Called in the gunicorn master before any web process starts (and before any of
+    them imports prometheus-client, which reads the variable once at import).
+    """
+    path = environ.get(MULTIPROC_ENV)
+    if not path:
+        path = tempfile.mkdtemp(prefix="likewise-metrics-")
+        environ[MULTIPROC_ENV] = path
+        _made.append(path)
+    folder = Path(path)
+    folder.mkdir(mode=0o700, parents=True, exist_ok=True)
+    folder.chmod(0o700)
+    for stale in folder.glob("*.db"):  # samples of an earlier start
+        stale.unlink(missing_ok=True)
+    return path
+
+
+def on_starting(_server: Any) -> None:
+    prepare_multiprocess_dir()
+
+
+def child_exit(_server: Any, worker: Any) -> None:
+    from prometheus_client import multiprocess
+
+    multiprocess.mark_process_dead(worker.pid)
+
+
+def on_exit(_server: Any) -> None:
+    for path in _made:
+        shutil.rmtree(path, ignore_errors=True)
+
+
+# every line in LIKEWISE_LOG_FORMAT (JSON by default), gunicorn's own included; no
+# access log: the app logs each request itself, with its id
+logconfig_dict = dict_config()
+accesslog = None
 
 worker_class = "gthread"
 threads = 4

@@ -10,6 +10,11 @@ thread on its own Redis connection, sweeping live fits every
 ``Settings.warden_seconds``; a burst sweeps once when the queue is empty. The maths
 core is imported before the first fork, so a work horse starts with scikit-learn and
 SciPy already loaded.
+
+RQ's own log sentences are said in our words, or lowered to debug, by
+:class:`workers.logwords.QueueWords`, a filter on the handler that
+:func:`service.logs.configure` installs (``likewise worker`` calls it before
+``run_worker``; ``likewise worker --until-empty`` is ``burst=True``).
 """
 
 from __future__ import annotations

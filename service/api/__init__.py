@@ -29,7 +29,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     from service.config import Settings
     from service.context import Context
 
-    from . import batches, fits, groupings, health, metrics, telemetry, versions
+    from . import batches, fits, groupings, health, metrics, telemetry, tracing, versions
 
     if context is None:
         context = Context.build(settings if settings is not None else Settings.from_env(),
@@ -43,8 +43,9 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     app.extensions["likewise.tokens"] = settings.token_book()
 
     register_problem_handlers(app)
+    tracing.install(app)  # first: even a refused request gets an id and a log line
     app.before_request(bound_body)
-    telemetry.install(app)
+    telemetry.install(app, context)
 
     v1 = Blueprint("v1", __name__, url_prefix="/v1")
     v1.before_request(require_token)

@@ -6,6 +6,7 @@ from flask import Blueprint, Response
 
 from service.usecases import groupings as uc
 
+from . import telemetry
 from .deps import context, reply
 from .formats import read_table
 from .schemas import GroupingQuerySchema, GroupingSchema
@@ -20,4 +21,5 @@ def group(name: str) -> Response:
     result = uc.group(context(), name, table, options.get("k"), options.get("version"),
                       ignore_extra=options["ignore_extra_columns"],
                       id_column=options.get("id_column"))
+    telemetry.note_grouping(len(result["labels"]))
     return reply(result)

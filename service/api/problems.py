@@ -2,7 +2,8 @@
 
 Every error leaves the app as ``application/problem+json`` — service errors, marshmallow
 validation errors, Werkzeug HTTP errors (404, 405, 413 …) and unexpected exceptions
-(a 500 whose body never carries a stack trace).
+(a 500 whose body never carries a stack trace). Each body carries the request's id
+(``request_id``, as in the ``X-Request-Id`` header).
 """
 
 from __future__ import annotations
@@ -11,7 +12,7 @@ import logging
 from collections.abc import Mapping
 from typing import Any
 
-from flask import Flask, Response, json, request
+from flask import Flask, Response, g, json, request
 from marshmallow import ValidationError
 from redis.exceptions import ConnectionError as RedisConnectionError
 from redis.exceptions import OutOfMemoryError as RedisOutOfMemoryError
@@ -55,6 +56,9 @@ def problem_response(
 
 
 def _respond(body: dict[str, Any], headers: Mapping[str, str] | None) -> Response:
+    rid = g.get("request_id")
+    if rid is not None:
+        body.setdefault("request_id", rid)
     resp = Response(json.dumps(body), status=body["status"], mimetype=PROBLEM_MIME)
     for key, value in (headers or {}).items():
         resp.headers[key] = value

@@ -4,6 +4,7 @@
 - ``codecs.py`` — how matrices, labels and fields are encoded;
 - ``metrics.py``, ``batches.py``, ``versions.py``, ``fits.py`` — one store per concept;
 - ``idempotency.py`` — stored answers to retried requests;
+- ``tallies.py`` — deployment-wide counters for ``/metrics`` (fits ended, activations);
 - ``errors.py`` — what persistence refuses, in its own terms (``StoreError``).
 
 Writes that belong together run in one MULTI/EXEC (or one Lua script); read-check-write
@@ -33,6 +34,7 @@ from .fits import FitStore
 from .idempotency import IdempotencyStore
 from .keys import Keys
 from .metrics import MetricStore
+from .tallies import TallyStore
 from .versions import VersionStore
 
 if TYPE_CHECKING:
@@ -48,7 +50,8 @@ class Storage:
         self.keys = Keys(prefix)
         self.metrics = MetricStore(redis, self.keys)
         self.batches = BatchStore(redis, self.keys)
-        self.fits = FitStore(redis, self.keys)
+        self.tallies = TallyStore(redis, self.keys)
+        self.fits = FitStore(redis, self.keys, self.tallies)
         self.versions = VersionStore(redis, self.keys, self.fits)
         self.idempotency = IdempotencyStore(redis, self.keys)
 

@@ -3,7 +3,8 @@
 A record changes only through :meth:`FitStore.change`, which reads it under WATCH,
 asks a :class:`~service.lifecycle.Fit` method for the next record and writes it in
 one EXEC, together with what follows from the move: a fit that is no longer live
-frees its dedupe slot and leaves the live set.
+frees its dedupe slot and leaves the live set, and a fit that just ended is counted
+(:mod:`.tallies`).
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ from service.lifecycle import Fit, FitStatus, IllegalMove
 from .codecs import dumps, from_json_fields, json_fields, loads, text
 from .errors import MissingMetric
 from .keys import Keys
+from .tallies import TallyStore
 from .tx import transact
 
 if TYPE_CHECKING:
@@ -36,8 +38,8 @@ _PROGRESS = ("if redis.call('HGET', KEYS[1], 'status') == ARGV[3] then "
 
 
 class FitStore:
-    def __init__(self, redis: redis.Redis, keys: Keys) -> None:
-        self.redis, self.keys = redis, keys
+    def __init__(self, redis: redis.Redis, keys: Keys, tallies: TallyStore) -> None:
+        self.redis, self.keys, self.tallies = redis, keys, tallies
 
     # ---- reads -----------------------------------------------------------------------
     def get(self, fit_id: str) -> Fit | None:
@@ -90,6 +92,8 @@ class FitStore:
             pipe.eval(_RELEASE, 1, k.lease(fit.fit_id), fit.job_id)
             if fit.dedupe_key and (previous is None or previous.live):
                 pipe.eval(_DROP_DEDUPE, 1, fit.dedupe_key, fit.fit_id)
+            if previous is not None and previous.live:
+                self.tallies.count_fit_end(pipe, fit)
 
     def create(self, fit: Fit, enqueue: Enqueue) -> tuple[str, bool]:
         """Store a new fit and enqueue its job in one EXEC, unless its dedupe key points

@@ -23,6 +23,11 @@ Key layout (``P`` = the deployment's key prefix; metric names match
     P:live-fits                     set    ids of queued and running fits (what the warden checks)
     P:idem:{digest}                 string a stored answer to an Idempotency-Key (expires)
     P:batchseq                      string ingest order of batches (INCR)
+    P:tallies                       hash   deployment-wide counters read by /metrics:
+                                           fits:{outcome} (fits that ended so),
+                                           fit-seconds:{outcome} (their run time, summed),
+                                           fit-bucket:{outcome}:{i} (ended within bucket i),
+                                           activations:{by} (versions made active)
 """
 
 from __future__ import annotations
@@ -98,3 +103,7 @@ class Keys:
     # ---- retried requests ------------------------------------------------------------
     def idempotency(self, digest: str) -> str:
         return self.join("idem", digest)
+
+    # ---- deployment-wide counters (telemetry) -----------------------------------------
+    def tallies(self) -> str:
+        return self.join("tallies")

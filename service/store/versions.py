@@ -24,6 +24,7 @@ VERSION_FIELDS = ("summary", "report", "metric", "batches", "fit_id", "parent")
 class VersionStore:
     def __init__(self, redis: redis.Redis, keys: Keys, fits: FitStore) -> None:
         self.redis, self.keys, self.fits = redis, keys, fits
+        self.tallies = fits.tallies
 
     def active(self, name: str) -> int | None:
         raw = self.redis.get(self.keys.active(name))
@@ -65,6 +66,7 @@ class VersionStore:
             if activate:
                 pipe.set(akey, n)
                 pipe.rpush(k.history(name), json.dumps(activation))
+                self.tallies.count_activation(pipe, "fit")
             self.fits.write(pipe, fit, previous=stored)
 
         transact(self.redis, [mkey, akey, fkey], body)
@@ -106,6 +108,7 @@ class VersionStore:
             pipe.multi()
             pipe.set(akey, n)
             pipe.rpush(self.keys.history(name), json.dumps({**entry, "from": prev, "to": n}))
+            self.tallies.count_activation(pipe, "operator")
             return prev
 
         return transact(self.redis, [akey, vkey], body)

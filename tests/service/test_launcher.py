@@ -52,7 +52,7 @@ def test_a_worker_that_keeps_dying_is_given_up_after_the_restart_limit():
     assert launcher._supervise([child], stopped=lambda: False) is True
 
 
-def test_a_taken_port_stops_the_launcher_before_it_starts_anything(tmp_path: Path, capsys):
+def test_a_taken_port_stops_the_launcher_before_it_starts_anything(tmp_path: Path, caplog):
     import socket
 
     from service import launcher
@@ -64,7 +64,7 @@ def test_a_taken_port_stops_the_launcher_before_it_starts_anything(tmp_path: Pat
         assert launcher.port_in_use("127.0.0.1", port)
         settings = Settings(data_dir=str(tmp_path / "var"), port=port)
         assert launcher.run(settings) == 2
-    out = capsys.readouterr().out
+    out = caplog.text
     assert f"127.0.0.1:{port} is already in use" in out and "LIKEWISE_PORT=" in out
     assert not (tmp_path / "var").exists()  # no Redis, no token: nothing was started
     assert not launcher.port_in_use("127.0.0.1", port)  # free again once closed
