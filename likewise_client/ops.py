@@ -60,6 +60,12 @@ def table(headers: Sequence[str], rows: Sequence[Sequence[Any]], out: TextIO) ->
 
 
 def _is_number(v: Any) -> bool:
+    if isinstance(v, str):  # a number formatted by the caller
+        try:
+            float(v)
+        except ValueError:
+            return False
+        return True
     return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
@@ -102,7 +108,7 @@ def cmd_versions(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
     if not versions:
         print(f"{args.metric}: no versions yet (fit it first)", file=out)
         return 0
-    rows = [("*" if v["active"] else "", v["version"], v["method"], v["rank"], v["alpha"],
+    rows = [("*" if v["active"] else "", v["version"], v["method"], v["rank"], f"{v['alpha']:g}",
              v["score"]["ari"], v["score"]["baseline_ari"], v["beats_baseline"],
              v["created_at"]) for v in versions]
     table(["", "version", "method", "rank", "alpha", "held-out ARI", "Euclidean ARI",
@@ -144,7 +150,7 @@ def cmd_explain(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
           f" ({'beats' if v['beats_baseline'] else 'does not beat'} it)\n", file=out)
     weights = feature_weights(v)
     top = max((share for _, share, _ in weights), default=0.0) or 1.0
-    rows = [(name, share, per_unit, "#" * round(BAR * share / top))
+    rows = [(name, share, f"{per_unit:.3g}", "#" * round(BAR * share / top))
             for name, share, per_unit in weights]
     table(["feature", "share", "per unit", ""], rows, out)
     return 0

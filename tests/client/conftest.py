@@ -26,7 +26,7 @@ from pathlib import Path
 
 import pytest
 import redis
-from werkzeug.serving import make_server
+from werkzeug.serving import WSGIRequestHandler, make_server
 
 from likewise_client import Client
 from service.api import create_app
@@ -34,6 +34,11 @@ from service.config import Settings
 from tests.conftest import ADMIN_TOKEN, _purge
 
 ROOT = Path(__file__).resolve().parents[2]
+
+
+class _Quiet(WSGIRequestHandler):
+    def log_request(self, *args, **kwargs) -> None:  # one line per request: noise here
+        pass
 
 
 @dataclass
@@ -54,7 +59,8 @@ def live(redis_url: str) -> Iterator[Live]:
                         data_dir=tempfile.gettempdir())
     conn = redis.Redis.from_url(redis_url)
     _purge(conn, settings)
-    server = make_server("127.0.0.1", 0, create_app(settings=settings), threaded=True)
+    server = make_server("127.0.0.1", 0, create_app(settings=settings), threaded=True,
+                         request_handler=_Quiet)
     thread = threading.Thread(target=server.serve_forever, daemon=True)
     thread.start()
     env = {**os.environ, "LIKEWISE_REDIS_URL": redis_url, "LIKEWISE_KEY_PREFIX": prefix,
