@@ -54,6 +54,29 @@ def test_the_client_imports_nothing_of_the_service() -> None:
     assert outside == set()
 
 
+# every operation of openapi.yaml and the client method that calls it
+OPERATIONS = {
+    "listMetrics": "list_metrics", "putMetric": "put_metric", "getMetric": "get_metric",
+    "deleteMetric": "delete_metric", "addBatch": "post_batch", "listBatches": "list_batches",
+    "getBatch": "get_batch", "deleteBatch": "delete_batch", "requestFit": "start_fit",
+    "listFits": "list_fits", "getFit": "get_fit", "retryFit": "retry_fit",
+    "listVersions": "list_versions", "getVersion": "get_version",
+    "activateVersion": "activate", "activationHistory": "history",
+    "groupRecords": "group", "queueOverview": "queues", "healthz": "health",
+    "readyz": "ready", "prometheusMetrics": "prometheus",
+}
+
+
+def test_every_documented_operation_has_a_client_method() -> None:
+    import yaml
+
+    spec = yaml.safe_load((ROOT / "openapi.yaml").read_text())
+    documented = {op["operationId"] for item in spec["paths"].values()
+                  for op in item.values() if isinstance(op, dict) and "operationId" in op}
+    assert documented == set(OPERATIONS)
+    assert all(callable(getattr(Client, method)) for method in OPERATIONS.values())
+
+
 def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> None:
     name = metric_name
     with live.client() as lw:
@@ -95,6 +118,9 @@ def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> 
         assert seen[-1] == "succeeded" and done["version"] == 1
         assert [f["fit_id"] for f in lw.list_fits(metric=name)] == [fit["fit_id"]]
         assert lw.list_fits(metric=name, status="failed") == []
+        with pytest.raises(ProblemError) as not_failed:  # only a failed fit is retried
+            lw.retry_fit(fit["fit_id"])
+        assert not_failed.value.status == 409
 
         versions = lw.list_versions(name)
         assert [(v["version"], v["active"]) for v in versions] == [(1, True)]

@@ -155,3 +155,19 @@ def test_an_error_is_one_line_and_exit_code_1(run) -> None:
     code, out, err = run("versions", "no-such-metric")
     assert code == 1 and out == ""
     assert "404" in err and "Traceback" not in err
+
+
+def test_queue_watch_ends_quietly_on_ctrl_c(live) -> None:
+    import argparse
+    import io
+
+    from likewise_client.ops import cmd_queue
+
+    def interrupted(seconds: float) -> None:  # Ctrl-C arrives while it waits
+        assert 0.5 <= seconds <= 60  # the interval is kept within its bounds
+        raise KeyboardInterrupt
+
+    out = io.StringIO()
+    with live.client() as lw:
+        code = cmd_queue(lw, argparse.Namespace(interval=0.01, times=0), out, interrupted)
+    assert code == 0 and out.getvalue().count("fit queue at") == 1
