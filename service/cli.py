@@ -1,4 +1,6 @@
-"""The ``likewise`` command: ``run`` (everything), ``worker`` (one fit worker), ``demo``."""
+"""The ``likewise`` command: ``run`` (everything), ``worker`` (one fit worker), ``demo``,
+and the operator commands over the HTTP API (``likewise_client/ops.py``: ``metrics``,
+``versions``, ``explain``, ``activate``, ``rollback``, ``queue``, ``follow``, ``prune``)."""
 
 from __future__ import annotations
 
@@ -61,6 +63,9 @@ def build_parser() -> argparse.ArgumentParser:
     p_demo.add_argument("--weeks", type=int, default=16, help="labelled batches to post")
     p_demo.add_argument("--seed", type=int, default=7, help="seed of the invented data")
     p_demo.set_defaults(func=_cmd_demo)
+    from likewise_client.ops import add_commands
+
+    add_commands(sub)
     return parser
 
 

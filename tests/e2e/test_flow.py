@@ -15,8 +15,6 @@ import socket
 import subprocess
 import sys
 import time
-import urllib.error
-import urllib.request
 from pathlib import Path
 
 import numpy as np
@@ -25,6 +23,7 @@ import redis
 from sklearn.cluster import KMeans
 from sklearn.metrics import adjusted_rand_score
 
+from likewise_client import NO_RETRY, Client, Unreachable
 from tests.datasets import load_open, make_batches, split_pool
 
 START_TIMEOUT = 60.0
@@ -38,26 +37,13 @@ def _free_port() -> int:
         return int(s.getsockname()[1])
 
 
-class Http:
-    def __init__(self, base: str, token: str | None = TOKEN) -> None:
-        self.base, self.token = base, token
-
-    def __call__(self, method: str, path: str, body=None):
-        data = None if body is None else json.dumps(body).encode()
-        req = urllib.request.Request(self.base + path, data=data, method=method)
-        if self.token:
-            req.add_header("Authorization", f"Bearer {self.token}")
-        if data is not None:
-            req.add_header("Content-Type", "application/json")
-        try:
-            with urllib.request.urlopen(req, timeout=30) as resp:
-                raw = resp.read()
-                return resp.status, (json.loads(raw) if raw else None), dict(resp.headers)
-        except urllib.error.HTTPError as exc:
-            raw = exc.read()
-            return exc.code, (json.loads(raw) if raw else None), dict(exc.headers)
-        except (urllib.error.URLError, ConnectionError):
-            return None, None, {}
+def _ready(base: str) -> bool:
+    """/readyz answers 200 (asked once; not serving yet is not an error here)."""
+    try:
+        with Client(base, retry=NO_RETRY) as anon:
+            return anon.ready()[0]
+    except Unreachable:
+        return False
 
 
 def _wait(predicate, timeout: float, what: str, proc: subprocess.Popen | None = None):
@@ -83,8 +69,7 @@ def _start(
     proc = subprocess.Popen([sys.executable, "-m", "service.cli", "run"], env=full,
                             stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
     base = f"http://127.0.0.1:{port}"
-    anon = Http(base, None)
-    _wait(lambda: anon("GET", "/readyz")[0] == 200, START_TIMEOUT, "/readyz", proc)
+    _wait(lambda: _ready(base), START_TIMEOUT, "/readyz", proc)
     return proc, base
 
 
@@ -149,31 +134,23 @@ def _raw_get(base: str, path: str, headers: dict[str, str]) -> tuple[int, dict]:
         conn.close()
 
 
-def _fit(http: Http, name: str, body: dict) -> dict:
-    status, fit, headers = http("POST", f"/v1/metrics/{name}/fits", body)
+def _fit(http: Client, name: str, body: dict) -> dict:
+    status, fit, headers = http.request("POST", f"/v1/metrics/{name}/fits", body)
     assert status == 202, fit
     assert headers.get("Location") == f"/v1/fits/{fit['fit_id']}"
-
-    def done():
-        s, f, _ = http("GET", f"/v1/fits/{fit['fit_id']}")
-        return f if s == 200 and f["status"] in ("succeeded", "failed") else None
-
-    result = _wait(done, FIT_TIMEOUT, f"fit {fit['fit_id']}")
+    result = http.wait_for_fit(fit["fit_id"], timeout=FIT_TIMEOUT, interval=0.2)
     assert result["status"] == "succeeded", result
     return result
 
 
-def _post_batch(http: Http, name: str, features: list[str], X: np.ndarray, y: np.ndarray):
-    status, body, _ = http("POST", f"/v1/metrics/{name}/batches",
-                           {"columns": features, "rows": X.tolist(), "groups": y.tolist()})
-    assert status == 201, body
-    return body
+def _post_batch(http: Client, name: str, features: list[str], X: np.ndarray, y: np.ndarray):
+    return http.post_batch(name, X, y, columns=features)  # raises unless 201
 
 
 @pytest.mark.timeout(600)
 def test_whole_flow_through_the_launcher(settings, tmp_path):
     proc, base = _start(launcher_env(settings), tmp_path)
-    http = Http(base)
+    http = Client(base, TOKEN)
     try:
         rng = np.random.default_rng(2026)
         X, y = load_open("digits")
@@ -182,13 +159,13 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
         train = make_batches(Xf, yf, 26, rng)
         held_out = make_batches(Xs, ys, 4, rng, classes_per_batch=(3, 5))
 
-        assert http("PUT", "/v1/metrics/digits", {"features": features})[0] == 201
+        assert http.request("PUT", "/v1/metrics/digits", {"features": features})[0] == 201
         for Xb, yb in train[:20]:
             _post_batch(http, "digits", features, Xb, yb)
 
         first = _fit(http, "digits", {})
         assert first["version"] == 1
-        status, metric, _ = http("GET", "/v1/metrics/digits")
+        status, metric, _ = http.request("GET", "/v1/metrics/digits")
         assert status == 200 and metric["active_version"] == 1 and metric["batches"] == 20
 
         # held-out batches from the disjoint pool: the learned metric beats Euclidean
@@ -196,7 +173,7 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
         learned, euclidean = [], []
         for Xh, yh in held_out:
             k = len(np.unique(yh))
-            status, out, _ = http("POST", "/v1/metrics/digits/groupings",
+            status, out, _ = http.request("POST", "/v1/metrics/digits/groupings",
                                   {"columns": features, "rows": Xh.tolist(), "k": k})
             assert status == 200 and out["version"] == 1, out
             learned.append(adjusted_rand_score(yh, out["labels"]))
@@ -210,19 +187,19 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
             _post_batch(http, "digits", features, Xb, yb)
         second = _fit(http, "digits", {"activate": "always"})
         assert second["version"] == 2
-        assert http("GET", "/v1/metrics/digits")[1]["active_version"] == 2
+        assert http.request("GET", "/v1/metrics/digits")[1]["active_version"] == 2
 
         # roll back to version 1
-        status, body, _ = http("PUT", "/v1/metrics/digits/active",
+        status, body, _ = http.request("PUT", "/v1/metrics/digits/active",
                                {"version": 1, "reason": "e2e roll back"})
         assert status == 200, body
         Xh, yh = held_out[0]
-        status, out, _ = http("POST", "/v1/metrics/digits/groupings",
+        status, out, _ = http.request("POST", "/v1/metrics/digits/groupings",
                               {"columns": features, "rows": Xh.tolist(),
                                "k": len(np.unique(yh))})
         assert status == 200 and out["version"] == 1
 
-        history = http("GET", "/v1/metrics/digits/history")[1]["history"]
+        history = http.request("GET", "/v1/metrics/digits/history")[1]["history"]
         moves = [(h["from"], h["to"]) for h in history]
         assert moves == [(None, 1), (1, 2), (2, 1)]
         rollback = history[-1]
@@ -240,7 +217,7 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
         status, problem = _raw_get(base, "/v1/metrics", {"X-Big": "y" * 9000})
         assert status in (400, 431) and problem["status"] == status, problem
 
-        status, queues, _ = http("GET", "/v1/queues")
+        status, queues, _ = http.request("GET", "/v1/queues")
         assert status == 200
         assert any(w["state"] for w in queues["workers"])
     finally:
@@ -259,10 +236,10 @@ def test_embedded_redis_token_file_and_persistence(tmp_path):
     token_file = tmp_path / "admin-token"
     try:
         assert token_file.stat().st_mode & 0o777 == 0o600
-        http = Http(base, token_file.read_text().strip())
-        assert http("GET", "/v1/metrics")[0] == 200
-        assert Http(base, "wrong")("GET", "/v1/metrics")[0] == 401
-        assert http("PUT", "/v1/metrics/kept", {"features": ["a", "b"]})[0] == 201
+        http = Client(base, token_file.read_text().strip())
+        assert http.request("GET", "/v1/metrics")[0] == 200
+        assert Client(base, "wrong").request("GET", "/v1/metrics")[0] == 401
+        assert http.request("PUT", "/v1/metrics/kept", {"features": ["a", "b"]})[0] == 201
         # the embedded Redis wants its generated password, and its files are private:
         # the append-only file holds the raw batches
         redis_dir = tmp_path / "redis"
@@ -284,18 +261,18 @@ def test_embedded_redis_token_file_and_persistence(tmp_path):
         served = redis.Redis(port=port, password=password, socket_timeout=5)
         redis_pid = int(served.info("server")["process_id"])
         os.kill(redis_pid, signal.SIGKILL)
-        _wait(lambda: http("GET", "/v1/metrics/kept")[0] == 200, 30, "Redis back", proc)
+        _wait(lambda: http.request("GET", "/v1/metrics/kept")[0] == 200, 30, "Redis back", proc)
         assert proc.poll() is None
         assert "redis exited with code -9; started it again" in (
             tmp_path / "launcher.log").read_text()
-        assert http("GET", "/v1/metrics/kept")[1]["features"] == ["a", "b"]
+        assert http.request("GET", "/v1/metrics/kept")[1]["features"] == ["a", "b"]
     finally:
         assert _stop(proc) == 0
     # a second start reuses the token and finds the metric: the append-only file kept it
     proc2, base2 = _start(env, tmp_path)
     try:
-        http = Http(base2, token_file.read_text().strip())
-        status, body, _ = http("GET", "/v1/metrics/kept")
+        http = Client(base2, token_file.read_text().strip())
+        status, body, _ = http.request("GET", "/v1/metrics/kept")
         assert status == 200 and body["features"] == ["a", "b"]
     finally:
         assert _stop(proc2) == 0
@@ -320,10 +297,10 @@ def _worker_pids(launcher_pid: int) -> set[int]:
 @pytest.mark.timeout(300)
 def test_a_killed_fit_worker_is_started_again(settings, tmp_path):
     proc, base = _start(launcher_env(settings), tmp_path)
-    http = Http(base)
+    http = Client(base, TOKEN)
 
     def worker_names() -> set[str]:
-        status, queues, _ = http("GET", "/v1/queues")
+        status, queues, _ = http.request("GET", "/v1/queues")
         assert status == 200
         return {w["name"] for w in queues["workers"]}
 
@@ -336,7 +313,7 @@ def test_a_killed_fit_worker_is_started_again(settings, tmp_path):
         # the replacement registers under a fresh name (the killed one may linger until
         # its registration expires)
         _wait(lambda: worker_names() - before, 30, "the new worker to register", proc)
-        assert http("GET", "/readyz")[0] == 200
+        assert http.request("GET", "/readyz")[0] == 200
     finally:
         assert _stop(proc) == 0
     assert _children_gone(proc.pid)
@@ -348,20 +325,20 @@ def test_sigterm_during_a_fit_then_a_new_start_finishes_it(settings, tmp_path):
     ends — succeeded, or failed with a reason — and is never left running."""
     env = launcher_env(settings)
     proc, base = _start(env, tmp_path)
-    http = Http(base)
+    http = Client(base, TOKEN)
     rng = np.random.default_rng(7)
     X, y = load_open("digits")
     features = [f"px{i}" for i in range(X.shape[1])]
-    assert http("PUT", "/v1/metrics/digits", {"features": features})[0] == 201
+    assert http.request("PUT", "/v1/metrics/digits", {"features": features})[0] == 201
     for Xb, yb in make_batches(X, y, 24, rng):
         _post_batch(http, "digits", features, Xb, yb)
     # a deliberately long fit: every learner over many α and folds
     alphas = [10.0 ** e for e in np.linspace(-4, 3, 32)]
-    status, fit, _ = http("POST", "/v1/metrics/digits/fits",
+    status, fit, _ = http.request("POST", "/v1/metrics/digits/fits",
                           {"alphas": alphas, "n_folds": 20, "k_max": 20})
     assert status == 202, fit
     try:
-        _wait(lambda: http("GET", f"/v1/fits/{fit['fit_id']}")[1]["status"] == "running",
+        _wait(lambda: http.request("GET", f"/v1/fits/{fit['fit_id']}")[1]["status"] == "running",
               60, "the fit to start", proc)
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=60) == 0
@@ -371,10 +348,10 @@ def test_sigterm_during_a_fit_then_a_new_start_finishes_it(settings, tmp_path):
     assert _children_gone(proc.pid)
     proc2, base2 = _start(env, tmp_path)
     try:
-        http2 = Http(base2)
+        http2 = Client(base2, TOKEN)
 
         def ended():
-            body = http2("GET", f"/v1/fits/{fit['fit_id']}")[1]
+            body = http2.request("GET", f"/v1/fits/{fit['fit_id']}")[1]
             return body if body["status"] in ("succeeded", "failed") else None
 
         out = _wait(ended, 120, "the interrupted fit to end", proc2)

@@ -8,20 +8,28 @@ own illustration (two four-record batches), not a measurement.
 
 from __future__ import annotations
 
+import os
 import re
 import subprocess
+import sys
 from pathlib import Path
 
 import pytest
 
 from .test_flow import _start, _stop, launcher_env
 
-README = Path(__file__).resolve().parents[2] / "README.md"
+ROOT = Path(__file__).resolve().parents[2]
+README = ROOT / "README.md"
+
+
+def _section(title: str, next_title: str) -> str:
+    text = README.read_text()
+    return text[text.index(f"## {title}"):text.index(f"## {next_title}")]
 
 
 def _walkthrough_blocks() -> list[str]:
     text = README.read_text()
-    section = text[text.index("## Walkthrough"):text.index("## Running it for real")]
+    section = text[text.index("## Walkthrough"):text.index("## From Python")]
     return re.findall(r"```sh\n(.*?)```", section, flags=re.S)
 
 
@@ -49,6 +57,7 @@ def test_walkthrough_commands_work_as_written(settings, tmp_path):
         assert out.returncode == 0, out.stdout[-2000:] + out.stderr[-2000:]
         assert '"history"' in out.stdout and '"labels"' in out.stdout
         assert "likewise_http_requests_total" in out.stdout
+        _python_and_cli_sections_work(base, tmp_path)
     finally:
         assert _stop(proc) == 0
 
@@ -64,3 +73,31 @@ print(sum(f["status"] in ("queued", "running") for f in fits))')
 done
 [ "$live" = "0" ]
 """
+
+
+def _python_and_cli_sections_work(base: str, cwd: Path) -> None:
+    """The "From Python" example, then the "Operating from the command line" commands
+    (``.venv/bin/likewise`` run as this interpreter's ``-m service.cli``), on the state
+    the walkthrough left."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    for key in [k for k in env if k.startswith("LIKEWISE_")]:
+        del env[key]  # as on an operator's shell: the token comes from var/admin-token
+    (code,) = re.findall(r"```python\n(.*?)```", _section("From Python", "Operating"),
+                         flags=re.S)
+    out = subprocess.run([sys.executable, "-c", code.replace("http://127.0.0.1:8000", base)],
+                         cwd=cwd, env=env, capture_output=True, text=True, timeout=180)
+    assert out.returncode == 0, out.stdout[-2000:] + out.stderr[-2000:]
+    assert "succeeded 100%" in out.stdout and "version 1" in out.stdout
+    assert "422" in out.stdout  # the refused batch names its fields
+
+    (block,) = re.findall(r"```sh\n(.*?)```", _section("Operating", "Running it for real"),
+                          flags=re.S)
+    script = "set -euo pipefail\n" + block.replace(
+        ".venv/bin/likewise", f"{sys.executable} -m service.cli")
+    out = subprocess.run(["bash", "-c", script], cwd=cwd, capture_output=True, text=True,
+                         timeout=120, env={**env, "LIKEWISE_URL": base})
+    assert out.returncode == 0, out.stdout[-2000:] + out.stderr[-2000:]
+    (cwd / "cli-session.txt").write_text(out.stdout)  # kept with the test's files
+    for text in ("parcels", "held-out ARI", "hub_minutes", "version 1 -> 2",
+                 "version 2 -> 1", "fit queue at", "dry run: would delete 2 batches"):
+        assert text in out.stdout, (text, out.stdout[-3000:])

@@ -1,0 +1,20 @@
+"""A Python client for the likewise service (HTTP only: it imports nothing of the service).
+
+>>> from likewise_client import Client
+>>> with Client("http://127.0.0.1:8000", token) as lw:          # doctest: +SKIP
+...     lw.put_metric("shipments", ["peak_temp_c", "minutes_above_8c", "trip_km"])
+...     lw.post_batch("shipments", frame, groups="cause")
+...     fit = lw.wait_for_fit(lw.start_fit("shipments")["fit_id"], timeout=120)
+
+See the README's "From Python" section.
+"""
+
+from .bodies import FORMATS, BodyFormat, Table, to_table
+from .client import ENDED, NO_RETRY, Answer, Client, RetryPolicy, new_key
+from .errors import ClientError, FieldError, FitTimeout, ProblemError, Unreachable
+
+__all__ = [
+    "ENDED", "FORMATS", "NO_RETRY", "Answer", "BodyFormat", "Client", "ClientError",
+    "FieldError", "FitTimeout", "ProblemError", "RetryPolicy", "Table", "Unreachable",
+    "new_key", "to_table",
+]

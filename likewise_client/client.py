@@ -1,0 +1,330 @@
+"""The HTTP client: every endpoint of openapi.yaml, retries that never duplicate data.
+
+Retries: a connection error, a timeout, a dropped connection, a 503 or a 429 is tried
+again (up to ``RetryPolicy.attempts`` tries in all) after an exponentially growing,
+fully jittered wait (tenacity's ``wait_random_exponential``), at least the service's
+``Retry-After`` and at most ``RetryPolicy.max_wait``. Every create — ``put_metric``,
+``post_batch``, ``start_fit``, ``retry_fit``, ``activate`` — sends an
+``Idempotency-Key`` generated once per call and sent again on every retry: if the first
+try did reach the service, the retry gets the first answer back (``Answer-Replayed:
+true``) and nothing is stored twice.
+"""
+
+from __future__ import annotations
+
+import json as jsonlib
+import random
+import time
+import uuid
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any, NamedTuple
+
+import httpx
+from tenacity import (
+    RetryCallState,
+    Retrying,
+    retry_if_exception_type,
+    retry_if_result,
+    stop_after_attempt,
+)
+
+from . import bodies
+from .errors import FitTimeout, ProblemError, Unreachable
+
+ENDED = frozenset({"succeeded", "failed"})  # a fit in one of these will not change again
+IDEMPOTENCY_HEADER = "Idempotency-Key"
+REPLAY_HEADER = "Answer-Replayed"
+Json = dict[str, Any]
+
+
+@dataclass(frozen=True)
+class RetryPolicy:
+    """How hard to try: ``attempts`` tries in all; waits grow from ``first_wait``
+    (random in [0, first_wait·2ⁿ], full jitter) up to ``max_wait`` seconds."""
+
+    attempts: int = 5
+    first_wait: float = 0.25
+    max_wait: float = 8.0
+    statuses: frozenset[int] = frozenset({429, 503})
+
+    def wait(self, state: RetryCallState) -> float:
+        n = state.attempt_number  # tries made so far (≥ 1)
+        jittered = random.uniform(0.0, min(self.max_wait, self.first_wait * 2 ** (n - 1)))
+        outcome = state.outcome
+        asked = 0.0
+        if outcome is not None and not outcome.failed:
+            asked = _retry_after(outcome.result().headers)
+        return min(self.max_wait, max(jittered, asked))
+
+
+NO_RETRY = RetryPolicy(attempts=1)
+
+
+def _retry_after(headers: httpx.Headers) -> float:
+    try:
+        return max(0.0, float(headers.get("Retry-After", "0")))
+    except ValueError:  # an HTTP date: not sent by this service; fall back to backoff
+        return 0.0
+
+
+class Answer(NamedTuple):
+    """One answer as it came: status, parsed body (JSON, text or None), headers."""
+
+    status: int
+    body: Any
+    headers: httpx.Headers
+
+    @property
+    def replayed(self) -> bool:
+        """True when the service replayed the first answer to an Idempotency-Key."""
+        return self.headers.get(REPLAY_HEADER) == "true"
+
+
+def _parse(resp: httpx.Response) -> Any:
+    if not resp.content:
+        return None
+    kind = resp.headers.get("Content-Type", "").split(";")[0].strip()
+    if kind == "application/json" or kind.endswith("+json"):
+        try:
+            return resp.json()
+        except ValueError:
+            pass
+    return resp.text
+
+
+def new_key() -> str:
+    """A fresh Idempotency-Key (printable ASCII, unique per logical call)."""
+    return f"lwc-{uuid.uuid4().hex}"
+
+
+class Client:
+    """A session with one likewise service.
+
+    ``Client("http://127.0.0.1:8000", token)``; use it as a context manager or call
+    :meth:`close`. Methods return the service's JSON as dicts and lists; an error
+    answer raises :class:`ProblemError`, a service that cannot be reached after every
+    retry :class:`Unreachable`.
+    """
+
+    def __init__(self, base_url: str, token: str | None = None, *, timeout: float = 60.0,
+                 retry: RetryPolicy | None = None,
+                 transport: httpx.BaseTransport | None = None) -> None:
+        self.base_url = base_url.rstrip("/")
+        self.retry = retry or RetryPolicy()
+        headers = {"User-Agent": "likewise-client/0.1"}
+        if token:
+            headers["Authorization"] = f"Bearer {token}"
+        self._http = httpx.Client(base_url=self.base_url, headers=headers,
+                                  timeout=timeout, transport=transport)
+
+    def close(self) -> None:
+        self._http.close()
+
+    def __enter__(self) -> Client:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # ------------------------------------------------------------------ low level
+    def request(self, method: str, path: str, json: Any = None, *,
+                content: bytes | None = None, content_type: str | None = None,
+                params: Mapping[str, Any] | None = None,
+                headers: Mapping[str, str] | None = None,
+                idempotency_key: str | None = None,
+                retry: RetryPolicy | None = None) -> Answer:
+        """Send one logical request (retried as the policy says) and return the answer
+        whatever its status. ``json`` is encoded here; ``content`` is sent as it is."""
+        sent = dict(headers or {})
+        if idempotency_key is not None:
+            sent[IDEMPOTENCY_HEADER] = idempotency_key
+        if json is not None:
+            content, content_type = _dumps(json), bodies.JSON
+        if content_type is not None:
+            sent["Content-Type"] = content_type
+        policy = retry or self.retry
+        tries = 0
+
+        def once() -> Answer:
+            nonlocal tries
+            tries += 1
+            resp = self._http.request(method, path, content=content, params=params,
+                                      headers=sent)
+            answer = Answer(resp.status_code, _parse(resp), resp.headers)
+            if tries > 1 and method == "DELETE" and answer.status == 404:
+                # the first try's DELETE went through; only its answer was lost
+                return Answer(204, None, resp.headers)
+            return answer
+
+        def again(answer: Answer) -> bool:
+            if answer.status in policy.statuses:
+                return True
+            # a resent create whose first try the service is still handling
+            return (idempotency_key is not None and tries > 1 and answer.status == 409
+                    and IDEMPOTENCY_HEADER in str((answer.body or {}).get("detail", "")))
+
+        retrying = Retrying(
+            stop=stop_after_attempt(max(1, policy.attempts)),
+            wait=policy.wait,
+            retry=(retry_if_exception_type(httpx.TransportError) | retry_if_result(again)),
+            retry_error_callback=lambda state: state.outcome.result(),  # last answer
+        )
+        try:
+            return retrying(once)
+        except httpx.TransportError as exc:
+            raise Unreachable(f"cannot reach {self.base_url} ({exc or type(exc).__name__}); "
+                              f"{method} {path} tried {tries} times") from exc
+
+    def _call(self, method: str, path: str, json: Any = None, **kwargs: Any) -> Any:
+        """``request`` that raises :class:`ProblemError` on an error answer."""
+        answer = self.request(method, path, json, **kwargs)
+        if answer.status >= 400:
+            raise _problem(answer, method, path)
+        return answer.body
+
+    def _create(self, method: str, path: str, json: Any = None,
+                idempotency_key: str | None = None, **kwargs: Any) -> Any:
+        return self._call(method, path, json, idempotency_key=idempotency_key or new_key(),
+                          **kwargs)
+
+    # ------------------------------------------------------------------ metrics
+    def list_metrics(self) -> list[Json]:
+        return self._call("GET", "/v1/metrics")["metrics"]
+
+    def get_metric(self, name: str) -> Json:
+        return self._call("GET", f"/v1/metrics/{name}")
+
+    def put_metric(self, name: str, features: Sequence[str], description: str | None = None,
+                   *, idempotency_key: str | None = None) -> Json:
+        """Create the metric, or update its description (and features while it has no
+        batches)."""
+        body: Json = {"features": list(features)}
+        if description is not None:
+            body["description"] = description
+        return self._create("PUT", f"/v1/metrics/{name}", body, idempotency_key)
+
+    def delete_metric(self, name: str) -> None:
+        self._call("DELETE", f"/v1/metrics/{name}")
+
+    # ------------------------------------------------------------------ batches
+    def post_batch(self, metric: str, data: Any, groups: Any, *,
+                   columns: Sequence[str] | None = None, allow_duplicate: bool = False,
+                   content_type: str = bodies.JSON,
+                   idempotency_key: str | None = None) -> Json:
+        """Post one labelled batch.
+
+        ``data``: a pandas DataFrame, a list of dicts, or an array with ``columns``.
+        ``groups``: one label per record, or the name of the column holding them.
+        """
+        data, labels = bodies.split_groups(data, groups)
+        table = bodies.to_table(data, columns)
+        raw = bodies.encode(table, {"groups": labels}, content_type)
+        params = {"allow_duplicate": "true"} if allow_duplicate else None
+        return self._create("POST", f"/v1/metrics/{metric}/batches", None, idempotency_key,
+                            content=raw, content_type=content_type, params=params)
+
+    def list_batches(self, metric: str) -> list[Json]:
+        return self._call("GET", f"/v1/metrics/{metric}/batches")["batches"]
+
+    def get_batch(self, metric: str, batch_id: str) -> Json:
+        return self._call("GET", f"/v1/metrics/{metric}/batches/{batch_id}")
+
+    def delete_batch(self, metric: str, batch_id: str) -> None:
+        self._call("DELETE", f"/v1/metrics/{metric}/batches/{batch_id}")
+
+    # ------------------------------------------------------------------ fits
+    def start_fit(self, metric: str, *, idempotency_key: str | None = None,
+                  **params: Any) -> Json:
+        """Queue a fit (``method``, ``activate``, ``alphas``, ``n_folds``, ``k_max``,
+        ``max_rank``, ``seed``; all optional). Returns the fit, status ``queued``."""
+        return self._create("POST", f"/v1/metrics/{metric}/fits", params, idempotency_key)
+
+    def get_fit(self, fit_id: str) -> Json:
+        return self._call("GET", f"/v1/fits/{fit_id}")
+
+    def list_fits(self, metric: str | None = None, status: str | None = None) -> list[Json]:
+        params = {k: v for k, v in (("metric", metric), ("status", status)) if v}
+        return self._call("GET", "/v1/fits", params=params)["fits"]
+
+    def retry_fit(self, fit_id: str, *, idempotency_key: str | None = None) -> Json:
+        return self._create("POST", f"/v1/fits/{fit_id}/retry", None, idempotency_key)
+
+    def wait_for_fit(self, fit_id: str, timeout: float = 300.0, *,
+                     on_progress: Callable[[Json], None] | None = None,
+                     interval: float = 0.5) -> Json:
+        """Poll the fit until it ends (succeeded or failed) and return it; raise
+        :class:`FitTimeout` after ``timeout`` seconds. ``on_progress(fit)`` is called
+        after every poll. ``interval`` is kept within [0.05, 10] seconds."""
+        interval = min(10.0, max(0.05, interval))
+        deadline = time.monotonic() + timeout
+        while True:
+            fit = self.get_fit(fit_id)
+            if on_progress is not None:
+                on_progress(fit)
+            if fit["status"] in ENDED:
+                return fit
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise FitTimeout(fit, timeout)
+            time.sleep(min(interval, left))
+
+    # ------------------------------------------------------------------ versions
+    def list_versions(self, metric: str) -> list[Json]:
+        return self._call("GET", f"/v1/metrics/{metric}/versions")["versions"]
+
+    def get_version(self, metric: str, version: int) -> Json:
+        return self._call("GET", f"/v1/metrics/{metric}/versions/{int(version)}")
+
+    def activate(self, metric: str, version: int, reason: str = "", *,
+                 idempotency_key: str | None = None) -> Json:
+        """Make ``version`` the active one (roll back or forward), recorded with
+        ``reason`` in the history."""
+        return self._create("PUT", f"/v1/metrics/{metric}/active",
+                            {"version": int(version), "reason": reason}, idempotency_key)
+
+    def history(self, metric: str) -> list[Json]:
+        return self._call("GET", f"/v1/metrics/{metric}/history")["history"]
+
+    # ------------------------------------------------------------------ groupings
+    def group(self, metric: str, data: Any, k: int | str | None = "auto", *,
+              version: int | None = None, columns: Sequence[str] | None = None,
+              content_type: str = bodies.JSON) -> Json:
+        """Group records (a DataFrame, a list of dicts, or an array with ``columns``)
+        with the active version, or ``version``; ``k="auto"`` lets its rule choose."""
+        members: Json = {"k": k}
+        if version is not None:
+            members["version"] = int(version)
+        raw = bodies.encode(bodies.to_table(data, columns), members, content_type)
+        return self._call("POST", f"/v1/metrics/{metric}/groupings", content=raw,
+                          content_type=content_type)
+
+    # ------------------------------------------------------------------ operations
+    def queues(self) -> Json:
+        """Queue counts (waiting, fitting, failed, done, oldest wait) and workers."""
+        return self._call("GET", "/v1/queues")
+
+    def health(self) -> Json:
+        return self._call("GET", "/healthz")
+
+    def ready(self) -> tuple[bool, Json]:
+        """Readiness, asked once (a 503 here is an answer, not a reason to retry):
+        ``(ready, body)`` where the body's ``checks`` say why."""
+        answer = self.request("GET", "/readyz", retry=NO_RETRY)
+        if answer.status not in (200, 503):
+            raise _problem(answer, "GET", "/readyz")
+        return answer.status == 200, answer.body
+
+    def prometheus(self) -> str:
+        """The Prometheus text exposition of ``/metrics``."""
+        return self._call("GET", "/metrics")
+
+
+def _problem(answer: Answer, method: str, path: str) -> ProblemError:
+    body = answer.body if isinstance(answer.body, dict) else {
+        "title": "error", "detail": str(answer.body or "")}
+    return ProblemError(answer.status, body, method, path)
+
+
+def _dumps(value: Any) -> bytes:
+    return jsonlib.dumps(value, allow_nan=False, separators=(",", ":")).encode()
