@@ -361,14 +361,16 @@ def build_reference(metric: FittedMetric, batches: Sequence[tuple[np.ndarray, Gr
 
 def _scores(ref: np.ndarray, live: np.ndarray, count: int, shift: float | None = None
             ) -> dict[str, Any]:
-    value = float(psi(ref, live))
-    excess = max(value - float(psi_noise(ref, live)), 0.0)
-    ks = float(ks_from_counts(ref, live))
-    out: dict[str, Any] = {"psi": value, "psi_excess": excess, "ks": ks,
-                           "ks_pvalue": ks_pvalue(ks, int(live.sum()), int(ref.sum()))}
+    """Scores of one histogram (None throughout when no live value was counted)."""
+    out: dict[str, Any] = dict.fromkeys(("psi", "psi_excess", "ks", "ks_pvalue"))
+    if live.sum() > 0:
+        value = float(psi(ref, live))
+        ks = float(ks_from_counts(ref, live))
+        out.update(psi=value, psi_excess=max(value - float(psi_noise(ref, live)), 0.0),
+                   ks=ks, ks_pvalue=ks_pvalue(ks, int(live.sum()), int(ref.sum())))
     if shift is not None:
-        out["mean_shift"] = shift if np.isfinite(shift) else None
-    out["verdict"] = verdict(count, excess, shift)
+        out["mean_shift"] = shift if np.isfinite(shift) and count > 0 else None
+    out["verdict"] = verdict(count, out["psi_excess"] or 0.0, shift if count > 0 else None)
     return out
 
 

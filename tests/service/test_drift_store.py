@@ -41,13 +41,14 @@ def test_buckets_merge_moments_like_numpy_and_add_counts(ctx: Context) -> None:
 def test_a_full_bucket_stays_within_the_stated_memory_bound(ctx: Context) -> None:
     """README, "Watching for drift": at most 100 bytes per field plus 1 KiB per bucket
     (measured with MEMORY USAGE; Redis's per-entry overhead, our bound)."""
-    d = 13  # wine's features; every bin of every histogram non-zero
-    sizes = {"f": d * 14, "m": 22, "d": 22, "g": 18}
-    counts = {p: np.arange(1, n + 1) for p, n in sizes.items()}
-    ctx.storage.drift.add("m", "u", 1, 7, 3600, 10, np.linspace(-1e3, 1e3, d) / 3,
-                          np.linspace(1, 1e6, d) / 7, counts)
-    key = ctx.storage.keys.drift_bucket("m", "u", 1, 7)
-    fields = bucket_fields(d, sizes)
-    assert ctx.redis.hlen(key) == fields
-    used = ctx.redis.memory_usage(key, samples=0)
-    assert used <= 100 * fields + 1024, (used, fields)
+    for d in (13, 100):  # wine's features, and a hash too large for a compact encoding
+        sizes = {"f": d * 14, "m": 22, "d": 22, "g": 18}  # every bin non-zero
+        counts = {p: np.arange(1, n + 1) * 1000 for p, n in sizes.items()}
+        ctx.storage.drift.add("m", "u", 1, d, 3600, 10, np.linspace(-1e3, 1e3, d) / 3,
+                              np.linspace(1, 1e6, d) / 7, counts)
+        key = ctx.storage.keys.drift_bucket("m", "u", 1, d)
+        fields = bucket_fields(d, sizes)
+        assert fields == 16 * d + 64  # the README's count
+        assert ctx.redis.hlen(key) == fields
+        used = ctx.redis.memory_usage(key, samples=0)
+        assert used <= 100 * fields + 1024, (d, used, fields)
