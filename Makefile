@@ -27,6 +27,7 @@ bench: $(STAMP)
 	$(BIN)/python bench/fit.py
 	$(BIN)/python bench/few_batches.py
 	$(BIN)/python bench/fit_latency.py
+	$(BIN)/python bench/drift_overhead.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

@@ -58,6 +58,15 @@ def _redis_url() -> tuple[str, object | None]:
     return f"unix://{server.socket_file}?db=0", server
 
 
+def clean_up(ctx: Context, prefix: str, server: object | None) -> None:
+    """Delete the run's keys (ours and its queue's); stop an embedded server."""
+    for pattern in (f"{prefix}:*", f"rq:*{prefix}*"):
+        for key in ctx.redis.scan_iter(match=pattern):
+            ctx.redis.delete(key)
+    if server is not None:
+        server.shutdown()
+
+
 def _until(predicate, timeout: float, what: str):
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
@@ -111,12 +120,7 @@ def main(trials: int) -> None:
     finally:
         worker.terminate()
         worker.wait(timeout=30)
-        for key in ctx.redis.scan_iter(match=f"{prefix}:*"):
-            ctx.redis.delete(key)
-        for key in ctx.redis.scan_iter(match=f"rq:*{prefix}*"):
-            ctx.redis.delete(key)
-        if server is not None:
-            server.shutdown()
+        clean_up(ctx, prefix, server)
     print(f"Fit latency, 2 iris batches, {trials} trial(s), one idle worker; "
           f"load average {os.getloadavg()[0]:.2f}")
     print(f"{'trial':>5} {'in process s':>13} {'wait to start s':>16} {'request→version s':>18}")

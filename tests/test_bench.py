@@ -36,3 +36,11 @@ def test_fit_latency_bench_runs_one_trial() -> None:
         capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
     ).stdout
     assert "request→version" in out and "target:" in out
+
+
+def test_drift_overhead_bench_runs_quick() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "drift_overhead.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "without ms" in out and "ratio" in out and "target:" in out

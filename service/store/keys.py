@@ -21,8 +21,8 @@ Key layout (``P`` = the deployment's key prefix; metric names match
     P:metric:{name}:drift:{uid}:{n}:{hour}
                                     hash   drift summary of the records grouped with version
                                            n in one UTC hour (hours since the epoch): n,
-                                           requests, mean:{j}, m2:{j} (per feature), and
-                                           bin counts f:{flat}, m:{b}, d:{b}, g:{b}; expires
+                                           requests, mean, m2 (per feature) and counts
+                                           (every bin), comma-separated text; expires
                                            LIKEWISE_DRIFT_HOURS after its hour ends; {uid}
                                            is the metric's, so a re-created metric starts afresh
     P:metric:{name}:active          string active version number

@@ -10,7 +10,6 @@ from numpy.testing import assert_allclose
 
 from service.context import Context
 from service.core.drift import Moments
-from service.store.drift import bucket_fields
 from tests.datasets import load_open
 
 
@@ -21,8 +20,10 @@ def test_buckets_merge_moments_like_numpy_and_add_counts(ctx: Context) -> None:
     for i, part in enumerate(parts):
         m = Moments.of(part)
         store.add("m", "u1", 1, 100, ttl, m.count, m.mean, m.m2,
-                  {"f": np.array([[i, 0], [1, 2]]), "m": np.array([0, 0, 5])})
-    store.add("m", "u1", 1, 101, ttl, 1, X[0], np.zeros(X.shape[1]), {"f": np.ones((2, 2))})
+                  {"f": np.array([[i, 0], [1, 2]]), "m": np.array([0, 0, 5]),
+                   "d": np.zeros(2)})
+    store.add("m", "u1", 1, 101, ttl, 1, X[0], np.zeros(X.shape[1]),
+              {"f": np.ones((2, 2)), "m": np.zeros(3), "d": np.ones(2)})
     sizes = {"f": 4, "m": 3, "d": 2}
     got = store.buckets("m", "u1", 1, [99, 100, 101], sizes)
     assert [b.hour for b in got] == [100, 101]
@@ -39,16 +40,16 @@ def test_buckets_merge_moments_like_numpy_and_add_counts(ctx: Context) -> None:
 
 
 def test_a_full_bucket_stays_within_the_stated_memory_bound(ctx: Context) -> None:
-    """README, "Watching for drift": at most 100 bytes per field plus 1 KiB per bucket
-    (measured with MEMORY USAGE; Redis's per-entry overhead, our bound)."""
-    for d in (13, 100):  # wine's features, and a hash too large for a compact encoding
-        sizes = {"f": d * 14, "m": 22, "d": 22, "g": 18}  # every bin non-zero
-        counts = {p: np.arange(1, n + 1) * 1000 for p, n in sizes.items()}
-        ctx.storage.drift.add("m", "u", 1, d, 3600, 10, np.linspace(-1e3, 1e3, d) / 3,
-                              np.linspace(1, 1e6, d) / 7, counts)
+    """README, "Watching for drift": a bucket of d features takes at most
+    ``250·d + 2048`` bytes (measured with MEMORY USAGE; our bound)."""
+    for d in (4, 13, 100, 1000):
+        sizes = {"f": d * 14, "m": 22, "d": 22, "g": 18}
+        # every count at 10 digits, every double at full length: the longest text
+        counts = {p: np.full(n, 9_999_999_999) for p, n in sizes.items()}
+        mean, m2 = -np.pi * np.logspace(-300, 300, d), np.pi * np.logspace(-300, 300, d)
+        for _ in range(2):  # the second write goes through the merge
+            ctx.storage.drift.add("m", "u", 1, d, 3600, 10, mean, m2, counts)
         key = ctx.storage.keys.drift_bucket("m", "u", 1, d)
-        fields = bucket_fields(d, sizes)
-        assert fields == 16 * d + 64  # the README's count
-        assert ctx.redis.hlen(key) == fields
+        assert ctx.redis.hlen(key) == 5
         used = ctx.redis.memory_usage(key, samples=0)
-        assert used <= 100 * fields + 1024, (d, used, fields)
+        assert used <= 250 * d + 2048, (d, used)
