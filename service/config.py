@@ -30,6 +30,7 @@ LIKEWISE_LEASE_SECONDS      lease_seconds (attempt alive)  10
 LIKEWISE_IDEMPOTENCY_HOURS  idempotency_hours (answers kept) 24
 LIKEWISE_LOG_FORMAT         (service/logs.py) ``json``|``text`` ``json``, ``text`` on a terminal
 LIKEWISE_LOG_LEVEL          (service/logs.py) log level    ``INFO``
+LIKEWISE_DRIFT_HOURS        drift_hours (hourly buckets kept) 72
 =========================== ============================== ===========================
 
 The two log variables are read by the entry points' logging setup
@@ -98,6 +99,7 @@ class Settings:
     warden_seconds: int = 5
     lease_seconds: int = 10
     idempotency_hours: int = 24
+    drift_hours: int = 72
 
     def __post_init__(self) -> None:
         if not self.key_prefix or any(c in self.key_prefix for c in " \t\r\n"):
@@ -107,7 +109,7 @@ class Settings:
         for name in ("fit_timeout", "max_batch_records", "max_batch_features", "max_groups",
                      "max_batch_bytes", "max_request_bytes", "workers", "web_workers",
                      "warden_seconds",
-                     "lease_seconds", "idempotency_hours"):
+                     "lease_seconds", "idempotency_hours", "drift_hours"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")
         if self.max_batch_features > MAX_FEATURES:

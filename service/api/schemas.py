@@ -194,6 +194,11 @@ class FitQuerySchema(_Strict):
     status = fields.String(validate=validate.OneOf(FIT_STATUSES))
 
 
+class DriftQuerySchema(_Strict):
+    version = fields.Integer(strict=False, validate=validate.Range(min=1))
+    since = fields.String(validate=validate.Length(min=1, max=64))
+
+
 # a \uD800-\uDFFF escape in the raw text: json.loads pairs the valid ones up, but keeps
 # an unpaired one as a lone surrogate, which is not Unicode text (Redis writes fail)
 _SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F][0-9a-fA-F]{2}")
