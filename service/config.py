@@ -27,6 +27,7 @@ LIKEWISE_WEB_WORKERS        web_workers (HTTP processes)   2
 LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
 LIKEWISE_WARDEN_SECONDS     warden_seconds (sweep period)  5
 LIKEWISE_LEASE_SECONDS      lease_seconds (attempt alive)  10
+LIKEWISE_STRANDED_SECONDS   stranded_seconds (a lost job)  60
 LIKEWISE_IDEMPOTENCY_HOURS  idempotency_hours (answers kept) 24
 LIKEWISE_LOG_FORMAT         (service/logs.py) ``json``|``text`` ``json``, ``text`` on a terminal
 LIKEWISE_LOG_LEVEL          (service/logs.py) log level    ``INFO``
@@ -98,6 +99,7 @@ class Settings:
     worker_seen_seconds: int = 60
     warden_seconds: int = 5
     lease_seconds: int = 10
+    stranded_seconds: int = 60
     idempotency_hours: int = 24
     drift_hours: int = 72
 
@@ -114,6 +116,8 @@ class Settings:
                 raise ValueError(f"{name} must be at least 1")
         if self.max_batch_features > MAX_FEATURES:
             raise ValueError(f"max_batch_features must be at most {MAX_FEATURES}")
+        if self.stranded_seconds < 0:
+            raise ValueError("stranded_seconds must be ≥ 0")
         if self.fit_retries < 0:
             raise ValueError("fit_retries must be ≥ 0")
 
