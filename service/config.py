@@ -23,7 +23,7 @@ LIKEWISE_MAX_REQUEST_BYTES  max_request_bytes              64 MiB
 LIKEWISE_HOST               host                           ``127.0.0.1``
 LIKEWISE_PORT               port                           8000
 LIKEWISE_WORKERS            workers                        1
-LIKEWISE_WEB_WORKERS        web_workers (HTTP processes)   2
+LIKEWISE_WEB_WORKERS        web_workers (HTTP processes)   cores + 1
 LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
 LIKEWISE_WARDEN_SECONDS     warden_seconds (sweep period)  5
 LIKEWISE_LEASE_SECONDS      lease_seconds (attempt alive)  10
@@ -95,7 +95,9 @@ class Settings:
     host: str = "127.0.0.1"
     port: int = 8000
     workers: int = 1
-    web_workers: int = 2
+    # one process more than cores: while each core parses a large body (JSON parsing
+    # holds a process's GIL), one process is still free for probes and small requests
+    web_workers: int = field(default_factory=lambda: (os.cpu_count() or 1) + 1)
     worker_seen_seconds: int = 60
     warden_seconds: int = 5
     lease_seconds: int = 10

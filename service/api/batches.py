@@ -9,7 +9,7 @@ from service.usecases import batches as uc
 from .deps import context, no_content, reply
 from .formats import read_table
 from .idempotency import idempotent
-from .schemas import BatchQuerySchema, BatchSchema
+from .schemas import BatchQuerySchema
 
 bp = Blueprint("batches", __name__)
 
@@ -17,7 +17,7 @@ bp = Blueprint("batches", __name__)
 @bp.post("/metrics/<name>/batches")
 @idempotent
 def add_batch(name: str) -> Response:
-    table, options = read_table(BatchSchema(), BatchQuerySchema())
+    table, options = read_table("batch", BatchQuerySchema())
     batch = uc.add_batch(context(), name, table, allow_duplicate=options["allow_duplicate"],
                          ignore_extra=options["ignore_extra_columns"])
     return reply(batch, 201, location=f"/v1/metrics/{name}/batches/{batch['batch_id']}")
