@@ -73,3 +73,11 @@ def test_drift_overhead_bench_runs_quick() -> None:
         capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
     ).stdout
     assert "without ms" in out and "ratio" in out and "target:" in out
+
+
+def test_grouping_bench_runs_quick() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "grouping.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "in process s" in out and out.count("target:") == 2

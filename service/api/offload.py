@@ -58,10 +58,18 @@ def _executor() -> ProcessPoolExecutor:
     global _pool
     with _lock:
         if _pool is None:
-            _pool = ProcessPoolExecutor(
-                max_workers=1, mp_context=multiprocessing.get_context("forkserver"))
+            context = multiprocessing.get_context("forkserver")
+            # the helper starts with the parsing modules (and what they import) loaded
+            context.set_forkserver_preload(["service.api.offload", "service.api.schemas"])
+            _pool = ProcessPoolExecutor(max_workers=1, mp_context=context)
             atexit.register(_pool.shutdown, wait=False, cancel_futures=True)
         return _pool
+
+
+def warm() -> None:
+    """Start the helper in the background now (a web process calls this as it
+    starts), so the first large body does not wait for it to boot."""
+    _executor().submit(int)
 
 
 def _reset() -> None:
