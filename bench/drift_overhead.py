@@ -28,26 +28,19 @@ sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
 
-from bench._redis import clean_up, redis_url  # noqa: E402
+from bench._redis import clean_up, fit_once, redis_url  # noqa: E402
 from service.config import Settings  # noqa: E402
 from service.context import Context  # noqa: E402
 from service.tables import Table, from_json  # noqa: E402
-from service.usecases import batches, drift, fits, groupings, metrics  # noqa: E402
+from service.usecases import drift, groupings, metrics  # noqa: E402
 from tests.datasets import load_open, make_batches  # noqa: E402
-from workers.worker import run_worker  # noqa: E402
 
 TARGET = 1.05
 
 
 def _fit(ctx: Context, feats: list[str]) -> None:
     X, y = load_open("wine")
-    for Xb, yb in make_batches(X, y, 4, np.random.default_rng(0)):
-        table = from_json({"columns": feats, "rows": Xb.tolist()})
-        batches.add_batch(ctx, "bench", table.with_groups([int(v) for v in yb]))
-    fit, _ = fits.request_fit(ctx, "bench", {}, "bench")
-    run_worker(ctx.settings, burst=True, name=f"{ctx.settings.key_prefix}-w", simple=True)
-    if fits.get_fit(ctx, fit["fit_id"])["status"] != "succeeded":
-        raise SystemExit("the fit failed")
+    fit_once(ctx, "bench", feats, make_batches(X, y, 4, np.random.default_rng(0)))
 
 
 def _time(ctx: Context, table: Table, write: bool, real_record) -> float:
