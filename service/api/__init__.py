@@ -30,6 +30,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     from service.context import Context
 
     from . import batches, drift, fits, groupings, health, metrics, telemetry, tracing, versions
+    from .jsonio import FastJSON
 
     if context is None:
         context = Context.build(settings if settings is not None else Settings.from_env(),
@@ -37,8 +38,8 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     settings = context.settings
 
     app = Flask(__name__, static_folder=None)
+    app.json = FastJSON(app)  # keeps the use cases' key order
     app.config["MAX_CONTENT_LENGTH"] = settings.max_request_bytes
-    app.json.sort_keys = False  # keep the use cases' key order
     app.extensions["likewise.context"] = context
     app.extensions["likewise.tokens"] = settings.token_book()
 
