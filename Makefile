@@ -29,6 +29,7 @@ bench: $(STAMP)
 	$(BIN)/python bench/fit_latency.py
 	$(BIN)/python bench/ingest.py
 	$(BIN)/python bench/grouping.py
+	$(BIN)/python bench/throughput.py
 	$(BIN)/python bench/fit_budget.py
 	$(BIN)/python bench/store_codecs.py
 	$(BIN)/python bench/drift_overhead.py

@@ -81,3 +81,11 @@ def test_grouping_bench_runs_quick() -> None:
         capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
     ).stdout
     assert "in process s" in out and out.count("target:") == 1 and "k auto" in out
+
+
+def test_throughput_bench_runs_quick() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "throughput.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "reference: group_records" in out and "target: 4 clients" in out
