@@ -27,7 +27,7 @@ from .deps import context
 from .schemas import json_body, query_args
 
 JSON = "application/json"
-MEDIA_TYPES = (JSON, *arrow_tables.FORMATS)
+MEDIA_TYPES = (JSON, *arrow_tables.FORMATS)  # a batch also takes batch_stats.MEDIA_TYPE
 
 
 def _caps() -> tuple[int, int]:
