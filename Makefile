@@ -30,6 +30,7 @@ bench: $(STAMP)
 	$(BIN)/python bench/ingest.py
 	$(BIN)/python bench/fit_budget.py
 	$(BIN)/python bench/store_codecs.py
+	$(BIN)/python bench/drift_overhead.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

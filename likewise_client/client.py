@@ -306,6 +306,13 @@ class Client:
     def history(self, metric: str) -> list[Json]:
         return self._call("GET", f"/v1/metrics/{metric}/history")["history"]
 
+    def drift(self, metric: str, version: int | None = None, since: str | None = None
+              ) -> Json:
+        """How far recent groupings' records are from the version's training batches:
+        scores per feature, margins and distances, and the verdict."""
+        params = {k: v for k, v in (("version", version), ("since", since)) if v is not None}
+        return self._call("GET", f"/v1/metrics/{metric}/drift", params=params)
+
     # ------------------------------------------------------------------ groupings
     def group(self, metric: str, data: Any, k: int | str | None = "auto", *,
               version: int | None = None, columns: Sequence[str] | None = None,

@@ -65,3 +65,11 @@ def test_store_codecs_bench_runs_small() -> None:
         capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
     ).stdout
     assert "zstd 3" in out and "pack_matrix as stored now" in out
+
+
+def test_drift_overhead_bench_runs_quick() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "drift_overhead.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "without ms" in out and "ratio" in out and "target:" in out

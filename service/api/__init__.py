@@ -29,7 +29,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     from service.config import Settings
     from service.context import Context
 
-    from . import batches, fits, groupings, health, metrics, telemetry, tracing, versions
+    from . import batches, drift, fits, groupings, health, metrics, telemetry, tracing, versions
 
     if context is None:
         context = Context.build(settings if settings is not None else Settings.from_env(),
@@ -49,7 +49,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
 
     v1 = Blueprint("v1", __name__, url_prefix="/v1")
     v1.before_request(require_token)
-    for module in (metrics, batches, fits, versions, groupings):
+    for module in (metrics, batches, fits, versions, groupings, drift):
         v1.register_blueprint(module.bp)
     v1.register_blueprint(health.v1_bp)
     app.register_blueprint(v1)

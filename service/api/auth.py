@@ -32,6 +32,7 @@ SCOPE_OF: dict[str, str] = {
     "v1.versions.activate": "release",
     "v1.versions.history": "view",
     "v1.groupings.group": "view",
+    "v1.drift.drift_report": "view",
     "v1.queues.queues": "view",
 }
 

@@ -12,7 +12,6 @@ from .formats import read_table
 from .idempotency import idempotent
 from .schemas import (
     BatchQuerySchema,
-    BatchSchema,
     BatchStatsQuerySchema,
     BatchStatsSchema,
     json_body,
@@ -30,7 +29,7 @@ def add_batch(name: str) -> Response:
         batch = uc.add_batch_stats(context(), name, json_body(BatchStatsSchema()),
                                    allow_duplicate=options["allow_duplicate"])
     else:
-        table, options = read_table(BatchSchema(), BatchQuerySchema())
+        table, options = read_table("batch", BatchQuerySchema())
         batch = uc.add_batch(context(), name, table,
                              allow_duplicate=options["allow_duplicate"],
                              ignore_extra=options["ignore_extra_columns"])

@@ -21,10 +21,11 @@ from marshmallow import Schema
 
 from service import arrow_tables
 from service.errors import InvalidInput, UnsupportedMediaType
-from service.tables import Table, from_json
+from service.tables import Table
 
 from .deps import context
-from .schemas import json_body, query_args
+from .offload import read_json_table
+from .schemas import query_args
 
 JSON = "application/json"
 MEDIA_TYPES = (JSON, *arrow_tables.FORMATS)  # a batch also takes batch_stats.MEDIA_TYPE
@@ -35,9 +36,10 @@ def _caps() -> tuple[int, int]:
     return s.max_batch_records, s.max_batch_bytes
 
 
-def read_table(body_schema: Schema, query_schema: Schema, *,
+def read_table(kind: str, query_schema: Schema, *,
                tabular_only: tuple[str, ...] = ()) -> tuple[Table, dict[str, Any]]:
-    """The request's table and its options (the JSON envelope's fields, then the query's).
+    """The request's table and its options (the JSON envelope's fields, then the query's)
+    for a ``kind`` of body: ``"batch"`` or ``"grouping"``.
 
     ``tabular_only`` names query options that only the tabular formats take (a JSON
     body carries them in its envelope).
@@ -51,11 +53,10 @@ def read_table(body_schema: Schema, query_schema: Schema, *,
                 raise InvalidInput.field(
                     name, "give it in the JSON body (the query takes it for CSV, Arrow "
                           "and Parquet bodies only)")
-        data = json_body(body_schema)
-        table = from_json(data, max_records, max_bytes)
-        if "groups" in data:
-            table = table.with_groups(data["groups"])
-        return table, {**query, **{k: v for k, v in data.items() if k in ("k", "version")}}
+        keep = (query["id_column"],) if query.get("id_column") else ()
+        table, envelope = read_json_table(request.get_data(cache=True), kind,
+                                          (max_records, max_bytes), keep)
+        return table, {**query, **envelope}
     if media not in arrow_tables.FORMATS:
         raise UnsupportedMediaType(
             f"Expected one of {', '.join(MEDIA_TYPES)}, got {media or 'no content type'}.")

@@ -214,6 +214,11 @@ class FitQuerySchema(_Strict):
     status = fields.String(validate=validate.OneOf(FIT_STATUSES))
 
 
+class DriftQuerySchema(_Strict):
+    version = fields.Integer(strict=False, validate=validate.Range(min=1))
+    since = fields.String(validate=validate.Length(min=1, max=64))
+
+
 # a \uD800-\uDFFF escape in the raw text: json.loads pairs the valid ones up, but keeps
 # an unpaired one as a lone surrogate, which is not Unicode text (Redis writes fail)
 _SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F][0-9a-fA-F]{2}")
@@ -242,15 +247,20 @@ def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
             f"Expected a JSON body (Content-Type: application/json), got "
             f"{request.mimetype or 'no content type'}."
         )
+    return load_json(request.get_data(cache=True), schema)
+
+
+def load_json(raw: bytes, schema: Schema) -> dict[str, Any]:
+    """A JSON object's bytes, parsed once and loaded with ``schema`` (see json_body)."""
     try:
-        data = parse_json(request.get_data(cache=True), frozenset(schema.fields))
+        data = parse_json(raw, frozenset(schema.fields))
     except ValueError as exc:  # JSONDecodeError, or bytes that are not UTF-8
         raise MalformedRequest("The body is not valid JSON.") from exc
     except RecursionError as exc:  # the parser recurses once per nesting level
         raise MalformedRequest("The body's JSON is nested too deeply.") from exc
     if not isinstance(data, dict):
         raise MalformedRequest("The body must be a JSON object.")
-    if _SURROGATE_ESCAPE.search(request.get_data(cache=True)) and _has_lone_surrogate(data):
+    if _SURROGATE_ESCAPE.search(raw) and _has_lone_surrogate(data):
         raise MalformedRequest(
             "The body has a string with an unpaired \\uD800-\\uDFFF escape, which is not "
             "Unicode text.")

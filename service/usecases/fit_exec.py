@@ -23,6 +23,7 @@ from service.store import ActiveChanged, MissingMetric, StaleAttempt
 from service.tables import encoded_names
 
 from .batches import load_training_data
+from .drift import reference_blob
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -186,6 +187,7 @@ def _attempt(ctx: Context, fit: Fit, job_id: str,
                                     f"{exc.field or 'batches'}: {exc.message}"), fit_id)
     fitted, report = selector.metric_, selector.report_
     progress("deciding", 0.92)
+    reference = reference_blob(fitted, batches)  # committed with the version
     n = st.versions.next_number(name)
     doc: dict[str, Any] = {
         "summary": {
@@ -220,7 +222,8 @@ def _attempt(ctx: Context, fit: Fit, job_id: str,
                  "reason": f"fit {fit_id}: {reason}", "fit_id": fit_id}
         try:
             st.versions.commit(name, metric["uid"], n, doc, expected_active=active,
-                               activate=activated, activation=entry, fit=done)
+                               activate=activated, activation=entry, fit=done,
+                               reference=reference)
             break
         except ActiveChanged:
             continue

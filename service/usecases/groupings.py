@@ -15,6 +15,7 @@ from service.core import CoreError, FittedMetric, RecordOverflowError, group_rec
 from service.errors import Conflict, InvalidInput, NotFound, from_core
 from service.tables import Table
 
+from . import drift
 from .metrics import require_metric
 from .versions import check_version_number
 
@@ -90,6 +91,7 @@ def group(
         raise InvalidInput.field(field, message, f"{field}: {message}") from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
+    drift.record(ctx, metric, version, fitted, m.X, g)
     answer = {
         "version": version,
         "k": int(g.k),

@@ -69,7 +69,7 @@ OPERATIONS = {
     "getBatch": "get_batch", "deleteBatch": "delete_batch", "requestFit": "start_fit",
     "listFits": "list_fits", "getFit": "get_fit", "retryFit": "retry_fit",
     "listVersions": "list_versions", "getVersion": "get_version",
-    "activateVersion": "activate", "activationHistory": "history",
+    "activateVersion": "activate", "activationHistory": "history", "driftReport": "drift",
     "groupRecords": "group", "queueOverview": "queues", "healthz": "health",
     "readyz": "ready", "prometheusMetrics": "prometheus",
 }
@@ -143,6 +143,9 @@ def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> 
                                    for r in Xg], k, version=1)
         assert by_frame["labels"] == by_dicts["labels"] and len(by_frame["labels"]) == len(yg)
         assert by_frame["version"] == 1 and by_frame["k"] == k
+        watched = lw.drift(name, version=1)
+        assert watched["version"] == 1 and watched["records"] == 2 * len(yg)
+        assert set(watched["features"]) == set(IRIS_FEATURES)
 
         second = lw.wait_for_fit(lw.start_fit(name, method="euclidean",
                                               activate="never")["fit_id"], timeout=120)

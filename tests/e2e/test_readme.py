@@ -99,7 +99,7 @@ def _python_and_cli_sections_work(base: str, cwd: Path) -> None:
     assert out.returncode == 0, out.stdout[-2000:] + out.stderr[-2000:]
     (cwd / "cli-session.txt").write_text(out.stdout)  # kept with the test's files
     for text in ("parcels", "held-out ARI", "hub_minutes", "version 1 -> 2",
-                 "version 2 -> 1", "fit queue at", "dry run: would delete 2 batches"):
+                 "version 2 -> 1", "fit queue at", "dry run: would delete 3 batches"):
         assert text in out.stdout, (text, out.stdout[-3000:])
     _etl_section_works(base, cwd, env)
 
