@@ -28,7 +28,7 @@ from .offload import read_json_table
 from .schemas import query_args
 
 JSON = "application/json"
-MEDIA_TYPES = (JSON, *arrow_tables.FORMATS)
+MEDIA_TYPES = (JSON, *arrow_tables.FORMATS)  # a batch also takes batch_stats.MEDIA_TYPE
 
 
 def _caps() -> tuple[int, int]:

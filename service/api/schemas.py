@@ -176,6 +176,26 @@ class QueryKField(KField):
 _COLUMN = validate.Length(min=1, max=128)
 
 
+class BatchStatsSchema(_Strict):
+    """The envelope of a ``likewise.batch-stats/1`` document (service/batch_stats.py
+    checks the numbers with numpy)."""
+
+    format = fields.String(required=True)
+    features = BoundedList(fields.String(validate=validate.Length(min=1, max=256)),
+                           MAX_FEATURES, required=True, validate=validate.Length(min=1))
+    n = fields.Raw(required=True)
+    k = fields.Raw(required=True)
+    group_sizes = fields.Dict(keys=fields.String(validate=validate.Length(min=1, max=256)),
+                              values=fields.Raw(), required=True)
+    sums = JSONArray(required=True)
+    scatter = JSONArray(required=True)
+    between = JSONArray(required=True)
+
+
+class BatchStatsQuerySchema(_Strict):
+    allow_duplicate = fields.Boolean(load_default=False)
+
+
 class BatchQuerySchema(_Strict):
     allow_duplicate = fields.Boolean(load_default=False)
     ignore_extra_columns = fields.Boolean(load_default=None)

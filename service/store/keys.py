@@ -9,7 +9,8 @@ Key layout (``P`` = the deployment's key prefix; metric names match
     P:metric:{name}:records         string records in all batches (INCRBY/DECRBY)
     P:metric:{name}:batches         zset   batch ids, scored by ingest order
     P:metric:{name}:batch:{id}      hash   meta (JSON), stats (BatchStats.to_bytes()),
-                                           matrix (codecs.pack_matrix), labels (codecs.pack_json)
+                                           matrix (codecs.pack_matrix), labels (codecs.pack_json);
+                                           both empty for a statistics-only batch
     P:metric:{name}:content         hash   content hash (sha256) → batch id
     P:metric:{name}:vseq            string version counter (INCR; a crashed fit leaves a gap)
     P:metric:{name}:versions        zset   visible version numbers
