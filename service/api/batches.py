@@ -29,7 +29,8 @@ def add_batch(name: str) -> Response:
         batch = uc.add_batch_stats(context(), name, json_body(BatchStatsSchema()),
                                    allow_duplicate=options["allow_duplicate"])
     else:
-        table, options = read_table("batch", BatchQuerySchema())
+        table, options = read_table("batch", BatchQuerySchema(),
+                                    also_accepted=(batch_stats.MEDIA_TYPE,))
         batch = uc.add_batch(context(), name, table,
                              allow_duplicate=options["allow_duplicate"],
                              ignore_extra=options["ignore_extra_columns"])

@@ -36,13 +36,14 @@ def _caps() -> tuple[int, int]:
     return s.max_batch_records, s.max_batch_bytes
 
 
-def read_table(kind: str, query_schema: Schema, *,
-               tabular_only: tuple[str, ...] = ()) -> tuple[Table, dict[str, Any]]:
+def read_table(kind: str, query_schema: Schema, *, tabular_only: tuple[str, ...] = (),
+               also_accepted: tuple[str, ...] = ()) -> tuple[Table, dict[str, Any]]:
     """The request's table and its options (the JSON envelope's fields, then the query's)
     for a ``kind`` of body: ``"batch"`` or ``"grouping"``.
 
     ``tabular_only`` names query options that only the tabular formats take (a JSON
-    body carries them in its envelope).
+    body carries them in its envelope). ``also_accepted`` lists other content types the
+    endpoint reads elsewhere, for the 415's message.
     """
     query = query_args(query_schema)
     media = request.mimetype
@@ -59,7 +60,8 @@ def read_table(kind: str, query_schema: Schema, *,
         return table, {**query, **envelope}
     if media not in arrow_tables.FORMATS:
         raise UnsupportedMediaType(
-            f"Expected one of {', '.join(MEDIA_TYPES)}, got {media or 'no content type'}.")
+            f"Expected one of {', '.join((*MEDIA_TYPES, *also_accepted))}, got "
+            f"{media or 'no content type'}.")
     if "group_column" in query_schema.fields and "group_column" not in query:
         raise InvalidInput.field(
             "group_column", f"required with a {media} body: the column of group labels")
