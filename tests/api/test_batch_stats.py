@@ -155,13 +155,20 @@ def test_fit_from_statistics_and_two_raw_batches_gives_the_all_raw_matrix(
     assert_allclose(mixed_doc["metric"]["mean"], all_raw_doc["metric"]["mean"], rtol=1e-12)
 
 
-def test_fit_with_one_raw_batch_fails_saying_why(api, ctx, metric, run_worker_burst):
-    batches = iris_batches(3)
-    post_batches(api, metric, batches[:1])
-    for X, labels in batches[1:]:
+def test_fit_with_one_raw_batch_is_refused_saying_why(api, ctx, metric, run_worker_burst):
+    batches = iris_batches(4)
+    ids = post_batches(api, metric, batches[:2])
+    for X, labels in batches[2:]:
         assert post_stats(api, stats_doc(X, labels)).status_code == 201
+    api.delete(f"/v1/metrics/iris/batches/{ids[0]}")
+    refused = api.post("/v1/metrics/iris/fits", json={})
+    assert refused.status_code == 409
+    assert "1 batch(es) with records and 2 statistics-only" in refused.get_json()["detail"]
+    # a batch deleted after the fit was queued: the worker fails it, saying why
+    ids = post_batches(api, metric, batches[:1])
     resp = api.post("/v1/metrics/iris/fits", json={})
     assert resp.status_code == 202
+    api.delete(f"/v1/metrics/iris/batches/{ids[0]}")
     run_worker_burst(ctx, max_jobs=5)
     fit = api.get(resp.headers["Location"]).get_json()
     assert fit["status"] == "failed"
