@@ -228,7 +228,7 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
 @pytest.mark.timeout(300)
 def test_embedded_redis_token_file_and_persistence(tmp_path):
     """``make run`` on a fresh machine: no Redis URL, no token — both are provided."""
-    env = {"LIKEWISE_WORKERS": "1"}
+    env = {"LIKEWISE_WORKERS": "1", "LIKEWISE_STRANDED_SECONDS": "3"}
     for key in ("LIKEWISE_REDIS_URL", "LIKEWISE_ADMIN_TOKEN", "LIKEWISE_KEY_PREFIX",
                 "LIKEWISE_QUEUE"):
         env[key] = ""
@@ -255,17 +255,26 @@ def test_embedded_redis_token_file_and_persistence(tmp_path):
         assert any("appendonly" in f.name for f in files)
         for item in redis_dir.rglob("*"):
             assert item.stat().st_mode & 0o777 == (0o700 if item.is_dir() else 0o600), item
-        # the embedded Redis crashes: the launcher starts it again on the same data,
-        # and every write it acknowledged is still there
+        # the embedded Redis crashes just after a fit was queued: the launcher starts it
+        # again on the same data, every write it acknowledged is still there, and the
+        # fit completes (whichever step the crash cut: taken, running or not yet seen)
+        X, y = load_open("iris")
+        feats = ["sl", "sw", "pl", "pw"]
+        http.put_metric("iris", feats)
+        for Xb, yb in make_batches(X, y, 2, np.random.default_rng(0)):
+            _post_batch(http, "iris", feats, Xb, yb)
         # the server names its own pid (a process listing may cut or retitle its command)
         served = redis.Redis(port=port, password=password, socket_timeout=5)
         redis_pid = int(served.info("server")["process_id"])
+        fit_id = http.start_fit("iris")["fit_id"]
         os.kill(redis_pid, signal.SIGKILL)
         _wait(lambda: http.request("GET", "/v1/metrics/kept")[0] == 200, 30, "Redis back", proc)
         assert proc.poll() is None
         assert "redis exited with code -9; started it again" in (
             tmp_path / "launcher.log").read_text()
         assert http.request("GET", "/v1/metrics/kept")[1]["features"] == ["a", "b"]
+        done = http.wait_for_fit(fit_id, timeout=FIT_TIMEOUT, interval=0.5)
+        assert done["status"] == "succeeded", done
     finally:
         assert _stop(proc) == 0
     # a second start reuses the token and finds the metric: the append-only file kept it
