@@ -23,6 +23,7 @@ from typing import TYPE_CHECKING
 from .batches import BatchStore
 from .drift import DriftStore
 from .errors import (
+    UNAVAILABLE,
     ActiveChanged,
     Contended,
     DuplicateBatch,
@@ -58,10 +59,18 @@ class Storage:
         self.idempotency = IdempotencyStore(redis, self.keys)
         self.drift = DriftStore(redis, self.keys)
 
+    def answers(self) -> bool:
+        """Whether the data store answers a ping now."""
+        try:
+            return bool(self.redis.ping())
+        except UNAVAILABLE:
+            return False
+
     def key(self, *parts: object) -> str:
         """A key under this deployment's prefix (for keys outside the layout, e.g. tests)."""
         return self.keys.join(*parts)
 
 
 __all__ = ["ActiveChanged", "Contended", "DuplicateBatch", "FeaturesLocked", "Keys",
-           "MissingMetric", "MissingVersion", "StaleAttempt", "Storage", "StoreError"]
+           "MissingMetric", "MissingVersion", "StaleAttempt", "Storage", "StoreError",
+           "UNAVAILABLE"]

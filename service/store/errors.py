@@ -2,6 +2,12 @@
 
 from __future__ import annotations
 
+import redis
+
+# what a call that could not reach the data store raises (the client library's error,
+# or the socket's): callers that must outlive an outage catch these
+UNAVAILABLE: tuple[type[BaseException], ...] = (redis.RedisError, OSError)
+
 
 class StoreError(Exception):
     """Base class; ``str(exc)`` is a sentence for a person."""

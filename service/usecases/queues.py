@@ -5,10 +5,9 @@ from __future__ import annotations
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
-import redis as redis_lib
-
 from service import jobqueue
 from service.clock import iso_utc
+from service.store import UNAVAILABLE
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -27,14 +26,13 @@ def queue_overview(ctx: Context) -> dict[str, Any]:
 
 def readiness(ctx: Context) -> tuple[bool, dict[str, Any]]:
     """Ready when Redis answers and a worker on our queue sent a heartbeat recently."""
-    try:
-        redis_ok = bool(ctx.redis.ping())
-    except (redis_lib.RedisError, OSError):
+    redis_ok = ctx.storage.answers()
+    if not redis_ok:
         return False, {"redis": False, "workers_seen": 0}
     now = datetime.now(timezone.utc)
     try:
         seen = sum(1 for w in jobqueue.workers(ctx) if w.last_heartbeat is not None and (
             now - w.last_heartbeat).total_seconds() <= ctx.settings.worker_seen_seconds)
-    except redis_lib.RedisError:
+    except UNAVAILABLE:
         return False, {"redis": False, "workers_seen": 0}
     return redis_ok and seen > 0, {"redis": redis_ok, "workers_seen": seen}

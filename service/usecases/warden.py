@@ -26,11 +26,10 @@ import logging
 import threading
 from typing import TYPE_CHECKING
 
-import redis as redis_lib
-
 from service import jobqueue
 from service.jobqueue import JobState
 from service.lifecycle import Fit, FitStatus
+from service.store import UNAVAILABLE
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -136,7 +135,7 @@ class Warden(threading.Thread):
         while not self._stopped.wait(self.interval):
             try:
                 sweep(self.ctx)
-            except (redis_lib.RedisError, OSError) as exc:
+            except UNAVAILABLE as exc:
                 log.warning("warden: the data store did not answer (%s)", exc)
             except Exception:  # noqa: BLE001 — the warden must outlive one bad pass
                 log.exception("warden: a sweep failed")
