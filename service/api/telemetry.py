@@ -136,6 +136,19 @@ class StoreCollector:
         for by, count in snap["activations"].items():
             activated.add_metric([by], count)
         yield activated
+        verdict = GaugeMetricFamily(
+            "likewise_drift_verdict", "1 for each metric's drift verdict on its active "
+            "version over the retained window (quiet, steady, shifting, drifted).",
+            labels=["metric", "verdict"])
+        flagged = GaugeMetricFamily(
+            "likewise_drift_flagged_features", "Features whose drift verdict is shifting "
+            "or drifted, per metric (active version).", labels=["metric"])
+        for metric, seen in snap["drift"].items():
+            if seen["verdict"] is not None:
+                verdict.add_metric([metric, seen["verdict"]], 1)
+                flagged.add_metric([metric], len(seen["flagged"]))
+        yield verdict
+        yield flagged
 
 
 def note_grouping(records: int) -> None:

@@ -9,6 +9,8 @@ from service import jobqueue
 from service.lifecycle import FitStatus
 from service.store.tallies import FIT_SECONDS_BUCKETS, FitTally
 
+from . import drift
+
 if TYPE_CHECKING:
     from service.context import Context
 
@@ -19,7 +21,8 @@ ACTIVATED_BY = ("fit", "operator")
 def snapshot(ctx: Context) -> dict[str, Any]:
     """Fits ended by outcome (count, run-time histogram with cumulative buckets as
     ``[(le, count), …, ("+Inf", count)]`` and sum), activations by who made them, and
-    the queue's depth by state and its oldest wait (0 when none waits)."""
+    the queue's depth by state and its oldest wait (0 when none waits), and each
+    metric's drift verdict for its active version."""
     tallies = ctx.storage.tallies.read()
     fits = {}
     for outcome in OUTCOMES:
@@ -29,6 +32,7 @@ def snapshot(ctx: Context) -> dict[str, Any]:
                          "buckets": list(zip(bounds, accumulate(tally.buckets), strict=True))}
     activations = {by: tallies.activations.get(by, 0) for by in ACTIVATED_BY}
     counts = jobqueue.queue_counts(ctx)
-    return {"fits": fits, "activations": activations, "queue": {
+    return {"fits": fits, "activations": activations, "drift": drift.latest_verdicts(ctx),
+            "queue": {
         "depth": {"waiting": counts["waiting"], "running": counts["fitting"]},
         "oldest_waiting_seconds": counts["oldest_waiting_seconds"] or 0.0}}

@@ -33,6 +33,10 @@ def test_a_unit_change_is_flagged_by_feature_name(api, fitted, fit_to_version) -
     assert body["version"] == 2 and body["verdict"] == "drifted"
     assert body["flagged"] == ["petal_length"], body["features"]
     assert body["features"]["petal_length"]["mean_shift"] > 100
+    # the same verdict in the Prometheus exposition
+    scraped = api.get("/metrics").get_data(as_text=True)
+    assert 'likewise_drift_verdict{metric="iris",verdict="drifted"} 1.0' in scraped
+    assert 'likewise_drift_flagged_features{metric="iris"} 1.0' in scraped
     # version 1 saw none of it
     assert api.get("/v1/metrics/iris/drift?version=1").get_json()["verdict"] == "steady"
     assert_problem(api.get("/v1/metrics/iris/drift?version=9"), 404)
