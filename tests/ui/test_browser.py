@@ -95,7 +95,7 @@ def test_roll_back_from_the_console(live: Live, metric_name: str, browser) -> No
     assert driver.execute_script(
         "return sessionStorage.getItem('likewise.console.token')") == live.token
     chip.click()
-    board = f'#metric-board[data-name="{metric_name}"]'
+    board = f'#metric:not([data-loading]) #metric-board[data-name="{metric_name}"]'
     wait.until(ec.presence_of_element_located((By.CSS_SELECTOR, f'{board}[data-active="2"]')))
 
     # the three plots are inline SVG; the bars are keyed by feature name
@@ -120,7 +120,8 @@ def test_roll_back_from_the_console(live: Live, metric_name: str, browser) -> No
     reason = "version 2 groups the new intake worse (console test)"
     driver.find_element(By.ID, "reason").send_keys(reason)
     driver.find_element(By.ID, "rollback-confirm").click()
-    wait.until(ec.text_to_be_present_in_element((By.ID, "serving"), "version 1 serving"))
+    wait.until(ec.presence_of_element_located((By.CSS_SELECTOR, f'{board}[data-active="1"]')))
+    assert driver.find_element(By.ID, "serving").text == "version 1 serving"
 
     # the API agrees: version 1 serves and the history names the roll-back
     client = live.client()

@@ -51,13 +51,26 @@
     }
   }
 
-  async function loadOverview() {
-    const resp = await call("parts/overview");
+  // only the newest request of each part is applied: an older answer arriving late
+  // is dropped; #metric carries data-loading while its newest request runs
+  const latest = { overview: 0, metric: 0 };
+
+  async function fetchPart(part, path) {
+    const seq = ++latest[part];
+    const resp = await call(path);
+    const body = resp.ok ? await resp.text() : await detail(resp);
+    if (seq !== latest[part]) return null;
     if (!resp.ok) {
-      say(await detail(resp), true);
-      return;
+      say(body, true);
+      return null;
     }
-    $("overview").innerHTML = await resp.text();
+    return body;
+  }
+
+  async function loadOverview() {
+    const html = await fetchPart("overview", "parts/overview");
+    if (html === null) return;
+    $("overview").innerHTML = html;
     const chips = [...document.querySelectorAll(".chip")];
     const picked = sessionStorage.getItem(PICKED);
     if (chips.length && !chips.some((c) => c.dataset.metric === picked)) {
@@ -69,12 +82,15 @@
   async function loadMetric(name) {
     sessionStorage.setItem(PICKED, name);
     markPicked();
-    const resp = await call("parts/metrics/" + encodeURIComponent(name));
-    if (!resp.ok) {
-      say(await detail(resp), true);
-      return;
+    const box = $("metric");
+    box.dataset.loading = "true";
+    const seq = latest.metric + 1;
+    try {
+      const html = await fetchPart("metric", "parts/metrics/" + encodeURIComponent(name));
+      if (html !== null) box.innerHTML = html;
+    } finally {
+      if (seq === latest.metric) delete box.dataset.loading;
     }
-    $("metric").innerHTML = await resp.text();
   }
 
   async function show() {
