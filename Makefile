@@ -33,8 +33,11 @@ bench: $(STAMP)
 	$(BIN)/python bench/few_batches.py
 	$(BIN)/python bench/fit_latency.py
 	$(BIN)/python bench/ingest.py
+	$(BIN)/python bench/grouping.py
+	$(BIN)/python bench/throughput.py
 	$(BIN)/python bench/fit_budget.py
 	$(BIN)/python bench/store_codecs.py
+	$(BIN)/python bench/drift_overhead.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

@@ -36,3 +36,23 @@ def clean_up(conn: redis.Redis, prefix: str, server: object | None) -> None:
             conn.delete(key)
     if server is not None:
         server.shutdown()
+
+
+def fit_once(ctx, name: str, feats: list[str], labelled: list) -> None:  # noqa: ANN001
+    """Post ``labelled`` (X, y) batches to metric ``name`` and run one fit with a real
+    worker in this process (burst mode); exits when the fit fails."""
+    from service.tables import from_json
+    from service.usecases import batches, fits
+    from workers.worker import run_worker
+
+    for Xb, yb in labelled:
+        table = from_json({"columns": feats, "rows": Xb.tolist()})
+        batches.add_batch(ctx, name, table.with_groups([int(v) for v in yb]))
+    fit, _ = fits.request_fit(ctx, name, {}, "bench")
+    run_worker(ctx.settings, burst=True, name=f"{ctx.settings.key_prefix}-w", simple=True)
+    if fits.get_fit(ctx, fit["fit_id"])["status"] != "succeeded":
+        raise SystemExit("the fit failed")
+
+
+def verdict(ok: bool) -> str:
+    return "met" if ok else "NOT met"

@@ -5,15 +5,18 @@
 ...     lw.put_metric("shipments", ["peak_temp_c", "minutes_above_8c", "trip_km"])
 ...     lw.post_batch("shipments", frame, groups="cause")
 ...     fit = lw.wait_for_fit(lw.start_fit("shipments")["fit_id"], timeout=120)
+...     lw.post_stats("shipments", stats_from_frame(big, features, "cause"))
 
 See the README's "From Python" section.
 """
 
-from .bodies import FORMATS, BodyFormat, Table, to_table
+from .batch_stats import stats_from_dask, stats_from_frame
+from .bodies import ARROW, FORMATS, JSON, BodyFormat, Table, to_table
 from .client import ENDED, NO_RETRY, Answer, Client, RetryPolicy, new_key
 from .errors import ClientError, FieldError, FitTimeout, ProblemError, Unreachable
 
 __all__ = [
+    "ARROW", "JSON", "stats_from_dask", "stats_from_frame",
     "ENDED", "FORMATS", "NO_RETRY", "Answer", "BodyFormat", "Client", "ClientError",
     "FieldError", "FitTimeout", "ProblemError", "RetryPolicy", "Table", "Unreachable",
     "new_key", "to_table",

@@ -12,11 +12,13 @@ true``) and nothing is stored twice.
 
 from __future__ import annotations
 
+import contextlib
 import json as jsonlib
 import random
+import sys
 import time
 import uuid
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
@@ -29,7 +31,7 @@ from tenacity import (
     stop_after_attempt,
 )
 
-from . import bodies
+from . import batch_stats, bodies
 from .errors import FitTimeout, ProblemError, Unreachable
 
 ENDED = frozenset({"succeeded", "failed"})  # a fit in one of these will not change again
@@ -214,15 +216,26 @@ class Client:
                    idempotency_key: str | None = None) -> Json:
         """Post one labelled batch.
 
-        ``data``: a pandas DataFrame, a list of dicts, or an array with ``columns``.
-        ``groups``: one label per record, or the name of the column holding them.
+        ``data``: a pandas DataFrame, an Arrow table, a list of dicts, or an array with
+        ``columns``. ``groups``: one label per record, or the name of the column holding
+        them. ``content_type=bodies.ARROW`` sends an Arrow IPC stream (pyarrow).
         """
         data, labels = bodies.split_groups(data, groups)
         table = bodies.to_table(data, columns)
-        raw = bodies.encode(table, {"groups": labels}, content_type)
+        raw, params = bodies.encode(table, {"groups": labels}, content_type)
+        if allow_duplicate:
+            params["allow_duplicate"] = "true"
+        return self._create("POST", f"/v1/metrics/{metric}/batches", None, idempotency_key,
+                            content=raw, content_type=content_type, params=params or None)
+
+    def post_stats(self, metric: str, stats: Json, *, allow_duplicate: bool = False,
+                   idempotency_key: str | None = None) -> Json:
+        """Post one statistics-only batch: a ``likewise.batch-stats/1`` document (see
+        :mod:`likewise_client.batch_stats` and docs/batch-stats.md)."""
         params = {"allow_duplicate": "true"} if allow_duplicate else None
         return self._create("POST", f"/v1/metrics/{metric}/batches", None, idempotency_key,
-                            content=raw, content_type=content_type, params=params)
+                            content=_dumps(stats), content_type=batch_stats.MEDIA_TYPE,
+                            params=params)
 
     def list_batches(self, metric: str) -> list[Json]:
         return self._call("GET", f"/v1/metrics/{metric}/batches")["batches"]
@@ -252,10 +265,17 @@ class Client:
 
     def wait_for_fit(self, fit_id: str, timeout: float = 300.0, *,
                      on_progress: Callable[[Json], None] | None = None,
-                     interval: float = 0.5) -> Json:
+                     interval: float = 0.5, progress_bar: bool | None = None) -> Json:
         """Poll the fit until it ends (succeeded or failed) and return it; raise
         :class:`FitTimeout` after ``timeout`` seconds. ``on_progress(fit)`` is called
-        after every poll. ``interval`` is kept within [0.05, 10] seconds."""
+        after every poll. ``interval`` is kept within [0.05, 10] seconds.
+        ``progress_bar``: a tqdm bar on stderr (None: when stderr is a terminal)."""
+        if progress_bar is None:
+            progress_bar = sys.stderr.isatty()
+        if progress_bar and on_progress is None:
+            with fit_progress_bar(fit_id) as show:
+                return self.wait_for_fit(fit_id, timeout, on_progress=show,
+                                         interval=interval, progress_bar=False)
         interval = min(10.0, max(0.05, interval))
         deadline = time.monotonic() + timeout
         while True:
@@ -286,6 +306,13 @@ class Client:
     def history(self, metric: str) -> list[Json]:
         return self._call("GET", f"/v1/metrics/{metric}/history")["history"]
 
+    def drift(self, metric: str, version: int | None = None, since: str | None = None
+              ) -> Json:
+        """How far recent groupings' records are from the version's training batches:
+        scores per feature, margins and distances, and the verdict."""
+        params = {k: v for k, v in (("version", version), ("since", since)) if v is not None}
+        return self._call("GET", f"/v1/metrics/{metric}/drift", params=params)
+
     # ------------------------------------------------------------------ groupings
     def group(self, metric: str, data: Any, k: int | str | None = "auto", *,
               version: int | None = None, columns: Sequence[str] | None = None,
@@ -295,9 +322,34 @@ class Client:
         members: Json = {"k": k}
         if version is not None:
             members["version"] = int(version)
-        raw = bodies.encode(bodies.to_table(data, columns), members, content_type)
+        raw, params = bodies.encode(bodies.to_table(data, columns), members, content_type)
         return self._call("POST", f"/v1/metrics/{metric}/groupings", content=raw,
-                          content_type=content_type)
+                          content_type=content_type, params=params or None)
+
+    def group_frame(self, metric: str, frame: Any, id_column: str,
+                    k: int | str | None = "auto", *, features: Sequence[str] | None = None,
+                    version: int | None = None, content_type: str = bodies.ARROW) -> Any:
+        """Group a pandas DataFrame; returns a DataFrame (the caller's index) with
+        ``id_column`` as the service echoed it and ``group``, ``distance`` and
+        ``margin`` beside it, ready to join back on ``id_column``.
+
+        ``features`` (default: the metric's) are sent with the id column (Arrow on the
+        wire unless ``content_type`` says otherwise); other columns stay here.
+        """
+        import pandas as pd  # the caller holds a DataFrame: pandas is loaded
+
+        if features is None:
+            features = self.get_metric(metric)["features"]
+        members: Json = {"k": k, "ids": (id_column, frame[id_column].tolist())}
+        if version is not None:
+            members["version"] = int(version)
+        raw, params = bodies.encode(bodies.to_table(frame, features), members, content_type)
+        answer = self._call("POST", f"/v1/metrics/{metric}/groupings", content=raw,
+                            content_type=content_type, params=params)
+        return pd.DataFrame({id_column: answer["ids"], "group": answer["labels"],
+                             "distance": answer["distances"],
+                             "margin": pd.array(answer["margins"], dtype="Float64")},
+                            index=frame.index)
 
     # ------------------------------------------------------------------ operations
     def queues(self) -> Json:
@@ -318,6 +370,20 @@ class Client:
     def prometheus(self) -> str:
         """The Prometheus text exposition of ``/metrics``."""
         return self._call("GET", "/metrics")
+
+
+@contextlib.contextmanager
+def fit_progress_bar(fit_id: str) -> Iterator[Callable[[Json], None]]:
+    """A tqdm bar on stderr for one fit; yields the ``on_progress`` that moves it."""
+    from tqdm import tqdm
+
+    with tqdm(total=100, unit="%", file=sys.stderr, desc=fit_id,
+              bar_format="{desc} {percentage:3.0f}%|{bar}| {postfix}") as bar:
+        def show(fit: Json) -> None:
+            bar.n = round(100 * float(fit.get("progress") or 0))
+            bar.set_postfix_str(f"{fit['status']} {fit.get('stage') or ''}".strip())
+
+        yield show
 
 
 def _problem(answer: Answer, method: str, path: str) -> ProblemError:

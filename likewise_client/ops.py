@@ -20,7 +20,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, TextIO
 
-from .client import ENDED, Client
+from .client import ENDED, Client, fit_progress_bar
 from .errors import ClientError
 
 WATCH_MIN, WATCH_MAX = 0.5, 60.0  # seconds between queue refreshes
@@ -212,14 +212,7 @@ def cmd_queue(lw: Client, args: argparse.Namespace, out: TextIO,
 
 
 def cmd_follow(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
-    from tqdm import tqdm
-
-    with tqdm(total=100, unit="%", file=sys.stderr, desc=args.fit_id,
-              bar_format="{desc} {percentage:3.0f}%|{bar}| {postfix}") as bar:
-        def show(fit: dict[str, Any]) -> None:
-            bar.n = round(100 * float(fit.get("progress") or 0))
-            bar.set_postfix_str(f"{fit['status']} {fit.get('stage') or ''}".strip())
-
+    with fit_progress_bar(args.fit_id) as show:
         fit = lw.wait_for_fit(args.fit_id, timeout=args.timeout, on_progress=show,
                               interval=args.interval)
     assert fit["status"] in ENDED

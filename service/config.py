@@ -23,13 +23,15 @@ LIKEWISE_MAX_REQUEST_BYTES  max_request_bytes              64 MiB
 LIKEWISE_HOST               host                           ``127.0.0.1``
 LIKEWISE_PORT               port                           8000
 LIKEWISE_WORKERS            workers                        1
-LIKEWISE_WEB_WORKERS        web_workers (HTTP processes)   2
+LIKEWISE_WEB_WORKERS        web_workers (HTTP processes)   cores + 1
 LIKEWISE_WORKER_SEEN_SECONDS worker_seen_seconds           60
 LIKEWISE_WARDEN_SECONDS     warden_seconds (sweep period)  5
 LIKEWISE_LEASE_SECONDS      lease_seconds (attempt alive)  10
+LIKEWISE_STRANDED_SECONDS   stranded_seconds (a lost job)  60
 LIKEWISE_IDEMPOTENCY_HOURS  idempotency_hours (answers kept) 24
 LIKEWISE_LOG_FORMAT         (service/logs.py) ``json``|``text`` ``json``, ``text`` on a terminal
 LIKEWISE_LOG_LEVEL          (service/logs.py) log level    ``INFO``
+LIKEWISE_DRIFT_HOURS        drift_hours (hourly buckets kept) 72
 =========================== ============================== ===========================
 
 The two log variables are read by the entry points' logging setup
@@ -93,11 +95,15 @@ class Settings:
     host: str = "127.0.0.1"
     port: int = 8000
     workers: int = 1
-    web_workers: int = 2
+    # one process more than cores: while each core parses a large body (JSON parsing
+    # holds a process's GIL), one process is still free for probes and small requests
+    web_workers: int = field(default_factory=lambda: (os.cpu_count() or 1) + 1)
     worker_seen_seconds: int = 60
     warden_seconds: int = 5
     lease_seconds: int = 10
+    stranded_seconds: int = 60
     idempotency_hours: int = 24
+    drift_hours: int = 72
 
     def __post_init__(self) -> None:
         if not self.key_prefix or any(c in self.key_prefix for c in " \t\r\n"):
@@ -107,11 +113,13 @@ class Settings:
         for name in ("fit_timeout", "max_batch_records", "max_batch_features", "max_groups",
                      "max_batch_bytes", "max_request_bytes", "workers", "web_workers",
                      "warden_seconds",
-                     "lease_seconds", "idempotency_hours"):
+                     "lease_seconds", "idempotency_hours", "drift_hours"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")
         if self.max_batch_features > MAX_FEATURES:
             raise ValueError(f"max_batch_features must be at most {MAX_FEATURES}")
+        if self.stranded_seconds < 0:
+            raise ValueError("stranded_seconds must be ≥ 0")
         if self.fit_retries < 0:
             raise ValueError("fit_retries must be ≥ 0")
 

@@ -82,6 +82,32 @@ def job_state(ctx: Context, job_id: str) -> tuple[JobState, str | None]:
     return state, None
 
 
+def stranded(ctx: Context, job_id: str, grace: float) -> bool:
+    """Whether a job that a fit still waits on can no longer run by itself.
+
+    Either a worker took it from the queue and died before the fit began (the queue
+    says it started, more than ``grace`` seconds ago — a live worker begins a fit it
+    took at once), or it left the queue's list without reaching a worker (a crash
+    between the two moves; it waits, but no worker will ever see it).
+    """
+    from rq.exceptions import NoSuchJobError
+    from rq.job import Job
+
+    try:
+        job = Job.fetch(job_id, connection=ctx.redis)
+    except NoSuchJobError:
+        return False  # the warden's other rule: a missing job fails its fit
+    status = str(getattr(job.get_status(refresh=False), "value", job.get_status(refresh=False)))
+    now = datetime.now(timezone.utc)
+    if status == "started":
+        since = job.started_at or job.enqueued_at
+        return since is not None and (now - _aware(since)).total_seconds() > grace
+    if status == "queued" and ctx.queue.get_job_position(job_id) is None:
+        since = job.enqueued_at or job.created_at
+        return since is not None and (now - _aware(since)).total_seconds() > grace
+    return False
+
+
 def _last_error(job: Any) -> str:
     try:
         result = job.latest_result()

@@ -38,7 +38,7 @@ class FitStatus(str, Enum):
 
 
 MOVES: dict[FitStatus, frozenset[FitStatus]] = {
-    FitStatus.QUEUED: frozenset({FitStatus.RUNNING, FitStatus.FAILED}),
+    FitStatus.QUEUED: frozenset({FitStatus.RUNNING, FitStatus.FAILED, FitStatus.QUEUED}),
     FitStatus.RUNNING: frozenset({FitStatus.SUCCEEDED, FitStatus.FAILED, FitStatus.QUEUED}),
     FitStatus.FAILED: frozenset({FitStatus.QUEUED}),
     FitStatus.SUCCEEDED: frozenset(),
@@ -127,6 +127,11 @@ class Fit:
         """A running attempt died; a new job (a new run) will make the next attempt."""
         return self._to(FitStatus.QUEUED, stage="waiting for retry", error=error,
                         job_id=job_id, runs=self.runs + 1)
+
+    def reissue(self, job_id: str) -> Fit:
+        """A queued fit's job was lost before its attempt began: a new job, same attempt."""
+        return self._to(FitStatus.QUEUED, stage="queued", job_id=job_id, runs=self.runs + 1,
+                        error="the queue lost this fit's job before it began; queued again")
 
     def requeue(self, job_id: str, by: str) -> Fit:
         """A failed fit is queued again by a person (same id and parameters)."""

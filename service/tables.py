@@ -123,6 +123,13 @@ class Table:
         return Table(self.names, self.numbers, self.missing, self.text, self.kind,
                      self.raw_column, groups, group_field)
 
+    def portable(self, keep: Sequence[str] = ()) -> Table:
+        """This table with the raw values of only the ``keep`` columns (the others'
+        are gone), safe to pickle to another process."""
+        kept = {j: self.raw_column(j) for j, n in enumerate(self.names) if n in keep}
+        return Table(self.names, self.numbers, self.missing, self.text, self.kind,
+                     _Kept(kept), self.groups, self.group_field)
+
     def column_values(self, name: str) -> list[Any]:
         """A column's values as posted (JSON-safe), e.g. an id column to echo back."""
         if name not in self.names:
@@ -299,6 +306,16 @@ def _to_floats(rows: list[Sequence[Any]], kind: Kind, n: int, c: int,
         raise _bad(f"{kind}[{int(where[i]) if where is not None else i}]",
                    "values must be finite numbers")
     return X
+
+
+class _Kept:
+    """Raw values of the columns a portable table kept."""
+
+    def __init__(self, columns: dict[int, list[Any]]) -> None:
+        self.columns = columns
+
+    def __call__(self, j: int) -> list[Any]:
+        return self.columns[j]
 
 
 class _Absent:

@@ -83,6 +83,13 @@ def on_starting(_server: Any) -> None:
     prepare_multiprocess_dir()
 
 
+def post_worker_init(_worker: Any) -> None:
+    """Each web process starts its body-parsing helper before it serves."""
+    from service.api import offload
+
+    offload.warm()
+
+
 def child_exit(_server: Any, worker: Any) -> None:
     from prometheus_client import multiprocess
 

@@ -65,3 +65,27 @@ def test_store_codecs_bench_runs_small() -> None:
         capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
     ).stdout
     assert "zstd 3" in out and "pack_matrix as stored now" in out
+
+
+def test_drift_overhead_bench_runs_quick() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "drift_overhead.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "without ms" in out and "ratio" in out and "target:" in out
+
+
+def test_grouping_bench_runs_quick() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "grouping.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "in process s" in out and out.count("target:") == 1 and "k auto" in out
+
+
+def test_throughput_bench_runs_quick() -> None:
+    out = subprocess.run(
+        [sys.executable, str(ROOT / "bench" / "throughput.py"), "--quick"],
+        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
+    ).stdout
+    assert "reference: group_records" in out and "target: 4 clients" in out

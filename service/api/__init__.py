@@ -30,7 +30,19 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     from service.config import Settings
     from service.context import Context
 
-    from . import batches, console, fits, groupings, health, metrics, telemetry, tracing, versions
+    from . import (
+        batches,
+        console,
+        drift,
+        fits,
+        groupings,
+        health,
+        metrics,
+        telemetry,
+        tracing,
+        versions,
+    )
+    from .jsonio import FastJSON
 
     if context is None:
         context = Context.build(settings if settings is not None else Settings.from_env(),
@@ -38,8 +50,8 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     settings = context.settings
 
     app = Flask(__name__, static_folder=None)
+    app.json = FastJSON(app)  # keeps the use cases' key order
     app.config["MAX_CONTENT_LENGTH"] = settings.max_request_bytes
-    app.json.sort_keys = False  # keep the use cases' key order
     app.extensions["likewise.context"] = context
     app.extensions["likewise.tokens"] = settings.token_book()
 
@@ -50,7 +62,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
 
     v1 = Blueprint("v1", __name__, url_prefix="/v1")
     v1.before_request(require_token)
-    for module in (metrics, batches, fits, versions, groupings):
+    for module in (metrics, batches, fits, versions, groupings, drift):
         v1.register_blueprint(module.bp)
     v1.register_blueprint(health.v1_bp)
     app.register_blueprint(v1)

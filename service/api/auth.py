@@ -33,6 +33,7 @@ SCOPE_OF: dict[str, str] = {
     "v1.versions.activate": "release",
     "v1.versions.history": "view",
     "v1.groupings.group": "view",
+    "v1.drift.drift_report": "view",
     "v1.queues.queues": "view",
     # the console's data parts (service/api/console.py); its frame and assets are open
     "console.parts.overview": "view",

@@ -2,14 +2,21 @@
 
 from __future__ import annotations
 
-from flask import Blueprint, Response
+from flask import Blueprint, Response, request
 
+from service import batch_stats
 from service.usecases import batches as uc
 
 from .deps import context, no_content, reply
 from .formats import read_table
 from .idempotency import idempotent
-from .schemas import BatchQuerySchema, BatchSchema
+from .schemas import (
+    BatchQuerySchema,
+    BatchStatsQuerySchema,
+    BatchStatsSchema,
+    json_body,
+    query_args,
+)
 
 bp = Blueprint("batches", __name__)
 
@@ -17,9 +24,16 @@ bp = Blueprint("batches", __name__)
 @bp.post("/metrics/<name>/batches")
 @idempotent
 def add_batch(name: str) -> Response:
-    table, options = read_table(BatchSchema(), BatchQuerySchema())
-    batch = uc.add_batch(context(), name, table, allow_duplicate=options["allow_duplicate"],
-                         ignore_extra=options["ignore_extra_columns"])
+    if request.mimetype == batch_stats.MEDIA_TYPE:  # statistics only, no records
+        options = query_args(BatchStatsQuerySchema())
+        batch = uc.add_batch_stats(context(), name, json_body(BatchStatsSchema()),
+                                   allow_duplicate=options["allow_duplicate"])
+    else:
+        table, options = read_table("batch", BatchQuerySchema(),
+                                    also_accepted=(batch_stats.MEDIA_TYPE,))
+        batch = uc.add_batch(context(), name, table,
+                             allow_duplicate=options["allow_duplicate"],
+                             ignore_extra=options["ignore_extra_columns"])
     return reply(batch, 201, location=f"/v1/metrics/{name}/batches/{batch['batch_id']}")
 
 

@@ -21,13 +21,14 @@ from marshmallow import Schema
 
 from service import arrow_tables
 from service.errors import InvalidInput, UnsupportedMediaType
-from service.tables import Table, from_json
+from service.tables import Table
 
 from .deps import context
-from .schemas import json_body, query_args
+from .offload import read_json_table
+from .schemas import query_args
 
 JSON = "application/json"
-MEDIA_TYPES = (JSON, *arrow_tables.FORMATS)
+MEDIA_TYPES = (JSON, *arrow_tables.FORMATS)  # a batch also takes batch_stats.MEDIA_TYPE
 
 
 def _caps() -> tuple[int, int]:
@@ -35,12 +36,14 @@ def _caps() -> tuple[int, int]:
     return s.max_batch_records, s.max_batch_bytes
 
 
-def read_table(body_schema: Schema, query_schema: Schema, *,
-               tabular_only: tuple[str, ...] = ()) -> tuple[Table, dict[str, Any]]:
-    """The request's table and its options (the JSON envelope's fields, then the query's).
+def read_table(kind: str, query_schema: Schema, *, tabular_only: tuple[str, ...] = (),
+               also_accepted: tuple[str, ...] = ()) -> tuple[Table, dict[str, Any]]:
+    """The request's table and its options (the JSON envelope's fields, then the query's)
+    for a ``kind`` of body: ``"batch"`` or ``"grouping"``.
 
     ``tabular_only`` names query options that only the tabular formats take (a JSON
-    body carries them in its envelope).
+    body carries them in its envelope). ``also_accepted`` lists other content types the
+    endpoint reads elsewhere, for the 415's message.
     """
     query = query_args(query_schema)
     media = request.mimetype
@@ -51,14 +54,14 @@ def read_table(body_schema: Schema, query_schema: Schema, *,
                 raise InvalidInput.field(
                     name, "give it in the JSON body (the query takes it for CSV, Arrow "
                           "and Parquet bodies only)")
-        data = json_body(body_schema)
-        table = from_json(data, max_records, max_bytes)
-        if "groups" in data:
-            table = table.with_groups(data["groups"])
-        return table, {**query, **{k: v for k, v in data.items() if k in ("k", "version")}}
+        keep = (query["id_column"],) if query.get("id_column") else ()
+        table, envelope = read_json_table(request.get_data(cache=True), kind,
+                                          (max_records, max_bytes), keep)
+        return table, {**query, **envelope}
     if media not in arrow_tables.FORMATS:
         raise UnsupportedMediaType(
-            f"Expected one of {', '.join(MEDIA_TYPES)}, got {media or 'no content type'}.")
+            f"Expected one of {', '.join((*MEDIA_TYPES, *also_accepted))}, got "
+            f"{media or 'no content type'}.")
     if "group_column" in query_schema.fields and "group_column" not in query:
         raise InvalidInput.field(
             "group_column", f"required with a {media} body: the column of group labels")

@@ -9,14 +9,14 @@ from service.usecases import groupings as uc
 from . import telemetry
 from .deps import context, reply
 from .formats import read_table
-from .schemas import GroupingQuerySchema, GroupingSchema
+from .schemas import GroupingQuerySchema
 
 bp = Blueprint("groupings", __name__)
 
 
 @bp.post("/metrics/<name>/groupings")
 def group(name: str) -> Response:
-    table, options = read_table(GroupingSchema(), GroupingQuerySchema(),
+    table, options = read_table("grouping", GroupingQuerySchema(),
                                 tabular_only=("k", "version"))
     result = uc.group(context(), name, table, options.get("k"), options.get("version"),
                       ignore_extra=options["ignore_extra_columns"],

@@ -176,6 +176,26 @@ class QueryKField(KField):
 _COLUMN = validate.Length(min=1, max=128)
 
 
+class BatchStatsSchema(_Strict):
+    """The envelope of a ``likewise.batch-stats/1`` document (service/batch_stats.py
+    checks the numbers with numpy)."""
+
+    format = fields.String(required=True)
+    features = BoundedList(fields.String(validate=validate.Length(min=1, max=256)),
+                           MAX_FEATURES, required=True, validate=validate.Length(min=1))
+    n = fields.Raw(required=True)
+    k = fields.Raw(required=True)
+    group_sizes = fields.Dict(keys=fields.String(validate=validate.Length(min=1, max=256)),
+                              values=fields.Raw(), required=True)
+    sums = JSONArray(required=True)
+    scatter = JSONArray(required=True)
+    between = JSONArray(required=True)
+
+
+class BatchStatsQuerySchema(_Strict):
+    allow_duplicate = fields.Boolean(load_default=False)
+
+
 class BatchQuerySchema(_Strict):
     allow_duplicate = fields.Boolean(load_default=False)
     ignore_extra_columns = fields.Boolean(load_default=None)
@@ -192,6 +212,11 @@ class GroupingQuerySchema(_Strict):
 class FitQuerySchema(_Strict):
     metric = fields.String(validate=validate.Length(min=1, max=64))
     status = fields.String(validate=validate.OneOf(FIT_STATUSES))
+
+
+class DriftQuerySchema(_Strict):
+    version = fields.Integer(strict=False, validate=validate.Range(min=1))
+    since = fields.String(validate=validate.Length(min=1, max=64))
 
 
 # a \uD800-\uDFFF escape in the raw text: json.loads pairs the valid ones up, but keeps
@@ -222,15 +247,20 @@ def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
             f"Expected a JSON body (Content-Type: application/json), got "
             f"{request.mimetype or 'no content type'}."
         )
+    return load_json(request.get_data(cache=True), schema)
+
+
+def load_json(raw: bytes, schema: Schema) -> dict[str, Any]:
+    """A JSON object's bytes, parsed once and loaded with ``schema`` (see json_body)."""
     try:
-        data = parse_json(request.get_data(cache=True), frozenset(schema.fields))
+        data = parse_json(raw, frozenset(schema.fields))
     except ValueError as exc:  # JSONDecodeError, or bytes that are not UTF-8
         raise MalformedRequest("The body is not valid JSON.") from exc
     except RecursionError as exc:  # the parser recurses once per nesting level
         raise MalformedRequest("The body's JSON is nested too deeply.") from exc
     if not isinstance(data, dict):
         raise MalformedRequest("The body must be a JSON object.")
-    if _SURROGATE_ESCAPE.search(request.get_data(cache=True)) and _has_lone_surrogate(data):
+    if _SURROGATE_ESCAPE.search(raw) and _has_lone_surrogate(data):
         raise MalformedRequest(
             "The body has a string with an unpaired \\uD800-\\uDFFF escape, which is not "
             "Unicode text.")

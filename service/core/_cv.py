@@ -96,11 +96,15 @@ class CrossValidation:
         random_state: int | None,
         max_records: int,
         n_init: int,
+        extra: Sequence[BatchStats] = (),
     ) -> None:
         self.batches = list(batches)
         self.stats = list(stats)
         self.folds = folds
-        self.total = BatchStats.sum(self.stats)
+        # statistics-only batches: in every fold's training statistics, never held out
+        self.n_stats_only = len(extra)
+        self.extra = BatchStats.sum(extra, self.stats[0].n_features)
+        self.total = BatchStats.sum(self.stats) + self.extra
         self.leave_one_out = all(len(f.held_out) == 1 for f in folds) and len(folds) == len(batches)
         self.max_rank = max_rank
         self.random_state = random_state
@@ -147,7 +151,12 @@ class CrossValidation:
         fold = self.folds[i]
         held = BatchStats.sum([self.stats[b] for b in fold.held_out])
         train = [self.stats[b] for b in fold.train]
-        return without(self.total, held, lambda: BatchStats.sum(train))
+        return without(self.total, held, lambda: BatchStats.sum(train) + self.extra)
+
+    def without_batch(self, b: int) -> BatchStats:
+        """``total`` without batch ``b`` (the statistics-only batches stay in)."""
+        return without(self.total, self.stats[b], lambda: BatchStats.sum(
+            s for j, s in enumerate(self.stats) if j != b) + self.extra)
 
     def fold_metric(self, i: int, cand: Candidate) -> FittedMetric | None:
         """The candidate fitted on fold ``i``'s training batches (None if it cannot be)."""

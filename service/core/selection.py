@@ -8,6 +8,11 @@ Every held-out batch is grouped at its true k in each candidate metric and score
 against the expert grouping (ARI, NMI, Rand); the standardised Euclidean metric is
 always a candidate and the baseline, raw Euclidean is reported beside it.
 
+Statistics-only batches (``fit(..., stats_only=...)``: a batch's statistics without
+its records) are added to the training statistics of every fold and to the final fit;
+they are never held out, since held-out scoring groups records. Folds are made of the
+batches with records, of which there must be at least two.
+
 Held-out grouping: all candidates of a fold group a held-out batch together
 (:mod:`service.core._stacked`: scikit-learn's k-means++ and Lloyd steps run on every
 candidate at once, with the same random numbers for each, so candidates are
@@ -55,7 +60,7 @@ from .clustering import validated_inner_loop
 from .errors import CoreError, NotEnoughDataError
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
-from .stats import BatchStats, without
+from .stats import BatchStats
 from .validation import check_batch, check_whole
 
 Batch = tuple[np.ndarray, np.ndarray]  # (records n×d raw units, group labels n)
@@ -120,16 +125,29 @@ class MetricSelector:
 
     # ------------------------------------------------------------------ public
     def fit(
-        self, batches: Sequence[Batch], stats: Sequence[BatchStats] | None = None
+        self,
+        batches: Sequence[Batch],
+        stats: Sequence[BatchStats] | None = None,
+        stats_only: Sequence[BatchStats] = (),
     ) -> MetricSelector:
-        with validated_inner_loop():
-            return self._fit(batches, stats)
+        """Cross-validate over ``batches`` (records and labels; ``stats`` their
+        statistics, computed when None) and refit on all.
 
-    def _fit(self, batches: Sequence[Batch], stats: Sequence[BatchStats] | None) -> MetricSelector:
+        ``stats_only``: statistics of batches whose records are not at hand (each of one
+        batch). They enter every fold's training statistics and the final fit, and are
+        never held out: held-out scoring needs records, so at least 2 ``batches`` are
+        still required.
+        """
+        with validated_inner_loop():
+            return self._fit(batches, stats, stats_only)
+
+    def _fit(self, batches: Sequence[Batch], stats: Sequence[BatchStats] | None,
+             stats_only: Sequence[BatchStats]) -> MetricSelector:
         self._check_params()
         batches = _check_batches(batches)
         self._report_progress("statistics", 0.0)
         stats = _check_stats(batches, stats)
+        extra = _check_stats_only(stats_only, batches[0][0].shape[1])
         n_rep = self.n_repeats
         if n_rep is None:
             n_rep = 1 if len(batches) < 5 or len(batches) > 10 else 3
@@ -142,6 +160,7 @@ class MetricSelector:
             random_state=self.random_state,
             max_records=self.max_heldout_records,
             n_init=self.cv_n_init,
+            extra=extra,
         )
         cands = self._candidates()
         budget = Budget(self.heldout_tolerance, self.min_heldout_batches, self.max_heldout_batches)
@@ -294,11 +313,7 @@ class MetricSelector:
                 self._cv.forget(i)
             m = fitted[i]
             if m is None:  # rare: refit from all statistics but this batch's
-                stats = self._cv.stats
-                rest = without(  # O(d²); summed from the others when it would cancel
-                    self._cv.total, stats[b],
-                    lambda b=b, st=stats: BatchStats.sum(s for j, s in enumerate(st) if j != b),
-                )
+                rest = self._cv.without_batch(b)
                 try:
                     with warnings.catch_warnings():
                         warnings.simplefilter("ignore")  # the final fit warned already
@@ -375,7 +390,9 @@ class MetricSelector:
             "k_accuracy": k_acc,
             "k_trials": k_trials,
             "k_rule": (metric.k_rule or {}).get("rule"),
-            "n_batches": len(cv.batches),
+            "n_batches": len(cv.batches) + cv.n_stats_only,
+            "n_heldout_batches": len(cv.batches),
+            "n_stats_only_batches": cv.n_stats_only,
             "n_records": int(cv.total.n),
             "n_features": int(cv.total.n_features),
             "warnings": list(metric.info.get("warnings", [])),
@@ -410,14 +427,21 @@ def _check_stats(batches, stats) -> list[BatchStats]:
     stats = list(stats)
     if len(stats) != len(batches):
         raise CoreError(f"{len(stats)} statistics for {len(batches)} batches", "batches")
-    d = batches[0][0].shape[1]
+    return _check_each(stats, batches[0][0].shape[1], "statistics")
+
+
+def _check_stats_only(stats_only: Sequence[BatchStats], d: int) -> list[BatchStats]:
+    return _check_each(list(stats_only), d, "statistics-only batch")
+
+
+def _check_each(stats: list[BatchStats], d: int, what: str) -> list[BatchStats]:
+    """Each one batch's statistics, over ``d`` features."""
     for i, s in enumerate(stats):
         if not isinstance(s, BatchStats) or s.n_batches != 1:
-            raise CoreError(f"statistics {i} are not those of one batch", "batches")
+            raise CoreError(f"{what} {i} are not those of one batch", "batches")
         if s.n_features != d:
-            raise CoreError(
-                f"statistics {i} have {s.n_features} feature(s), expected {d}", "features"
-            )
+            raise CoreError(f"{what} {i} have {s.n_features} feature(s), expected {d}",
+                            "features")
     return stats
 
 

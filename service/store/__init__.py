@@ -5,6 +5,7 @@
 - ``metrics.py``, ``batches.py``, ``versions.py``, ``fits.py`` — one store per concept;
 - ``idempotency.py`` — stored answers to retried requests;
 - ``tallies.py`` — deployment-wide counters for ``/metrics`` (fits ended, activations);
+- ``drift.py`` — hourly drift summaries of grouped records (never the records);
 - ``errors.py`` — what persistence refuses, in its own terms (``StoreError``).
 
 Writes that belong together run in one MULTI/EXEC (or one Lua script); read-check-write
@@ -20,6 +21,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING
 
 from .batches import BatchStore
+from .drift import DriftStore
 from .errors import (
     ActiveChanged,
     Contended,
@@ -54,6 +56,7 @@ class Storage:
         self.fits = FitStore(redis, self.keys, self.tallies)
         self.versions = VersionStore(redis, self.keys, self.fits)
         self.idempotency = IdempotencyStore(redis, self.keys)
+        self.drift = DriftStore(redis, self.keys)
 
     def key(self, *parts: object) -> str:
         """A key under this deployment's prefix (for keys outside the layout, e.g. tests)."""

@@ -42,7 +42,7 @@ class BatchStore:
 
     def add(self, name: str, uid: str, meta: dict[str, Any], stats: bytes, matrix: bytes,
             labels: bytes, *, allow_duplicate: bool = False) -> None:
-        """Store one batch atomically.
+        """Store one batch atomically (a statistics-only batch: empty matrix and labels).
 
         MissingMetric if the metric vanished or was re-created; DuplicateBatch (naming
         the stored batch) if its content hash is already stored, unless allowed.
@@ -77,7 +77,8 @@ class BatchStore:
         return json.loads(raw) if raw is not None else None
 
     def load(self, name: str) -> list[dict[str, Any]]:
-        """All batches with ``meta``, ``stats`` (bytes), ``X`` (ndarray), ``labels`` (list)."""
+        """All batches with ``meta``, ``stats`` (bytes), ``X`` (ndarray), ``labels`` (list);
+        ``X`` and ``labels`` are None for a statistics-only batch."""
         ids = self.ids(name)
         with self.redis.pipeline(transaction=True) as pipe:  # one consistent snapshot
             for b in ids:
@@ -87,8 +88,9 @@ class BatchStore:
         for meta, stats, matrix, labels in rows:
             if meta is None:  # deleted between ZRANGE and the reads
                 continue
-            out.append({"meta": json.loads(meta), "stats": stats,
-                        "X": unpack_matrix(matrix), "labels": unpack_json(labels)})
+            out.append({"meta": json.loads(meta), "stats": stats,  # no records: None
+                        "X": unpack_matrix(matrix) if matrix else None,
+                        "labels": unpack_json(labels) if labels else None})
         return out
 
     def load_one(self, name: str, batch_id: str) -> dict[str, Any] | None:

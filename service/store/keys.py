@@ -9,11 +9,23 @@ Key layout (``P`` = the deployment's key prefix; metric names match
     P:metric:{name}:records         string records in all batches (INCRBY/DECRBY)
     P:metric:{name}:batches         zset   batch ids, scored by ingest order
     P:metric:{name}:batch:{id}      hash   meta (JSON), stats (BatchStats.to_bytes()),
-                                           matrix (codecs.pack_matrix), labels (codecs.pack_json)
+                                           matrix (codecs.pack_matrix), labels (codecs.pack_json);
+                                           both empty for a statistics-only batch
     P:metric:{name}:content         hash   content hash (sha256) → batch id
     P:metric:{name}:vseq            string version counter (INCR; a crashed fit leaves a gap)
     P:metric:{name}:versions        zset   visible version numbers
     P:metric:{name}:version:{n}     hash   summary, report, metric, batches (JSON), fit_id, parent
+    P:metric:{name}:version:{n}:reference
+                                    string drift reference of version n: bin layouts and
+                                           the summary of its training batches (pack_json);
+                                           written in the version's own transaction
+    P:metric:{name}:drift:{uid}:{n}:{hour}
+                                    hash   drift summary of the records grouped with version
+                                           n in one UTC hour (hours since the epoch): n,
+                                           requests, mean, m2 (per feature) and counts
+                                           (every bin), comma-separated text; expires
+                                           LIKEWISE_DRIFT_HOURS after its hour ends; {uid}
+                                           is the metric's, so a re-created metric starts afresh
     P:metric:{name}:active          string active version number
     P:metric:{name}:history         list   activations (JSON), oldest first
     P:metric:{name}:fits            zset   fit ids of this metric, by creation time
@@ -83,6 +95,13 @@ class Keys:
 
     def history(self, name: str) -> str:
         return self.metric(name, "history")
+
+    def drift_reference(self, name: str, n: int | str) -> str:
+        return self.metric(name, "version", n, "reference")
+
+    # ---- drift -----------------------------------------------------------------------
+    def drift_bucket(self, name: str, uid: str, n: int, hour: int) -> str:
+        return self.metric(name, "drift", uid, n, hour)
 
     # ---- fits ----------------------------------------------------------------------
     def fit_index(self, name: str) -> str:

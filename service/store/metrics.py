@@ -123,7 +123,9 @@ class MetricStore:
         return transact(self.redis, [mkey, bkey], body)
 
     def delete(self, name: str) -> bool:
-        """Delete a metric with its batches, versions, history, fits and dedupe keys."""
+        """Delete a metric with its batches, versions (and their drift references),
+        history, fits and dedupe keys. Drift buckets are left to expire: their keys
+        carry the metric's uid, which a re-created metric does not share."""
         k = self.keys
         mkey = k.metric(name)
         zkeys = [k.batch_index(name), k.version_index(name), k.fit_index(name)]
@@ -145,6 +147,7 @@ class MetricStore:
             doomed += [k.metric(name, s) for s in METRIC_SCALARS]
             doomed += [k.batch(name, b) for b in batch_ids]
             doomed += [k.version(name, v) for v in versions]
+            doomed += [k.drift_reference(name, v) for v in versions]
             doomed += [k.fit(f) for f in fit_ids] + [k.lease(f) for f in fit_ids]
             pipe.multi()
             pipe.delete(*doomed)

@@ -35,9 +35,9 @@ class VersionStore:
 
     def commit(self, name: str, uid: str, n: int, doc: dict[str, Any], *,
                expected_active: int | None, activate: bool, activation: dict[str, Any],
-               fit: Fit) -> None:
+               fit: Fit, reference: bytes | None = None) -> None:
         """Make version ``n`` visible, optionally activate it, and store ``fit`` (its
-        succeeded record): one EXEC.
+        succeeded record) and the version's drift ``reference``: one EXEC.
 
         ``doc`` holds summary, report, metric, batches and parent. Raises ActiveChanged
         if the active version is no longer ``expected_active``, MissingMetric if the
@@ -63,6 +63,8 @@ class VersionStore:
                 "metric": json.dumps(doc["metric"]), "batches": json.dumps(doc["batches"]),
                 "fit_id": fit.fit_id, "parent": json.dumps(doc["parent"])})
             pipe.zadd(k.version_index(name), {str(n): n})
+            if reference is not None:
+                pipe.set(k.drift_reference(name, n), reference)
             if activate:
                 pipe.set(akey, n)
                 pipe.rpush(k.history(name), json.dumps(activation))

@@ -10,11 +10,12 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from service import batch_stats
 from service.clock import utcnow
 from service.core import BatchStats, CoreError
 from service.errors import InvalidInput, NotFound, from_core
 from service.store.codecs import pack_json, pack_matrix
-from service.tables import Table, check_groups
+from service.tables import Table, check_groups, encoded_names
 
 from .metrics import require_metric
 
@@ -85,9 +86,35 @@ def add_batch(ctx: Context, name: str, table: Table, *, allow_duplicate: bool = 
     return _summary(meta)
 
 
+def add_batch_stats(ctx: Context, name: str, doc: dict[str, Any], *,
+                    allow_duplicate: bool = False) -> dict[str, Any]:
+    """Store one statistics-only batch (a ``likewise.batch-stats/1`` document whose
+    envelope was checked): it enters every fit's statistics but, having no records, is
+    never held out. Duplicates by content hash as for :func:`add_batch`."""
+    metric = require_metric(ctx, name)
+    inputs = metric["inputs"]
+    stats, sizes = batch_stats.from_wire(doc, encoded_names(metric["features"],
+                                                            inputs["categories"]))
+    batch_id = secrets.token_hex(BATCH_ID_LEN // 2)
+    meta = {
+        "batch_id": batch_id,
+        "kind": "statistics",
+        "records": stats.n,
+        "groups": stats.n_groups,
+        "created_at": utcnow(),
+        "sha256": batch_stats.content_hash(stats, sizes),
+        "group_sizes": sizes,
+        "imputed": 0,
+    }
+    ctx.storage.batches.add(name, metric["uid"], meta, stats.to_bytes(), b"", b"",
+                            allow_duplicate=allow_duplicate)
+    return _summary(meta)
+
+
 def _summary(meta: dict[str, Any]) -> dict[str, Any]:
     out = {k: meta[k] for k in ("batch_id", "records", "groups", "created_at", "sha256")}
     out["imputed"] = int(meta.get("imputed", 0))
+    out["kind"] = meta.get("kind", "records")
     return out
 
 
@@ -112,7 +139,8 @@ def delete_batch(ctx: Context, name: str, batch_id: str) -> None:
 
 
 def load_training_data(ctx: Context, name: str) -> list[dict[str, Any]]:
-    """Batches for a fit: ``meta``, ``X``, ``labels`` and ``stats`` (BatchStats)."""
+    """Batches for a fit: ``meta``, ``X``, ``labels`` and ``stats`` (BatchStats);
+    ``X`` and ``labels`` are None for a statistics-only batch."""
     rows = ctx.storage.batches.load(name)
     for row in rows:
         row["stats"] = BatchStats.from_bytes(row["stats"])

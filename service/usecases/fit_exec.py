@@ -23,6 +23,7 @@ from service.store import ActiveChanged, MissingMetric, StaleAttempt
 from service.tables import encoded_names
 
 from .batches import load_training_data
+from .drift import reference_blob
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -164,21 +165,29 @@ def _attempt(ctx: Context, fit: Fit, job_id: str,
         return _result(st.fits.get(fit_id), fit_id)
     progress("loading", 0.0)
     data = load_training_data(ctx, name)
-    if len(data) < 2:
-        return _result(fail_attempt(ctx, fit_id, job_id, f"metric {name!r} has {len(data)} "
-                                    "batch(es) now; a fit needs at least 2"), fit_id)
-    batches = [(d["X"], np.asarray(d["labels"])) for d in data]
+    raw = [d for d in data if d["X"] is not None]
+    if len(raw) < 2:
+        only = len(data) - len(raw)
+        return _result(fail_attempt(
+            ctx, fit_id, job_id,
+            f"metric {name!r} has {len(raw)} batch(es) with records now"
+            + (f" (and {only} statistics-only)" if only else "")
+            + "; a fit needs at least 2 with records (held-out scoring groups records)"),
+            fit_id)
+    batches = [(d["X"], np.asarray(d["labels"])) for d in raw]
     selector = MetricSelector(
         method=p["method"], alphas=p["alphas"], n_folds=p["n_folds"], max_rank=p["max_rank"],
         k_max=p["k_max"], random_state=p["seed"],
         progress=lambda stage, f: progress(stage, 0.05 + 0.85 * f))
     try:
-        selector.fit(batches, [d["stats"] for d in data])
+        selector.fit(batches, [d["stats"] for d in raw],
+                     stats_only=[d["stats"] for d in data if d["X"] is None])
     except CoreError as exc:
         return _result(fail_attempt(ctx, fit_id, job_id,
                                     f"{exc.field or 'batches'}: {exc.message}"), fit_id)
     fitted, report = selector.metric_, selector.report_
     progress("deciding", 0.92)
+    reference = reference_blob(fitted, batches)  # committed with the version
     n = st.versions.next_number(name)
     doc: dict[str, Any] = {
         "summary": {
@@ -213,7 +222,8 @@ def _attempt(ctx: Context, fit: Fit, job_id: str,
                  "reason": f"fit {fit_id}: {reason}", "fit_id": fit_id}
         try:
             st.versions.commit(name, metric["uid"], n, doc, expected_active=active,
-                               activate=activated, activation=entry, fit=done)
+                               activate=activated, activation=entry, fit=done,
+                               reference=reference)
             break
         except ActiveChanged:
             continue

@@ -78,16 +78,24 @@ def normalize_params(params: dict[str, Any] | None) -> dict[str, Any]:
     return p
 
 
+def _enough_batches(ctx: Context, name: str) -> None:
+    """409 unless the metric has 2 batches with records (cross-validation holds batches
+    out, and only batches with records can be scored); statistics-only ones add to them."""
+    kinds = [m.get("kind", "records") for m in ctx.storage.batches.metas(name)]
+    raw = sum(k == "records" for k in kinds)
+    if raw < 2:
+        raise Conflict(f"metric {name!r} has {raw} batch(es) with records and "
+                       f"{len(kinds) - raw} statistics-only; a fit needs at least 2 with "
+                       "records (cross-validation holds them out)")
+
+
 def request_fit(
     ctx: Context, name: str, params: dict[str, Any], requested_by: str
 ) -> tuple[dict[str, Any], bool]:
     """Queue a fit (True) or return the identical fit already queued or running (False)."""
     metric = require_metric(ctx, name)
     p = normalize_params(params)
-    n_batches = ctx.storage.metrics.counts(name)["batches"]
-    if n_batches < 2:
-        raise Conflict(f"metric {name!r} has {n_batches} batch(es); a fit needs at least 2 "
-                       "(cross-validation holds batches out)")
+    _enough_batches(ctx, name)
     digest = hashlib.sha256(json.dumps(p, sort_keys=True).encode()).hexdigest()[:32]
     dkey = ctx.storage.fits.dedupe_key(name, digest)
     holder = ctx.storage.fits.dedupe_holder(dkey)
@@ -138,8 +146,7 @@ def retry_fit(ctx: Context, fit_id: str, requested_by: str) -> dict[str, Any]:
     if fit.status is not FitStatus.FAILED:
         raise Conflict(f"fit {fit_id} is {fit.status}; only a failed fit can be retried")
     name = fit.metric
-    if ctx.storage.metrics.counts(name)["batches"] < 2:
-        raise Conflict(f"metric {name!r} has fewer than 2 batches; add batches first")
+    _enough_batches(ctx, name)
     job_id = jobqueue.job_id_for(ctx, fit_id, fit.runs + 1)
     moved = ctx.storage.fits.change(
         fit_id, lambda f: f.requeue(job_id, requested_by)

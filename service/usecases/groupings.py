@@ -15,6 +15,7 @@ from service.core import CoreError, FittedMetric, RecordOverflowError, group_rec
 from service.errors import Conflict, InvalidInput, NotFound, from_core
 from service.tables import Table
 
+from . import drift
 from .metrics import require_metric
 from .versions import check_version_number
 
@@ -90,15 +91,18 @@ def group(
         raise InvalidInput.field(field, message, f"{field}: {message}") from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
+    drift.record(ctx, metric, version, fitted, m.X, g)
+    margins = g.margins.astype(float)
     answer = {
         "version": version,
         "k": int(g.k),
         "k_chosen": bool(g.k_chosen),
-        "labels": [int(v) for v in g.labels],
-        "distances": [float(v) for v in g.distances],
+        "labels": g.labels.astype(int).tolist(),
+        "distances": g.distances.astype(float).tolist(),
         # one group has no runner-up centre: its margin is undefined (null), not Infinity
-        "margins": [float(v) if np.isfinite(v) else None for v in g.margins],
-        "sizes": [int(v) for v in g.sizes],
+        "margins": margins.tolist() if np.isfinite(margins).all()
+        else [v if np.isfinite(v) else None for v in margins.tolist()],
+        "sizes": g.sizes.astype(int).tolist(),
         "imputed": m.imputed,
     }
     if m.imputed:

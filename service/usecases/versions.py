@@ -6,7 +6,7 @@ from typing import TYPE_CHECKING, Any
 
 from service.clock import utcnow
 from service.core import FittedMetric
-from service.errors import InvalidInput, NotFound
+from service.errors import Conflict, InvalidInput, NotFound
 from service.store import MissingVersion
 
 from .metrics import require_metric
@@ -21,6 +21,16 @@ def check_version_number(n: Any, field: str = "version") -> int:
     if isinstance(n, bool) or not isinstance(n, int) or n < 1:
         raise InvalidInput.field(field, "a version number (whole number ≥ 1)")
     return n
+
+
+def chosen_version(ctx: Context, name: str, version: Any) -> int:
+    """``version`` checked, or else the active version (409 when none is)."""
+    if version is not None:
+        return check_version_number(version)
+    active = ctx.storage.versions.active(name)
+    if active is None:
+        raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
+    return active
 
 
 def list_versions(ctx: Context, name: str) -> dict[str, Any]:

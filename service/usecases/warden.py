@@ -7,6 +7,9 @@ The warden runs in every worker process (``workers.worker``, every
 
 - a running fit whose attempt's lease lapsed (its worker died) gets a new job while
   attempts are left (``Settings.fit_retries``), else fails;
+- a queued fit whose job is stranded — taken by a worker that died before the fit
+  began, or lost between the queue's moves in a crash — gets a new job (the attempt
+  never began, so none is spent), after ``Settings.stranded_seconds``;
 - the queue hands back jobs whose worker stopped heartbeating (retried while
   retries are left, else failed);
 - a fit whose job no longer exists fails ("the queue job of this fit no longer exists");
@@ -59,6 +62,9 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
         return fit
     if fit.status is FitStatus.RUNNING and ctx.storage.fits.lease_holder(fit.fit_id) is None:
         return _hand_over(ctx, fit)
+    if fit.status is FitStatus.QUEUED and jobqueue.stranded(
+            ctx, fit.job_id, ctx.settings.stranded_seconds):
+        return _reissue(ctx, fit)
     state, error = jobqueue.job_state(ctx, fit.job_id)
     if _move(fit, state, error) is None:
         return fit
@@ -67,6 +73,20 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
         fit.fit_id,
         lambda f: _move(f, state, error) if (f.status, f.job_id, f.attempts) == seen
         else None)
+    return changed or ctx.storage.fits.get(fit.fit_id) or fit
+
+
+def _reissue(ctx: Context, fit: Fit) -> Fit:
+    seen = (fit.status, fit.job_id, fit.attempts)
+    job_id = jobqueue.job_id_for(ctx, fit.fit_id, fit.runs + 1)
+    changed = ctx.storage.fits.change(
+        fit.fit_id, lambda f: f.reissue(job_id)
+        if (f.status, f.job_id, f.attempts) == seen else None,
+        enqueue=jobqueue.enqueuer(ctx, fit.fit_id, job_id))
+    if changed is not None:
+        log.warning("fit %s: its queue job %s was stranded; queued again as %s",
+                    fit.fit_id, fit.job_id, job_id)
+        jobqueue.forget(ctx, fit.job_id)
     return changed or ctx.storage.fits.get(fit.fit_id) or fit
 
 

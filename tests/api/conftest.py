@@ -69,13 +69,18 @@ def _snapshot(ctx: Context) -> dict[bytes, Any]:
 
 @pytest.fixture
 def unchanged(ctx: Context) -> Callable[[], contextlib.AbstractContextManager[None]]:
-    """``with unchanged(): ...`` fails if any key of this deployment changed inside."""
+    """``with unchanged(): ...`` fails if any key of this deployment changed inside
+    (keys starting with ``but`` aside)."""
 
     @contextlib.contextmanager
-    def check() -> Iterator[None]:
-        before = _snapshot(ctx)
+    def check(but: str | None = None) -> Iterator[None]:
+        def snapshot() -> dict[bytes, Any]:
+            keys = _snapshot(ctx)
+            return {k: v for k, v in keys.items() if not (but and k.startswith(but.encode()))}
+
+        before = snapshot()
         yield
-        after = _snapshot(ctx)
+        after = snapshot()
         added = sorted(set(after) - set(before))
         removed = sorted(set(before) - set(after))
         changed = sorted(k for k in set(before) & set(after) if before[k] != after[k])

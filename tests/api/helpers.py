@@ -71,3 +71,22 @@ def post_batches(api: SpecClient, name: str, batches: list) -> list[str]:
         assert resp.status_code == 201, resp.get_json()
         ids.append(resp.get_json()["batch_id"])
     return ids
+
+
+def stats_doc(X: np.ndarray, labels: np.ndarray,
+              features: list[str] = IRIS_FEATURES) -> dict[str, Any]:
+    """A ``likewise.batch-stats/1`` document computed with numpy from the records (the
+    definitions of docs/batch-stats.md, written out directly)."""
+    mean = X.mean(axis=0)
+    C = X - mean
+    between = np.zeros((X.shape[1], X.shape[1]))
+    sizes = {}
+    for g in np.unique(labels):
+        rows = labels == g
+        sizes[str(g)] = int(rows.sum())
+        dm = X[rows].mean(axis=0) - mean
+        between += rows.sum() * np.outer(dm, dm)
+    return {"format": "likewise.batch-stats/1", "features": list(features),
+            "n": int(X.shape[0]), "k": len(sizes), "group_sizes": sizes,
+            "sums": X.sum(axis=0).tolist(), "scatter": (C.T @ C).tolist(),
+            "between": between.tolist()}

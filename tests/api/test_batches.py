@@ -106,7 +106,8 @@ def test_post_unsupported_media_is_415(api: SpecClient, metric: str, unchanged,
                                        content_type: str | None) -> None:
     with unchanged():
         kwargs = {"content_type": content_type} if content_type else {}
-        assert_problem(api.post(URL, data="{}", **kwargs), 415)
+        body = assert_problem(api.post(URL, data="{}", **kwargs), 415)
+        assert "application/vnd.likewise.batch-stats+json" in body["detail"]
     _no_batches(api)
 
 

@@ -162,3 +162,43 @@ def test_extra_columns_ride_along_when_asked(api: SpecClient, metric: str) -> No
     dup = api.post(f"{URL}?ignore_extra_columns=true", json=body)
     assert_problem(dup, 409)
     assert dup.get_json()["batch_id"] == ok.get_json()["batch_id"]
+
+
+def test_large_json_is_parsed_in_the_helper_with_the_same_answers(api: SpecClient,
+                                                                  metric: str,
+                                                                  unchanged) -> None:
+    """A JSON body over the offload size goes to the parser process: the same batch,
+    the same problems (field names included) as an inline parse."""
+    import json
+
+    from service.api import offload
+
+    X, y = iris_batches(1)[0]
+    reps = 2 * (offload.OFFLOAD_BYTES // len(json.dumps(records_body(X, y))) + 1)
+    big_X, big_y = np.vstack([X] * reps), np.concatenate([y] * reps)
+    body = json.dumps(records_body(big_X, big_y))
+    assert len(body) > offload.OFFLOAD_BYTES
+    with unchanged():
+        dup_at = len(big_X) - 2  # a record near the end repeats a key
+        at = -1
+        for _ in range(dup_at + 1):
+            at = body.index('"petal_width"', at + 1)
+        text = body[:at] + '"petal_width": 1.0, ' + body[at:]
+        assert_problem(api.post(URL, data=text, content_type="application/json"), 422,
+                       f"records[{dup_at}]")
+        assert_problem(api.post(URL, data=body[:-5], content_type="application/json"), 400)
+        assert_problem(api.post(URL, data=body.replace('"groups"', '"labels"'),
+                                content_type="application/json"), 422, "groups")
+    stored = api.post(URL, data=body, content_type="application/json")
+    assert stored.status_code == 201, stored.get_json()
+    assert offload._pool is not None  # it went through the helper
+    assert stored.get_json()["sha256"] == _inline_hash(big_X, big_y)
+
+
+def _inline_hash(X: np.ndarray, y: np.ndarray) -> str:
+    """The content hash of the same batch parsed inline, in this process."""
+    from service.tables import from_json
+    from service.usecases.batches import content_hash
+
+    table = from_json(records_body(X, y))
+    return content_hash(table.matrix(IRIS_FEATURES).X, [int(v) for v in y])

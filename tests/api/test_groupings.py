@@ -25,13 +25,15 @@ def held_out() -> tuple[np.ndarray, np.ndarray]:
 
 
 def test_grouping_with_the_active_version(
-    api: SpecClient, fitted: dict[str, Any], held_out, unchanged
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], held_out, unchanged
 ) -> None:
     X, truth = held_out
     k = len(set(truth.tolist()))
-    with unchanged():  # grouping reads only
+    drift_keys = ctx.storage.keys.metric("iris", "drift", "")
+    with unchanged(but=drift_keys):  # grouping stores only its drift summary
         resp = api.post(URL, json={"records": as_records(X), "k": k})
     assert resp.status_code == 200
+    assert len(list(ctx.redis.scan_iter(match=drift_keys + "*"))) == 1  # one hourly bucket
     g = resp.get_json()
     assert (g["version"], g["k"], g["k_chosen"]) == (1, k, False)
     assert len(g["labels"]) == len(g["distances"]) == len(g["margins"]) == len(X)

@@ -64,6 +64,7 @@ def _requests(fit_id: str, batch_id: str) -> dict[str, tuple[str, str, Any]]:
         "v1.versions.history": ("GET", "/v1/metrics/iris/history", None),
         "v1.groupings.group": ("POST", "/v1/metrics/iris/groupings",
                                {"records": records_body(X, y)["records"], "k": 3}),
+        "v1.drift.drift_report": ("GET", "/v1/metrics/iris/drift", None),
         "v1.queues.queues": ("GET", "/v1/queues", None),
         "console.parts.overview": ("GET", "/console/parts/overview", None),
         "console.parts.metric": ("GET", "/console/parts/metrics/iris", None),

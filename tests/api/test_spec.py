@@ -55,6 +55,7 @@ def test_spec_enums_follow_the_code() -> None:
     """Learners, activation policies and fit states are listed once in code; the spec
     must say the same (adding a learner to the core must show up here)."""
     from service.core import METHODS
+    from service.core.drift import VERDICTS
     from service.usecases import fits
 
     schemas = load_spec()["components"]["schemas"]
@@ -62,6 +63,7 @@ def test_spec_enums_follow_the_code() -> None:
     assert schemas["LearnedMethod"]["enum"] == list(METHODS)
     assert schemas["ActivatePolicy"]["enum"] == list(fits.ACTIVATE)
     assert schemas["FitStatus"]["enum"] == list(fits.STATUSES)
+    assert schemas["DriftVerdict"]["enum"] == list(VERDICTS)
 
 
 def test_every_error_response_is_problem_json() -> None:

@@ -358,3 +358,64 @@ def test_sigterm_during_a_fit_then_a_new_start_finishes_it(settings, tmp_path):
         assert out["status"] == "succeeded" or out["error"], out
     finally:
         assert _stop(proc2) == 0
+
+
+@pytest.mark.timeout(300)
+def test_two_worst_case_bodies_leave_healthz_answering(settings, tmp_path):
+    """Two bodies at the size limit, each as costly to parse as JSON gets (millions of
+    tiny numbers), posted at once: /healthz keeps answering within 1 s throughout.
+    (A stall check with the issue's bound, not a speed claim: JSON parsing holds its
+    process's GIL, and the default of one web process more than cores leaves one free.)"""
+    import http.client
+    import threading
+    from urllib.parse import urlsplit
+
+    limit = 16 * 1024 * 1024
+    env = {**launcher_env(settings), "LIKEWISE_MAX_REQUEST_BYTES": str(limit)}
+    env.pop("LIKEWISE_WEB_WORKERS", None)  # the default: cores + 1
+    proc, base = _start(env, tmp_path)
+    http_ = Client(base, TOKEN)
+    try:
+        http_.put_metric("wide", ["a", "b", "c", "d"])
+        row = b"[0,0,0,0],"
+        body = b'{"rows": [' + row * ((limit - 64) // len(row)) + b'[0,0,0,0]], ' \
+               b'"columns": ["a","b","c","d"], "groups": [0]}'
+        assert len(body) <= limit
+        answers: list[int] = []
+
+        def post() -> None:
+            url = urlsplit(base)
+            conn = http.client.HTTPConnection(url.hostname, url.port, timeout=120)
+            try:
+                conn.request("POST", "/v1/metrics/wide/batches", body=body,
+                             headers={"Authorization": f"Bearer {TOKEN}",
+                                      "Content-Type": "application/json"})
+                answers.append(conn.getresponse().status)
+            finally:
+                conn.close()
+
+        posters = [threading.Thread(target=post) for _ in range(2)]
+        for t in posters:
+            t.start()
+        slowest, probes = 0.0, 0
+        url = urlsplit(base)
+        while any(t.is_alive() for t in posters):
+            started = time.monotonic()
+            # a new connection per probe, as an orchestrator's probe makes (a kept-alive
+            # one stays with the process it first reached)
+            probe = http.client.HTTPConnection(url.hostname, url.port, timeout=30)
+            try:
+                probe.request("GET", "/healthz")
+                assert probe.getresponse().status == 200
+            finally:
+                probe.close()
+            slowest = max(slowest, time.monotonic() - started)
+            probes += 1
+        for t in posters:
+            t.join(timeout=120)
+        # refused as too many records / labels, never a 500 or a stall
+        assert len(answers) == 2 and all(400 <= a < 500 for a in answers), answers
+        assert probes > 1 and slowest < 1.0, (probes, slowest)
+    finally:
+        http_.close()
+        assert _stop(proc) == 0

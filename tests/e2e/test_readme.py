@@ -90,7 +90,7 @@ def _python_and_cli_sections_work(base: str, cwd: Path) -> None:
     assert "succeeded 100%" in out.stdout and "version 1" in out.stdout
     assert "422" in out.stdout  # the refused batch names its fields
 
-    (block,) = re.findall(r"```sh\n(.*?)```", _section("Operating", "Running it for real"),
+    (block,) = re.findall(r"```sh\n(.*?)```", _section("Operating", "From an ETL job"),
                           flags=re.S)
     script = "set -euo pipefail\n" + block.replace(
         ".venv/bin/likewise", f"{sys.executable} -m service.cli")
@@ -99,5 +99,21 @@ def _python_and_cli_sections_work(base: str, cwd: Path) -> None:
     assert out.returncode == 0, out.stdout[-2000:] + out.stderr[-2000:]
     (cwd / "cli-session.txt").write_text(out.stdout)  # kept with the test's files
     for text in ("parcels", "held-out ARI", "hub_minutes", "version 1 -> 2",
-                 "version 2 -> 1", "fit queue at", "dry run: would delete 2 batches"):
+                 "version 2 -> 1", "fit queue at", "dry run: would delete 3 batches"):
         assert text in out.stdout, (text, out.stdout[-3000:])
+    _etl_section_works(base, cwd, env)
+
+
+def _etl_section_works(base: str, cwd: Path, env: dict[str, str]) -> None:
+    """The "From an ETL job" examples (pandas, then Dask), in one Python session."""
+    blocks = re.findall(r"```python\n(.*?)```", _section("From an ETL job", "Running it"),
+                        flags=re.S)
+    assert len(blocks) == 2
+    code = "\n".join(blocks).replace("http://127.0.0.1:8000", base)
+    out = subprocess.run([sys.executable, "-c", code], cwd=cwd, env=env,
+                         capture_output=True, text=True, timeout=180)
+    assert out.returncode == 0, out.stdout[-2000:] + out.stderr[-2000:]
+    assert out.stdout.splitlines().count("statistics") == 3  # the posted batches' kind
+    assert "3 of 5 batches were statistics" in out.stdout
+    assert "parcel_id" in out.stdout and "margin" in out.stdout
+    assert "version 2 from 9 batches" in out.stdout

@@ -15,8 +15,9 @@ from pathlib import Path
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
+from likewise_client import Client
 from tests.api.helpers import iris_batches, records_body
-from tests.e2e.test_flow import TOKEN, Http, _fit, _start, _stop, launcher_env
+from tests.e2e.test_flow import TOKEN, _fit, _start, _stop, launcher_env
 from tests.service.test_worker_words import RQ_SENTENCES
 
 N_REQUESTS = 40
@@ -29,16 +30,22 @@ def _writers(folder: Path) -> set[int]:
     return {int(f.stem.rsplit("_", 1)[1]) for f in folder.glob("counter_*.db")}
 
 
-def _samples(http: Http) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
+def _samples(base: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
     import urllib.request
 
-    with urllib.request.urlopen(http.base + "/metrics", timeout=30) as resp:
+    with urllib.request.urlopen(base + "/metrics", timeout=30) as resp:
         text = resp.read().decode()
     out = {}
     for family in text_string_to_metric_families(text):
         for s in family.samples:
             out[(s.name, tuple(sorted(s.labels.items())))] = s.value
     return out
+
+
+def _probe(base: str) -> int:
+    """GET /healthz on a new connection (a kept-alive one stays with one process)."""
+    with urllib.request.urlopen(base + "/healthz", timeout=30) as resp:
+        return resp.status
 
 
 def _web_processes(launcher_pid: int) -> tuple[Path, set[int]]:
@@ -59,7 +66,7 @@ def _web_processes(launcher_pid: int) -> tuple[Path, set[int]]:
 def test_metrics_add_up_across_two_web_processes(settings, tmp_path):
     env = {**launcher_env(settings), "LIKEWISE_WEB_WORKERS": "2"}
     proc, base = _start(env, tmp_path)
-    http = Http(base)
+    http = Client(base, TOKEN)
     try:
         folder, pids = _web_processes(proc.pid)
         assert len(pids) == 2
@@ -69,36 +76,37 @@ def test_metrics_add_up_across_two_web_processes(settings, tmp_path):
         made = 0
         while made < N_REQUESTS or _writers(folder) != pids:
             assert made < MAX_REQUESTS, f"one process served all {made} requests"
-            assert Http(base, None)("GET", "/healthz")[0] == 200
+            assert _probe(base) == 200
             made += 1
         totals = set()
         for _ in range(SCRAPES):
-            s = _samples(http)
+            s = _samples(base)
             totals.add(sum(v for (name, labels), v in s.items()
                            if name == "likewise_http_requests_total"
                            and ("route", "/healthz") in labels))
         assert totals == {made}
 
         # a fit, a grouping and an operator's activation, then the Redis-read series
-        assert http("PUT", "/v1/metrics/iris",
+        assert http.request("PUT", "/v1/metrics/iris",
                     {"features": ["sepal_length", "sepal_width", "petal_length",
                                   "petal_width"]})[0] == 201
         batches = iris_batches(6)
         for X, labels in batches:
-            assert http("POST", "/v1/metrics/iris/batches", records_body(X, labels))[0] == 201
+            answer = http.request("POST", "/v1/metrics/iris/batches", records_body(X, labels))
+            assert answer[0] == 201
         fit = _fit(http, "iris", {})
         X, labels = batches[0]
         body = {"records": records_body(X, labels)["records"], "k": 3}
-        assert http("POST", "/v1/metrics/iris/groupings", body)[0] == 200
-        assert http("PUT", "/v1/metrics/iris/active",
+        assert http.request("POST", "/v1/metrics/iris/groupings", body)[0] == 200
+        assert http.request("PUT", "/v1/metrics/iris/active",
                     {"version": 1, "reason": "telemetry check"})[0] == 200
 
-        fits = http("GET", "/v1/fits?metric=iris")[1]["fits"]
+        fits = http.request("GET", "/v1/fits?metric=iris")[1]["fits"]
         by_outcome = {o: sum(f["status"] == o for f in fits) for o in ("succeeded", "failed")}
-        history = http("GET", "/v1/metrics/iris/history")[1]["history"]
+        history = http.request("GET", "/v1/metrics/iris/history")[1]["history"]
         seen = []
         for _ in range(SCRAPES):
-            s = _samples(http)
+            s = _samples(base)
             seen.append((
                 {o: s[("likewise_fits_ended_total", (("outcome", o),))] for o in by_outcome},
                 {o: s[("likewise_fit_run_seconds_count", (("outcome", o),))]

@@ -210,6 +210,36 @@ def test_lost_queue_job_is_reported_failed(ctx: Context, run_worker_burst) -> No
     assert fits.get_fit(ctx, fit["fit_id"])["status"] == "succeeded"
 
 
+@pytest.mark.parametrize("taken", [True, False])
+def test_a_stranded_job_is_issued_again(ctx: Context, run_worker_burst, taken: bool) -> None:
+    """A crash between the queue's moves: a worker took the job (and, with ``taken``,
+    marked it started) but died before the fit began. The queue's real dequeue and
+    bookkeeping calls make that state; no worker runs the job. The warden gives the
+    fit a new job once the old one is older than ``stranded_seconds``."""
+    from rq import Queue, Worker
+
+    setup_metric(ctx, "m", n=2)
+    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    old_job = ctx.storage.fits.get(fit["fit_id"]).job_id
+    job, _ = Queue.dequeue_any([ctx.queue], timeout=None, connection=ctx.redis)
+    assert job.id == old_job and ctx.queue.count == 0
+    if taken:
+        Worker([ctx.queue], connection=ctx.redis,
+               name=f"{ctx.settings.key_prefix}-gone").prepare_job_execution(job)
+    # within the grace period it is left alone (a live worker begins a fit at once)
+    assert warden.sweep(ctx) == 0
+    assert ctx.storage.fits.get(fit["fit_id"]).job_id == old_job
+    eager = _ctx_with(ctx, stranded_seconds=0)
+    assert warden.sweep(eager) == 1 and warden.sweep(eager) == 0
+    again = ctx.storage.fits.get(fit["fit_id"])
+    assert again.status.value == "queued" and again.job_id != old_job
+    assert again.attempts == 0 and "lost" in again.error
+    assert ctx.queue.count == 1
+    run_worker_burst(ctx)
+    done = fits.get_fit(ctx, fit["fit_id"])
+    assert done["status"] == "succeeded" and done["attempts"] == 1, done
+
+
 def test_timeout_fails_the_fit(ctx: Context, run_worker_burst, monkeypatch) -> None:
     """The work horse exceeds Settings.fit_timeout and RQ kills it (no retries left)."""
     short = _ctx_with(ctx, fit_timeout=1, fit_retries=0)

@@ -1,0 +1,102 @@
+"""Grouping through the API against k-means in process on the same mapped records.
+
+A metric is fitted on digits batches (UCI optical digits, scikit-learn's copy; the
+first 20 pixel features that vary), then records drawn from the data set are grouped
+through the Flask app in process (real Redis; JSON in and out) and, as the reference,
+by the core's ``group_records`` on the same matrix, in the same run. Targets (issue 9):
+1,000 × 20 ≤ 1.5 × the reference, 100,000 × 20 ≤ 1.2 ×, and ``"k": "auto"`` ≤ 2 × a
+fixed k through the API.
+
+    .venv/bin/python bench/grouping.py [--quick]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import secrets
+import statistics
+import sys
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+import numpy as np  # noqa: E402
+
+from bench._redis import clean_up, fit_once, redis_url, verdict  # noqa: E402
+from service.api import create_app  # noqa: E402
+from service.config import Settings  # noqa: E402
+from service.context import Context  # noqa: E402
+from service.core import FittedMetric, group_records  # noqa: E402
+from service.usecases import metrics, versions  # noqa: E402
+from tests.datasets import load_open, make_batches  # noqa: E402
+
+K = 5
+
+
+def _median_time(fn, repeats: int) -> float:
+    times = []
+    for _ in range(repeats):
+        started = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - started)
+    return statistics.median(times)
+
+
+def main(quick: bool) -> None:
+    url, server = redis_url()
+    prefix = f"lwb-{secrets.token_hex(4)}"
+    settings = Settings(redis_url=url, key_prefix=prefix, admin_token="bench",
+                        max_request_bytes=256 * 1024 * 1024)
+    ctx = Context.build(settings)
+    X, y = load_open("digits")
+    X = X[:, np.argsort(X.std(axis=0))[::-1][:20]]  # the 20 most varied pixels
+    feats = [f"px{j:02d}" for j in range(X.shape[1])]
+    sizes = (1000,) if quick else (1000, 100_000)
+    repeats = 2 if quick else 7
+    rows = []
+    try:
+        metrics.put_metric(ctx, "bench", feats)
+        fit_once(ctx, "bench", feats, make_batches(X, y, 6, np.random.default_rng(0)))
+        fitted = FittedMetric.from_dict(versions.get_version(ctx, "bench", 1)["metric"])
+        client = create_app(context=ctx).test_client()
+        headers = {"Authorization": "Bearer bench"}
+        rng = np.random.default_rng(1)
+        for n in sizes:
+            Xn = X[rng.integers(0, len(X), n)] + rng.normal(0, 0.01, (n, X.shape[1]))
+            bodies = {k: json.dumps({"columns": feats, "rows": Xn.tolist(), "k": k})
+                      for k in (K, "auto")}
+
+            def api(k, bodies=bodies) -> None:
+                resp = client.post("/v1/metrics/bench/groupings", data=bodies[k],
+                                   content_type="application/json", headers=headers)
+                assert resp.status_code == 200, resp.get_data(as_text=True)[:300]
+
+            api(K)  # warm the version cache
+            ref = _median_time(lambda Xn=Xn: group_records(fitted, Xn, k=K), repeats)
+            fixed = _median_time(lambda: api(K), repeats)
+            auto = _median_time(lambda: api("auto"), repeats)
+            rows.append((n, ref, fixed, auto))
+    finally:
+        clean_up(ctx.redis, prefix, server)
+    print(f"Grouping {K} groups through the API (JSON in and out) against group_records in "
+          f"process, median of {repeats} (load average {os.getloadavg()[0]:.2f})")
+    print(f"{'records':>9} {'in process s':>13} {'API k=5 s':>10} {'ratio':>6} "
+          f"{'API auto s':>11} {'auto/k=5':>9}")
+    for n, ref, fixed, auto in rows:
+        print(f"{n:>9,} {ref:>13.4f} {fixed:>10.4f} {fixed / ref:>6.2f} {auto:>11.4f} "
+              f"{auto / fixed:>9.2f}")
+    for n, ref, fixed, auto in rows:
+        limit = 1.5 if n <= 1000 else 1.2
+        print(f"target: {n:,} × 20 through the API ≤ {limit} × in process: "
+              f"{fixed / ref:.2f} — {verdict(fixed / ref <= limit)}; k auto ≤ 2 × fixed k: "
+              f"{auto / fixed:.2f} — {verdict(auto / fixed <= 2)}")
+
+
+if __name__ == "__main__":
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--quick", action="store_true")
+    main(parser.parse_args().quick)

@@ -1,0 +1,182 @@
+"""Drift watch: how far the records being grouped are from a version's training batches.
+
+* At fit time, :func:`reference_blob` summarises the training batches as seen through
+  the new version (each batch grouped with its own number of labelled groups) and
+  the fit commits it in the version's own transaction.
+* Every grouping calls :func:`record`: the request's summary goes into the hour's
+  bucket of that version (one round trip; never the records).
+* :func:`report` scores the buckets since a time against the reference
+  (:func:`service.core.drift.compare`); :func:`latest_verdicts` gives every metric's
+  verdict for its active version over the whole retention, for dashboards.
+
+Versions fitted before drift watch have no reference: nothing is recorded for them
+and their report is a 409.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from datetime import datetime, timezone
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from service.clock import iso_utc
+from service.core import CoreError, FittedMetric, Grouping, group_records
+from service.core.drift import (
+    FEATURE_LAYOUT,
+    GROUP_LAYOUT,
+    THRESHOLDS,
+    Moments,
+    Reference,
+    Summary,
+    build_reference,
+    compare,
+    empty_summary,
+    summarise,
+)
+from service.errors import Conflict, InvalidInput, NotFound
+from service.store.codecs import pack_json, unpack_json
+from service.tables import encoded_names
+
+from .metrics import require_metric
+from .versions import chosen_version
+
+if TYPE_CHECKING:
+    from service.context import Context
+
+HOUR = 3600
+
+
+def _hour(at: datetime) -> int:
+    return int(at.timestamp()) // HOUR
+
+
+def _now() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+# ---- at fit time ---------------------------------------------------------------------
+def reference_blob(fitted: FittedMetric, batches: Sequence[tuple[np.ndarray, np.ndarray]]
+                   ) -> bytes | None:
+    """The stored drift reference of a new version: its training batches, each grouped
+    through it with as many groups as its labels name. None if they cannot be grouped
+    (the version is then stored without a reference)."""
+    try:
+        seen = [(X, group_records(fitted, X, len(np.unique(labels)))) for X, labels in batches]
+        return pack_json(build_reference(fitted, seen).to_dict())
+    except CoreError:
+        return None
+
+
+# ---- on every grouping ---------------------------------------------------------------
+def _reference(ctx: Context, metric: dict[str, Any], n: int) -> Reference | None:
+    """Version ``n``'s reference, cached like the version (both are immutable)."""
+    key = ("drift-reference", metric["name"], metric["uid"], n)
+    cached = ctx.cache.get(key)
+    if cached is None:
+        blob = ctx.storage.drift.reference(metric["name"], n)
+        cached = (Reference.from_dict(unpack_json(blob)) if blob is not None else None,)
+        ctx.cache.put(key, cached)
+    return cached[0]
+
+
+def _sizes(ref: Reference, n_features: int) -> dict[str, int]:
+    return {"f": n_features * FEATURE_LAYOUT.size, "m": ref.layouts.margins.size,
+            "d": ref.layouts.distances.size, "g": GROUP_LAYOUT.size}
+
+
+def record(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
+           X: np.ndarray, grouping: Grouping) -> None:
+    """Add one grouping request's summary to the current hour's bucket."""
+    ref = _reference(ctx, metric, version)
+    if ref is None:
+        return
+    s = summarise(fitted, X, grouping, ref.layouts)
+    ctx.storage.drift.add(
+        metric["name"], metric["uid"], version, _hour(_now()),
+        (ctx.settings.drift_hours + 1) * HOUR, s.moments.count, s.moments.mean,
+        s.moments.m2, {"f": s.features, "m": s.margins, "d": s.distances, "g": s.groups})
+
+
+# ---- reading -------------------------------------------------------------------------
+def _check_since(since: Any, now: datetime) -> datetime | None:
+    if since is None:
+        return None
+    try:
+        at = datetime.fromisoformat(since) if isinstance(since, str) else None
+    except ValueError:
+        at = None
+    if at is None:
+        raise InvalidInput.field("since", "an ISO 8601 time, e.g. 2024-05-01T08:00:00Z")
+    at = at if at.tzinfo is not None else at.replace(tzinfo=timezone.utc)
+    if at > now:
+        raise InvalidInput.field("since", "a time in the past")
+    return at
+
+
+def _live(ctx: Context, metric: dict[str, Any], n: int, ref: Reference, d: int,
+          first: int, last: int) -> tuple[Summary, int, int]:
+    """Merged buckets of hours ``first..last``: summary, requests, hours with data."""
+    buckets = ctx.storage.drift.buckets(metric["name"], metric["uid"], n,
+                                        list(range(first, last + 1)), _sizes(ref, d))
+    total = empty_summary(d, ref.layouts)
+    for b in buckets:
+        if b.count == 0 or len(b.mean) != d:
+            continue
+        c = b.counts
+        total = total.merge(Summary(Moments(b.count, b.mean, b.m2),
+                                    c["f"].reshape(d, FEATURE_LAYOUT.size), c["m"], c["d"],
+                                    c["g"]))
+    return total, sum(b.requests for b in buckets), len(buckets)
+
+
+def report(ctx: Context, name: str, version: int | None = None, since: Any = None
+           ) -> dict[str, Any]:
+    """Drift of the records grouped with ``version`` (default: the active one) since
+    ``since`` (ISO 8601; default and earliest: ``drift_hours`` ago; buckets are
+    hourly, so it counts from the start of its hour)."""
+    from .groupings import load_version_metric
+
+    metric = require_metric(ctx, name)
+    now = _now()
+    at = _check_since(since, now)
+    version = chosen_version(ctx, name, version)
+    # 404 for a missing version; scored per matrix column (a level of a categorical
+    # feature is a column of its own)
+    _, declared, inputs = load_version_metric(ctx, metric, version)
+    features = encoded_names(declared, inputs.get("categories"))
+    ref = _reference(ctx, metric, version)
+    if ref is None:
+        raise Conflict(f"version {version} of metric {name!r} has no drift reference "
+                       "(it was fitted before drift watch); fit a new version")
+    last = _hour(now)
+    first = max(_hour(at) if at is not None else 0, last - ctx.settings.drift_hours)
+    live, requests, hours = _live(ctx, metric, version, ref, len(features), first, last)
+    scores = compare(ref, live, features)
+    return {"name": name, "version": version,
+            "since": iso_utc(datetime.fromtimestamp(first * HOUR, timezone.utc)),
+            "until": iso_utc(now), "hours": hours, "requests": requests,
+            "reference_records": ref.summary.moments.count, **scores,
+            "thresholds": THRESHOLDS}
+
+
+def latest_verdicts(ctx: Context) -> dict[str, dict[str, Any]]:
+    """Every metric's verdict for its active version over the whole retention (for the
+    metrics exposition and the operator page): version, verdict, records, flagged.
+    ``verdict`` is None for a metric without an active version or without a reference."""
+    out: dict[str, dict[str, Any]] = {}
+    for name in ctx.storage.metrics.names():
+        try:
+            r = report(ctx, name)
+        except NotFound:  # deleted meanwhile
+            continue
+        except Conflict:
+            out[name] = {"version": ctx.storage.versions.active(name), "verdict": None,
+                         "records": 0, "flagged": []}
+            continue
+        out[name] = {k: r[k] for k in ("version", "verdict", "records", "flagged")}
+    return out
+
+
+__all__ = ["latest_verdicts", "record", "reference_blob", "report"]
