@@ -36,6 +36,9 @@ def test_the_frame_and_its_assets_are_open_and_carry_no_data(api: SpecClient) ->
         assert got.status_code == 200 and got.mimetype == mime
         assert "http://" not in got.get_data(as_text=True)  # no external source
         assert "https://" not in got.get_data(as_text=True)
+        again = api.get(f"/console/assets/{asset}", auth=False,
+                        headers={"If-None-Match": got.headers["ETag"]})
+        assert again.status_code == 304  # the browser's copy is still good
         got.close()
 
 
