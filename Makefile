@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed-stamp
 
-.PHONY: install run test bench lint demo clean
+.PHONY: install run test browser bench lint demo clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -20,7 +20,12 @@ run: $(STAMP)
 demo: $(STAMP)
 	$(BIN)/likewise demo
 
-test: $(STAMP)
+# Debian's chromium and chromium-driver for the console's browser test (tests/ui);
+# installs them only when missing, and never fails the run (the test skips instead)
+browser:
+	sh scripts/browser.sh
+
+test: $(STAMP) browser
 	$(BIN)/python -m pytest $(PYTEST_ARGS)
 
 bench: $(STAMP)

@@ -1,7 +1,8 @@
 """The HTTP API: ``create_app`` builds a Flask app around one :class:`Context`.
 
 Nothing connects at import time; ``create_app`` wires the context (Redis connects on
-first use). Routes: ``/v1/...`` (Bearer auth), ``/healthz``, ``/readyz``, ``/metrics``.
+first use). Routes: ``/v1/...`` (Bearer auth), ``/healthz``, ``/readyz``, ``/metrics``, and the
+operators' console under ``/console/`` (its data parts need a Bearer token too).
 """
 
 from __future__ import annotations
@@ -29,7 +30,18 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     from service.config import Settings
     from service.context import Context
 
-    from . import batches, drift, fits, groupings, health, metrics, telemetry, tracing, versions
+    from . import (
+        batches,
+        console,
+        drift,
+        fits,
+        groupings,
+        health,
+        metrics,
+        telemetry,
+        tracing,
+        versions,
+    )
     from .jsonio import FastJSON
 
     if context is None:
@@ -55,6 +67,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     v1.register_blueprint(health.v1_bp)
     app.register_blueprint(v1)
     app.register_blueprint(health.bp)
+    app.register_blueprint(console.bp)
     return app
 
 

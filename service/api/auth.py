@@ -1,4 +1,5 @@
-"""Bearer tokens and scopes for every ``/v1`` route (see :mod:`service.tokens`).
+"""Bearer tokens and scopes for every ``/v1`` route and the console's data parts (see
+:mod:`service.tokens`).
 
 Every ``/v1`` endpoint needs one scope (:data:`SCOPE_OF`; an endpoint missing from
 the table is refused, never open). A token restricted to some metrics may touch
@@ -34,6 +35,9 @@ SCOPE_OF: dict[str, str] = {
     "v1.groupings.group": "view",
     "v1.drift.drift_report": "view",
     "v1.queues.queues": "view",
+    # the console's data parts (service/api/console.py); its frame and assets are open
+    "console.parts.overview": "view",
+    "console.parts.metric": "view",
 }
 
 

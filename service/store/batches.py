@@ -93,6 +93,15 @@ class BatchStore:
                         "labels": unpack_json(labels) if labels else None})
         return out
 
+    def load_one(self, name: str, batch_id: str) -> dict[str, Any] | None:
+        """One batch with ``meta``, ``X`` (ndarray) and ``labels`` (list); None if gone."""
+        meta, matrix, labels = self.redis.hmget(self.keys.batch(name, batch_id),
+                                                ["meta", "matrix", "labels"])
+        if meta is None:
+            return None
+        return {"meta": json.loads(meta), "X": unpack_matrix(matrix),
+                "labels": unpack_json(labels)}
+
     def delete(self, name: str, batch_id: str) -> bool:
         k = self.keys
         bkey = k.batch(name, batch_id)

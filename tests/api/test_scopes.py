@@ -66,12 +66,15 @@ def _requests(fit_id: str, batch_id: str) -> dict[str, tuple[str, str, Any]]:
                                {"records": records_body(X, y)["records"], "k": 3}),
         "v1.drift.drift_report": ("GET", "/v1/metrics/iris/drift", None),
         "v1.queues.queues": ("GET", "/v1/queues", None),
+        "console.parts.overview": ("GET", "/console/parts/overview", None),
+        "console.parts.metric": ("GET", "/console/parts/metrics/iris", None),
     }
 
 
 def test_every_v1_route_needs_a_known_scope(scoped) -> None:
     app, _ = scoped
-    endpoints = {r.endpoint for r in app.url_map.iter_rules() if r.rule.startswith("/v1")}
+    guarded = ("/v1", "/console/parts")  # the console's data parts are guarded alike
+    endpoints = {r.endpoint for r in app.url_map.iter_rules() if r.rule.startswith(guarded)}
     assert endpoints == set(SCOPE_OF)
     assert set(SCOPE_OF.values()) == set(SCOPES)
 

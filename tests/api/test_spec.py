@@ -44,6 +44,9 @@ def test_v1_operations_require_bearer_and_probes_do_not() -> None:
             if path.startswith("/v1/"):
                 assert "security" not in op, f"{method} {path} must inherit bearer auth"
                 assert "401" in op["responses"], f"{method} {path} must document 401"
+            elif path.startswith("/console/parts/"):  # the console's data, guarded alike
+                assert op.get("security") == [{"bearer": []}], f"{method} {path}"
+                assert "401" in op["responses"], f"{method} {path} must document 401"
             else:
                 assert op.get("security") == [], f"{method} {path} is meant to be open"
 
