@@ -94,8 +94,8 @@ def _run(client: Client, weeks: int, seed: int) -> int:
             client.post_batch(METRIC, X, labels, columns=FEATURES)
     print(f"posted {len(train)} labelled weeks ({sum(len(y) for _, y in train)} shipments)")
 
-    learned = _fit(client, {"method": "auto", "activate": "always"})
-    baseline = _fit(client, {"method": "euclidean", "activate": "never"})
+    learned = _fit(client, {"method": "auto", "activate": "at_once"})
+    baseline = _fit(client, {"method": "euclidean", "activate": "by_hand"})
     version = client.get_version(METRIC, learned["version"])
     print(f"fit {learned['fit_id']}: version {learned['version']} "
           f"(method {version['method']}, rank {version['rank']}); "

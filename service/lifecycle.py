@@ -44,6 +44,9 @@ MOVES: dict[FitStatus, frozenset[FitStatus]] = {
     FitStatus.SUCCEEDED: frozenset(),
 }
 
+# activation policies under the names they had before (records stored then still read)
+FORMER_ACTIVATE = {"if_better": "when_better", "always": "at_once", "never": "by_hand"}
+
 PUBLIC_FIELDS = ("fit_id", "metric", "status", "progress", "stage", "params", "version",
                  "error", "decision", "created_at", "started_at", "ended_at",
                  "requested_by", "attempts")
@@ -84,6 +87,9 @@ class Fit:
         known = {k: v for k, v in record.items() if k in names}
         known["status"] = FitStatus(known.get("status", "queued"))
         known.setdefault("dedupe_key", None)
+        params = known.get("params")
+        if isinstance(params, dict) and params.get("activate") in FORMER_ACTIVATE:
+            known["params"] = {**params, "activate": FORMER_ACTIVATE[params["activate"]]}
         return cls(**known, extra={k: v for k, v in record.items() if k not in names})
 
     def to_record(self) -> dict[str, Any]:

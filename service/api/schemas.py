@@ -143,11 +143,16 @@ class GroupingSchema(_TableSchema):
     version = fields.Integer(strict=True, validate=validate.Range(min=1), allow_none=True)
 
 
+def _activate_policy(value: str) -> None:
+    if value not in ACTIVATE_POLICIES:
+        raise ValidationError(fits.activate_message(value))
+
+
 class FitSchema(_Strict):
     """Fit parameters; the ranges are those of ``service.usecases.fits.normalize_params``."""
 
     method = fields.String(load_default="auto", validate=validate.OneOf(FIT_METHODS))
-    activate = fields.String(load_default="if_better", validate=validate.OneOf(ACTIVATE_POLICIES))
+    activate = fields.String(load_default=fits.DEFAULTS["activate"], validate=_activate_policy)
     alphas = fields.List(
         PositiveNumber(),
         validate=validate.Length(min=1, max=fits.MAX_ALPHAS),

@@ -20,7 +20,7 @@ from service import jobqueue
 from service.clock import utcnow
 from service.core import METHODS as LEARNERS
 from service.errors import Conflict, InvalidInput, NotFound
-from service.lifecycle import Fit, FitStatus
+from service.lifecycle import FORMER_ACTIVATE, Fit, FitStatus
 
 from . import warden
 from .fit_exec import execute_fit
@@ -31,9 +31,13 @@ if TYPE_CHECKING:
 
 STATUSES = tuple(s.value for s in FitStatus)
 METHODS = ("auto", *LEARNERS)  # a new learner registered in the core is offered here
-ACTIVATE = ("if_better", "always", "never")
+# when_better: only if it scores at least the active version on the same folds;
+# at_once: whatever its score; by_hand: stored, activated later by a person
+ACTIVATE = ("when_better", "at_once", "by_hand")
+# the names the options had before (FORMER_ACTIVATE) are refused with a 422 naming the
+# new one, never aliased; stored fit records that carry them read under the new names
 DEFAULTS: dict[str, Any] = {
-    "method": "auto", "activate": "if_better", "alphas": None, "n_folds": 5,
+    "method": "auto", "activate": "when_better", "alphas": None, "n_folds": 5,
     "max_rank": None, "k_max": 10, "seed": 0,
 }
 MAX_ALPHAS = 32
@@ -54,6 +58,14 @@ def _int(params: dict[str, Any], key: str, lo: int, hi: int, optional: bool = Fa
                                  + (" or null" if optional else ""))
 
 
+def activate_message(given: Any) -> str:
+    """What to say about an activation policy that is not one of ours."""
+    choices = "one of " + ", ".join(ACTIVATE)
+    if isinstance(given, str) and given in FORMER_ACTIVATE:
+        return f"{given!r} is now called {FORMER_ACTIVATE[given]!r}; {choices}"
+    return choices
+
+
 def normalize_params(params: dict[str, Any] | None) -> dict[str, Any]:
     """Fill defaults and validate; the result is canonical (used for dedupe)."""
     params = dict(params or {})
@@ -65,7 +77,7 @@ def normalize_params(params: dict[str, Any] | None) -> dict[str, Any]:
     if p["method"] not in METHODS:
         raise InvalidInput.field("method", "one of " + ", ".join(METHODS))
     if p["activate"] not in ACTIVATE:
-        raise InvalidInput.field("activate", "one of " + ", ".join(ACTIVATE))
+        raise InvalidInput.field("activate", activate_message(p["activate"]))
     alphas = p["alphas"]
     if alphas is not None:
         if (not isinstance(alphas, list) or not 1 <= len(alphas) <= MAX_ALPHAS or any(

@@ -24,7 +24,7 @@ def test_fit_is_accepted_then_runs_on_a_real_worker(
     fit = resp.get_json()
     assert resp.headers["Location"] == f"/v1/fits/{fit['fit_id']}"
     assert (fit["status"], fit["progress"], fit["version"]) == ("queued", 0.0, None)
-    assert fit["params"]["method"] == "auto" and fit["params"]["activate"] == "if_better"
+    assert fit["params"]["method"] == "auto" and fit["params"]["activate"] == "when_better"
     assert fit["requested_by"] == "admin"
     assert api.get(resp.headers["Location"]).get_json()["status"] == "queued"
 
@@ -40,7 +40,7 @@ def test_identical_request_while_queued_returns_the_same_fit(
     api: SpecClient, with_batches: list[str]
 ) -> None:
     first = api.post(FITS, json={"method": "closed_form"})
-    second = api.post(FITS, json={"method": "closed_form", "activate": "if_better"})
+    second = api.post(FITS, json={"method": "closed_form", "activate": "when_better"})
     assert second.status_code == 202
     assert second.get_json()["fit_id"] == first.get_json()["fit_id"]
     assert second.headers["Location"] == first.headers["Location"]
@@ -183,6 +183,18 @@ def test_fit_invalid_params_are_422(
     with unchanged():
         assert_problem(api.post(FITS, json=body), 422, field)
     assert api.get("/v1/fits").get_json() == {"fits": []}
+
+
+@pytest.mark.parametrize(("former", "now"), [("if_better", "when_better"),
+                                           ("always", "at_once"), ("never", "by_hand")])
+def test_former_activation_policy_names_are_refused_naming_the_new_one(
+    api: SpecClient, with_batches: list[str], unchanged, former: str, now: str
+) -> None:
+    with unchanged():
+        body = assert_problem(api.post(FITS, json={"activate": former}), 422, "activate")
+    message = next(e["message"] for e in body["errors"] if e["field"] == "activate")
+    assert repr(now) in message and "when_better, at_once, by_hand" in message
+    assert api.get("/v1/fits").get_json()["fits"] == []
 
 
 @pytest.mark.parametrize(

@@ -32,7 +32,7 @@ def test_version_lists_and_details(
 def test_activate_roll_forward_and_back_with_history(
     api: SpecClient, fitted: dict[str, Any], fit_to_version: Callable[..., dict]
 ) -> None:
-    second = fit_to_version("iris", method="euclidean", activate="never")
+    second = fit_to_version("iris", method="euclidean", activate="by_hand")
     assert second["version"] == 2 and second["decision"]["activated"] is False
     assert api.get(BASE).get_json()["active_version"] == 1
     assert api.get(f"{BASE}/versions/2").get_json()["parent"] == 1

@@ -137,7 +137,7 @@ def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> 
         assert by_frame["version"] == 1 and by_frame["k"] == k
 
         second = lw.wait_for_fit(lw.start_fit(name, method="euclidean",
-                                              activate="never")["fit_id"], timeout=120)
+                                              activate="by_hand")["fit_id"], timeout=120)
         assert second["version"] == 2
         moved = lw.activate(name, 2, "client test")
         assert moved == {"name": name, "active_version": 2, "previous_version": 1}

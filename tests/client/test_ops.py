@@ -36,7 +36,7 @@ def two_versions(live, metric_name):
         lw.put_metric(metric_name, IRIS_FEATURES)
         for X, y in iris_batches(4):
             lw.post_batch(metric_name, X, y, columns=IRIS_FEATURES)
-        for params in ({}, {"method": "euclidean", "activate": "never"}):
+        for params in ({}, {"method": "euclidean", "activate": "by_hand"}):
             fit = lw.wait_for_fit(lw.start_fit(metric_name, **params)["fit_id"], 120)
             assert fit["status"] == "succeeded", fit
     return metric_name

@@ -32,7 +32,7 @@ def _ctx_with(ctx: Context, **changes) -> Context:
 
 
 def _expected_decision(ctx: Context, name: str, params: dict, active: int) -> bool:
-    """Recompute the if_better rule outside the service: the new configuration's held-out
+    """Recompute the when_better rule outside the service: the new configuration's held-out
     ARI against the active version's configuration re-scored on the same folds."""
     p = fits.normalize_params(params)
     data = load_training_data(ctx, name)
@@ -102,11 +102,11 @@ def test_activation_policies(ctx: Context, run_worker_burst) -> None:
     assert metrics.get_metric(ctx, "m")["active_version"] == 1
     assert versions.get_version(ctx, "m", 2)["parent"] == 1
 
-    never = fit({"activate": "never", "seed": 1})
+    never = fit({"activate": "by_hand", "seed": 1})
     assert never["decision"]["activated"] is False
-    assert never["decision"]["reason"].startswith("activate=never")
+    assert never["decision"]["reason"].startswith("activate=by_hand")
 
-    forced = fit({"method": "euclidean", "activate": "always"})
+    forced = fit({"method": "euclidean", "activate": "at_once"})
     assert forced["decision"]["activated"] is True
     assert metrics.get_metric(ctx, "m")["active_version"] == forced["version"] == 4
 

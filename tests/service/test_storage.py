@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import json
 import threading
 
 import numpy as np
@@ -215,3 +216,19 @@ def test_matrices_stored_in_the_old_zlib_format_still_load(ctx: Context) -> None
     rows = load_training_data(ctx, "m")
     assert_array_equal(rows[0]["X"], X)
     assert_array_equal(rows[1]["X"], data[1][0])
+
+
+def test_fit_records_stored_under_former_names_read_under_ours(ctx: Context) -> None:
+    # a record as stored before the activation policies were renamed
+    fit = Fit(fit_id="a" * 20, metric="m", metric_uid="u", params={"activate": "never"},
+              requested_by="t", job_id="job-a", dedupe_key=None, created_at="now",
+              created_ts=0.0)
+    record = fit.to_record()
+    ctx.redis.hset(ctx.storage.keys.fit(fit.fit_id), mapping={
+        k: json.dumps(v) for k, v in record.items()})
+    got = ctx.storage.fits.get(fit.fit_id)
+    assert got is not None and got.params["activate"] == "by_hand"
+    for former, now in (("if_better", "when_better"), ("always", "at_once")):
+        ctx.redis.hset(ctx.storage.keys.fit(fit.fit_id), "params",
+                       json.dumps({"activate": former}))
+        assert ctx.storage.fits.get(fit.fit_id).params == {"activate": now}
