@@ -237,7 +237,7 @@ class Client:
     def start_fit(self, metric: str, *, idempotency_key: str | None = None,
                   **params: Any) -> Json:
         """Queue a fit (``method``, ``activate``, ``alphas``, ``n_folds``, ``k_max``,
-        ``max_rank``, ``seed``; all optional). Returns the fit, status ``queued``."""
+        ``max_rank``, ``seed``; all optional). Returns the fit, status ``waiting``."""
         return self._create("POST", f"/v1/metrics/{metric}/fits", params, idempotency_key)
 
     def get_fit(self, fit_id: str) -> Json:

@@ -76,7 +76,7 @@ class FitStore:
         return self.keys.dedupe(name, params_hash)
 
     def dedupe_holder(self, dedupe_key: str) -> Fit | None:
-        """The fit a dedupe slot points at (a queued or running fit with those params)."""
+        """The fit a dedupe slot points at (a waiting or running fit with those params)."""
         fit_id = text(self.redis.get(dedupe_key))
         return self.get(fit_id) if fit_id else None
 

@@ -1,9 +1,9 @@
-"""Fits: queued, executed by workers; each success yields an immutable version.
+"""Fits: requested, then run by workers; each success yields an immutable version.
 
 A fit record lives in storage (``P:fit:{id}``, a :class:`~service.lifecycle.Fit`);
 the queue job only carries the fit id. Reads never write: the warden
 (:mod:`service.usecases.warden`) brings live fits in line with their jobs, so a fit
-whose worker died is queued again (retried) or failed — never "running" forever.
+whose worker died waits again (retried) or fails — never "running" forever.
 """
 
 from __future__ import annotations
@@ -93,7 +93,7 @@ def normalize_params(params: dict[str, Any] | None) -> dict[str, Any]:
 def request_fit(
     ctx: Context, name: str, params: dict[str, Any], requested_by: str
 ) -> tuple[dict[str, Any], bool]:
-    """Queue a fit (True) or return the identical fit already queued or running (False)."""
+    """Queue a fit (True) or return the identical fit already waiting or running (False)."""
     metric = require_metric(ctx, name)
     p = normalize_params(params)
     n_batches = ctx.storage.metrics.counts(name)["batches"]

@@ -23,10 +23,10 @@ def test_fit_is_accepted_then_runs_on_a_real_worker(
     assert resp.status_code == 202
     fit = resp.get_json()
     assert resp.headers["Location"] == f"/v1/fits/{fit['fit_id']}"
-    assert (fit["status"], fit["progress"], fit["version"]) == ("queued", 0.0, None)
+    assert (fit["status"], fit["progress"], fit["version"]) == ("waiting", 0.0, None)
     assert fit["params"]["method"] == "auto" and fit["params"]["activate"] == "when_better"
     assert fit["requested_by"] == "admin"
-    assert api.get(resp.headers["Location"]).get_json()["status"] == "queued"
+    assert api.get(resp.headers["Location"]).get_json()["status"] == "waiting"
 
     run_worker_burst(ctx, max_jobs=1)
     done = api.get(resp.headers["Location"]).get_json()
@@ -63,7 +63,7 @@ def test_list_fits_filters_by_metric_and_status(
 
     assert ids("") == [waiting, done]  # newest first
     assert ids("?metric=iris&status=succeeded") == [done]
-    assert ids("?status=queued") == [waiting]
+    assert ids("?status=waiting") == [waiting]
     assert ids("?metric=other") == []
 
 
@@ -90,7 +90,7 @@ def test_retry_a_failed_fit(
     resp = api.post(url, token=ETL_TOKEN)
     assert resp.status_code == 202
     assert resp.headers["Location"] == f"/v1/fits/{fit['fit_id']}"
-    assert (resp.get_json()["status"], resp.get_json()["error"]) == ("queued", None)
+    assert (resp.get_json()["status"], resp.get_json()["error"]) == ("waiting", None)
     run_worker_burst(ctx, max_jobs=1)
     done = api.get(f"/v1/fits/{fit['fit_id']}").get_json()
     assert (done["status"], done["version"]) == ("succeeded", 1)
@@ -201,6 +201,7 @@ def test_former_activation_policy_names_are_refused_naming_the_new_one(
     ("query", "status", "field"),
     [
         ("?status=done", 422, "status"),
+        ("?status=queued", 422, "status"),  # the former name of waiting
         ("?metric=Bad!", 422, "metric"),  # the query parameter at fault, not "name"
         ("?colour=red", 422, "colour"),
         ("?metric=nothing", 404, None),

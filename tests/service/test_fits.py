@@ -47,7 +47,7 @@ def _expected_decision(ctx: Context, name: str, params: dict, active: int) -> bo
 def test_fit_succeeds_and_version_1_is_active(ctx: Context, run_worker_burst) -> None:
     _, _, ids = setup_metric(ctx, "m", dataset="wine", n=4)
     fit, created = fits.request_fit(ctx, "m", {}, "etl")
-    assert created and fit["status"] == "queued" and fit["version"] is None
+    assert created and fit["status"] == "waiting" and fit["version"] is None
     job_id = ctx.storage.fits.get(fit["fit_id"]).job_id
     run_worker_burst(ctx)
     done = fits.get_fit(ctx, fit["fit_id"])
@@ -150,7 +150,7 @@ def test_failed_fit_is_retried_on_request(ctx: Context, run_worker_burst) -> Non
     X, y = data[1]
     batches.add_batch(ctx, "m", as_table(feats, X, y.tolist()))
     again = fits.retry_fit(ctx, fit["fit_id"], "admin")
-    assert again["fit_id"] == fit["fit_id"] and again["status"] == "queued"
+    assert again["fit_id"] == fit["fit_id"] and again["status"] == "waiting"
     assert again["error"] is None
     run_worker_burst(ctx)
     done = fits.get_fit(ctx, fit["fit_id"])
@@ -198,7 +198,7 @@ def test_lost_queue_job_is_reported_failed(ctx: Context, run_worker_burst) -> No
     fit, _ = fits.request_fit(ctx, "m", {}, "admin")
     Job.fetch(ctx.storage.fits.get(fit["fit_id"]).job_id, connection=ctx.redis).delete()
     # reads never write: the fit shows queued until the warden looks at it
-    assert fits.get_fit(ctx, fit["fit_id"])["status"] == "queued"
+    assert fits.get_fit(ctx, fit["fit_id"])["status"] == "waiting"
     assert warden.sweep(ctx) == 1 and warden.sweep(ctx) == 0
     lost = fits.get_fit(ctx, fit["fit_id"])
     assert lost["status"] == "failed" and "no longer exists" in lost["error"]
@@ -289,11 +289,11 @@ def test_worker_killed_mid_fit(ctx: Context, run_worker_burst, retries: int) -> 
     assert "worker running this fit stopped" in out["error"], out
     assert not Job.exists(first_job, connection=c.redis)  # the dead job is forgotten
     if retries:
-        assert out["status"] == "queued"
+        assert out["status"] == "waiting"
         assert c.storage.fits.get(fit["fit_id"]).job_id != first_job
         run_worker_burst(c)
         out = fits.get_fit(c, fit["fit_id"])
         assert (out["status"], out["attempts"], out["version"]) == ("succeeded", 2, 1), out
     else:
         assert out["status"] == "failed"
-        assert fits.retry_fit(c, fit["fit_id"], "admin")["status"] == "queued"
+        assert fits.retry_fit(c, fit["fit_id"], "admin")["status"] == "waiting"

@@ -232,3 +232,30 @@ def test_fit_records_stored_under_former_names_read_under_ours(ctx: Context) -> 
         ctx.redis.hset(ctx.storage.keys.fit(fit.fit_id), "params",
                        json.dumps({"activate": former}))
         assert ctx.storage.fits.get(fit.fit_id).params == {"activate": now}
+
+
+def test_fit_records_stored_with_the_former_waiting_status_read_as_waiting(
+    ctx: Context,
+) -> None:
+    from service.usecases import fits as fit_uc
+
+    feats, _, _ = setup_metric(ctx, "m", n=2)
+    uid = ctx.storage.metrics.get("m")["uid"]
+    fit = Fit(fit_id="b" * 20, metric="m", metric_uid=uid, params={"activate": "if_better"},
+              requested_by="t", job_id="job-b", dedupe_key=ctx.storage.fits.dedupe_key("m", "h"),
+              created_at="now", created_ts=1.0)
+    ctx.storage.fits.create(fit, enqueue=lambda pipe: None)
+    # as a record was written before ``waiting`` had its name
+    ctx.redis.hset(ctx.storage.keys.fit(fit.fit_id), mapping={
+        "status": json.dumps("queued"), "stage": json.dumps("queued")})
+    shown = fit_uc.get_fit(ctx, fit.fit_id)
+    assert (shown["status"], shown["stage"]) == ("waiting", "waiting")
+    assert shown["params"]["activate"] == "when_better"
+    assert [f["fit_id"] for f in fit_uc.list_fits(ctx, status="waiting")["fits"]] == [fit.fit_id]
+    assert ctx.storage.fits.get(fit.fit_id).live
+    # the dedupe check reads the raw status too: the old record still holds its slot
+    again = dataclasses.replace(fit, fit_id="c" * 20)
+    assert ctx.storage.fits.create(again, enqueue=lambda pipe: None) == (fit.fit_id, False)
+    # and it moves on under our names
+    moved = ctx.storage.fits.change(fit.fit_id, lambda f: f.start())
+    assert moved is not None and moved.status is FitStatus.RUNNING

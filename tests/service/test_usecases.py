@@ -185,9 +185,9 @@ def test_fit_lookups(ctx: Context) -> None:
     _raises(InvalidInput, 422, "status", fits.list_fits, ctx, None, "done")
     setup_metric(ctx, "m", n=2)
     fit, created = fits.request_fit(ctx, "m", {"method": "euclidean"}, "etl")
-    assert created and fit["status"] == "queued" and fit["requested_by"] == "etl"
+    assert created and fit["status"] == "waiting" and fit["requested_by"] == "etl"
     _raises(Conflict, 409, None, fits.retry_fit, ctx, fit["fit_id"], "admin")
-    assert fits.list_fits(ctx, status="queued")["fits"] == [fit]
+    assert fits.list_fits(ctx, status="waiting")["fits"] == [fit]
     assert fits.list_fits(ctx, "m", "failed") == {"fits": []}
     assert ctx.queue.count == 1
 
