@@ -21,7 +21,6 @@ from typing import Any
 
 from service.clock import utcnow
 
-
 # the name ``waiting`` had before (the queue library's word); stored records still read
 FORMER_STATUSES = frozenset({"queued"})
 
