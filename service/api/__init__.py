@@ -1,7 +1,8 @@
 """The HTTP API: ``create_app`` builds a Flask app around one :class:`Context`.
 
 Nothing connects at import time; ``create_app`` wires the context (Redis connects on
-first use). Routes: ``/v1/...`` (Bearer auth), ``/healthz``, ``/readyz``, ``/metrics``.
+first use). Routes: ``/v1/...`` (Bearer auth), ``/healthz``, ``/readyz``, ``/metrics``,
+``/openapi.yaml`` and ``/openapi.json``.
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     from service.config import Settings
     from service.context import Context
 
-    from . import batches, fits, groupings, health, metrics, telemetry, tracing, versions
+    from . import batches, fits, groupings, health, metrics, openapi, telemetry, tracing, versions
 
     if context is None:
         context = Context.build(settings if settings is not None else Settings.from_env(),
@@ -54,6 +55,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     v1.register_blueprint(health.v1_bp)
     app.register_blueprint(v1)
     app.register_blueprint(health.bp)
+    app.register_blueprint(openapi.bp)
     return app
 
 
