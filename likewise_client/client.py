@@ -276,6 +276,11 @@ class Client:
     def get_version(self, metric: str, version: int) -> Json:
         return self._call("GET", f"/v1/metrics/{metric}/versions/{int(version)}")
 
+    def explain(self, metric: str, version: int) -> Json:
+        """The version by feature name: weight per unit and share per feature, the
+        strongest directions with their loadings, held-out ARI per fold (unrounded)."""
+        return self._call("GET", f"/v1/metrics/{metric}/versions/{int(version)}/explanation")
+
     def activate(self, metric: str, version: int, reason: str = "", *,
                  idempotency_key: str | None = None) -> Json:
         """Make ``version`` the active one (roll back or forward), recorded with
@@ -318,6 +323,14 @@ class Client:
     def prometheus(self) -> str:
         """The Prometheus text exposition of ``/metrics``."""
         return self._call("GET", "/metrics")
+
+    def openapi(self) -> Json:
+        """The service's OpenAPI document (``/openapi.json``)."""
+        return self._call("GET", "/openapi.json")
+
+    def openapi_yaml(self) -> str:
+        """The same document as the service's YAML text (``/openapi.yaml``)."""
+        return self._call("GET", "/openapi.yaml")
 
 
 def _problem(answer: Answer, method: str, path: str) -> ProblemError:

@@ -24,6 +24,11 @@ def get_version(name: str, n: int) -> Response:
     return reply(uc.get_version(context(), name, n))
 
 
+@bp.get("/metrics/<name>/versions/<int:n>/explanation")
+def explain_version(name: str, n: int) -> Response:
+    return reply(uc.explain_version(context(), name, n))
+
+
 @bp.put("/metrics/<name>/active")
 @idempotent
 def activate(name: str) -> Response:

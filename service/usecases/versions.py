@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
+
 from service.clock import utcnow
 from service.core import FittedMetric
 from service.errors import InvalidInput, NotFound
@@ -44,6 +46,55 @@ def get_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
     return {**doc["summary"], "active": n == active, "report": doc["report"],
             "batches": doc["batches"], "fit_id": doc["fit_id"], "parent": doc["parent"],
             "metric": {**doc["metric"], "matrix": matrix}}
+
+
+TOP_DIRECTIONS = 10  # the strongest eigen-directions an explanation lists
+
+
+def _fold_scores(report: dict[str, Any]) -> list[dict[str, Any]]:
+    """Held-out ARI per fold for the winner and for Euclidean k-means, from the
+    selector's fold reports (each lists every candidate's score; Euclidean is always
+    a candidate)."""
+    won = (report.get("method"), report.get("alpha"))
+    out = []
+    for fold in report.get("folds") or []:
+        by = {(c["method"], c["alpha"]): c["ari"] for c in fold.get("scores", [])}
+        out.append({"fold": fold.get("fold"), "repeat": fold.get("repeat"),
+                    "scored_batches": fold.get("scored_batches"),
+                    "held_out": fold.get("held_out"),
+                    "ari": by.get(won), "baseline_ari": by.get(("euclidean", 0.0))})
+    return out
+
+
+def explain_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
+    """A version read by feature name: per-feature weight in original units and share
+    of the metric, the strongest directions with their loadings, and held-out ARI per
+    fold for the version's configuration and for Euclidean (docs/method.md)."""
+    require_metric(ctx, name)
+    check_version_number(n)
+    doc = ctx.storage.versions.get(name, n, ("summary", "report", "metric"))
+    if doc is None:
+        raise NotFound(f"metric {name!r} has no version {n}")
+    stored = doc["metric"]
+    fitted = FittedMetric.from_dict(stored)
+    names = list(stored["features"])
+    weight, share = fitted.unit_weights()
+    strength, loadings = fitted.directions(TOP_DIRECTIONS)
+    trace = float(np.trace(fitted.matrix))
+    report = doc["report"]
+    return {
+        "name": name, "version": n, "method": fitted.method, "alpha": fitted.alpha,
+        "rank": fitted.rank,
+        "features": {f: {"weight": float(w), "share": float(sh), "scale": float(sc),
+                         "mean": float(mu)}
+                     for f, w, sh, sc, mu in zip(names, weight, share, fitted.scales,
+                                                 fitted.mean, strict=True)},
+        "directions": [{"strength": float(v), "share": float(v) / trace if trace > 0 else 0.0,
+                        "loadings": dict(zip(names, map(float, row), strict=True))}
+                       for v, row in zip(strength, loadings, strict=True)],
+        "score": report.get("score"), "beats_baseline": report.get("beats_baseline"),
+        "folds": _fold_scores(report),
+    }
 
 
 def activate(ctx: Context, name: str, version: int, reason: str, who: str) -> dict[str, Any]:

@@ -19,6 +19,7 @@ from types import SimpleNamespace
 import numpy as np
 import pandas as pd
 import pytest
+import yaml
 
 from likewise_client import (
     NO_RETRY,
@@ -63,7 +64,8 @@ OPERATIONS = {
     "listVersions": "list_versions", "getVersion": "get_version",
     "activateVersion": "activate", "activationHistory": "history",
     "groupRecords": "group", "queueOverview": "queues", "healthz": "health",
-    "readyz": "ready", "prometheusMetrics": "prometheus",
+    "readyz": "ready", "prometheusMetrics": "prometheus", "openapiJson": "openapi",
+    "openapiYaml": "openapi_yaml", "explainVersion": "explain",
 }
 
 
@@ -150,6 +152,11 @@ def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> 
         ready, body = lw.ready()
         assert ready and body["checks"]["redis"] is True
         assert "likewise_http_requests_total" in lw.prometheus()
+        spec = lw.openapi()
+        assert "/openapi.json" in spec["paths"] and yaml.safe_load(lw.openapi_yaml()) == spec
+        explained = lw.explain(name, 2)
+        assert explained["version"] == 2 and set(explained["features"]) == set(
+            lw.get_version(name, 2)["metric"]["features"])
 
         lw.delete_metric(name)
         with pytest.raises(ProblemError) as gone:
