@@ -16,7 +16,7 @@ import json as jsonlib
 import random
 import time
 import uuid
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
@@ -188,9 +188,26 @@ class Client:
         return self._call(method, path, json, idempotency_key=idempotency_key or new_key(),
                           **kwargs)
 
+    def pages(self, path: str, key: str, params: Json | None = None, *,
+              limit: int | None = None) -> Iterator[list[Json]]:
+        """Every page of a list endpoint, following ``next_cursor`` until it is null."""
+        query = dict(params or {})
+        if limit is not None:
+            query["limit"] = limit
+        while True:
+            body = self._call("GET", path, params=query)
+            yield body[key]
+            if not body.get("next_cursor"):
+                return
+            query["cursor"] = body["next_cursor"]
+
+    def _every(self, path: str, key: str, params: Json | None = None) -> list[Json]:
+        return [item for page in self.pages(path, key, params) for item in page]
+
     # ------------------------------------------------------------------ metrics
     def list_metrics(self) -> list[Json]:
-        return self._call("GET", "/v1/metrics")["metrics"]
+        """Every metric, by name (all pages)."""
+        return self._every("/v1/metrics", "metrics")
 
     def get_metric(self, name: str) -> Json:
         return self._call("GET", f"/v1/metrics/{name}")
@@ -225,7 +242,8 @@ class Client:
                             content=raw, content_type=content_type, params=params)
 
     def list_batches(self, metric: str) -> list[Json]:
-        return self._call("GET", f"/v1/metrics/{metric}/batches")["batches"]
+        """Every batch summary, oldest first (all pages)."""
+        return self._every(f"/v1/metrics/{metric}/batches", "batches")
 
     def get_batch(self, metric: str, batch_id: str) -> Json:
         return self._call("GET", f"/v1/metrics/{metric}/batches/{batch_id}")
@@ -245,7 +263,7 @@ class Client:
 
     def list_fits(self, metric: str | None = None, status: str | None = None) -> list[Json]:
         params = {k: v for k, v in (("metric", metric), ("status", status)) if v}
-        return self._call("GET", "/v1/fits", params=params)["fits"]
+        return self._every("/v1/fits", "fits", params)
 
     def retry_fit(self, fit_id: str, *, idempotency_key: str | None = None) -> Json:
         return self._create("POST", f"/v1/fits/{fit_id}/retry", None, idempotency_key)
@@ -271,7 +289,8 @@ class Client:
 
     # ------------------------------------------------------------------ versions
     def list_versions(self, metric: str) -> list[Json]:
-        return self._call("GET", f"/v1/metrics/{metric}/versions")["versions"]
+        """Every version summary, by number (all pages)."""
+        return self._every(f"/v1/metrics/{metric}/versions", "versions")
 
     def get_version(self, metric: str, version: int) -> Json:
         return self._call("GET", f"/v1/metrics/{metric}/versions/{int(version)}")
@@ -289,7 +308,8 @@ class Client:
                             {"version": int(version), "reason": reason}, idempotency_key)
 
     def history(self, metric: str) -> list[Json]:
-        return self._call("GET", f"/v1/metrics/{metric}/history")["history"]
+        """Every activation, oldest first (all pages)."""
+        return self._every(f"/v1/metrics/{metric}/history", "history")
 
     # ------------------------------------------------------------------ groupings
     def group(self, metric: str, data: Any, k: int | str | None = "auto", *,

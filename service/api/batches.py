@@ -9,7 +9,7 @@ from service.usecases import batches as uc
 from .deps import context, no_content, reply
 from .formats import read_table
 from .idempotency import idempotent
-from .schemas import BatchQuerySchema, BatchSchema
+from .schemas import BatchQuerySchema, BatchSchema, PageQuerySchema, query_args
 
 bp = Blueprint("batches", __name__)
 
@@ -25,7 +25,8 @@ def add_batch(name: str) -> Response:
 
 @bp.get("/metrics/<name>/batches")
 def list_batches(name: str) -> Response:
-    return reply(uc.list_batches(context(), name))
+    query = query_args(PageQuerySchema())
+    return reply(uc.list_batches(context(), name, query.get("limit"), query.get("cursor")))
 
 
 @bp.get("/metrics/<name>/batches/<batch_id>")

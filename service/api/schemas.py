@@ -17,7 +17,7 @@ from marshmallow import Schema, ValidationError, fields, validate, validates_sch
 
 from service.config import MAX_FEATURES
 from service.errors import MalformedRequest
-from service.usecases import fits
+from service.usecases import fits, pages
 from service.usecases.metrics import MAX_DESCRIPTION, MISSING_POLICIES
 from service.usecases.versions import MAX_REASON
 
@@ -194,7 +194,14 @@ class GroupingQuerySchema(_Strict):
     version = fields.Integer(validate=validate.Range(min=1, max=2**31))
 
 
-class FitQuerySchema(_Strict):
+class PageQuerySchema(_Strict):
+    """``limit`` and ``cursor`` of every list (``service.usecases.pages``)."""
+
+    limit = fields.Integer(validate=validate.Range(min=1, max=pages.MAX_LIMIT))
+    cursor = fields.String(validate=validate.Length(min=1, max=pages.MAX_CURSOR))
+
+
+class FitQuerySchema(PageQuerySchema):
     metric = fields.String(validate=validate.Length(min=1, max=64))
     status = fields.String(validate=validate.OneOf(FIT_STATUSES))
 

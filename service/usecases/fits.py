@@ -14,6 +14,7 @@ import math
 import re
 import secrets
 import time
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
 from service import jobqueue
@@ -22,7 +23,7 @@ from service.core import METHODS as LEARNERS
 from service.errors import Conflict, InvalidInput, NotFound
 from service.lifecycle import FORMER_ACTIVATE, Fit, FitStatus
 
-from . import warden
+from . import pages, warden
 from .fit_exec import execute_fit
 from .metrics import NAME_RE, require_metric
 
@@ -46,6 +47,7 @@ INT_RANGES: dict[str, tuple[int, int, bool]] = {
     "n_folds": (2, 20, False), "max_rank": (1, 10_000, True),
     "k_max": (2, 50, False), "seed": (0, 2**32 - 1, True),
 }
+SCAN = 200  # fits read per round trip while a status filter skips some
 FIT_ID_RE = re.compile(r"[0-9a-f]{20}")
 
 
@@ -127,21 +129,52 @@ def get_fit(ctx: Context, fit_id: str) -> dict[str, Any]:
     return _load(ctx, fit_id).public()
 
 
+def _fit_position(v: Any) -> bool:
+    return (isinstance(v, list) and len(v) == 2 and isinstance(v[0], (int, float))
+            and not isinstance(v[0], bool) and isinstance(v[1], str)
+            and bool(FIT_ID_RE.fullmatch(v[1])))
+
+
 def list_fits(
-    ctx: Context, metric: str | None = None, status: str | None = None
+    ctx: Context, metric: str | None = None, status: str | None = None,
+    limit: int | None = None, cursor: str | None = None,
+    visible: Callable[[str], bool] | None = None,
 ) -> dict[str, Any]:
+    """A page of fits, newest first (by creation time, then id), of one metric or of
+    every metric ``visible`` lets the caller see; ``status`` filters."""
     if status is not None and status not in STATUSES:
         raise InvalidInput.field("status", "one of " + ", ".join(STATUSES))
+    limit = pages.check_limit(limit)
+    before = pages.decode(cursor, "fits", _fit_position)
     if metric is not None:
         if not isinstance(metric, str) or not NAME_RE.fullmatch(metric):
             raise InvalidInput.field("metric", "a metric name: 1 to 64 lowercase letters, "
                                      "digits, '-' or '_'", f"invalid metric name {metric!r}")
         require_metric(ctx, metric)
-        ids = ctx.storage.fits.ids(metric=metric)
+        names = [metric]
     else:
-        ids = ctx.storage.fits.ids(metric_names=ctx.storage.metrics.names())
-    found = [f for f in ctx.storage.fits.get_many(ids[::-1]) if f is not None]
-    return {"fits": [f.public() for f in found if status is None or f.status.value == status]}
+        names = ctx.storage.metrics.names()
+    names = [n for n in names if visible is None or visible(n)]
+    position = (float(before[0]), before[1]) if before is not None else None
+    chosen: list[Fit] = []
+    scan = max(limit + 1, SCAN)
+    while len(chosen) <= limit:  # a status filter may skip many: scan on in chunks
+        found = ctx.storage.fits.ids_before(names, position, scan)
+        for fit in ctx.storage.fits.get_many([f for _, f in found]):
+            if fit is not None and (status is None or fit.status.value == status):
+                chosen.append(fit)
+        if len(found) < scan:
+            break
+        position = found[-1]
+    return _fit_page(chosen, limit)
+
+
+def _fit_page(chosen: list[Fit], limit: int) -> dict[str, Any]:
+    shown = chosen[:limit]
+    more = len(chosen) > limit
+    return {"fits": [f.public() for f in shown],
+            "next_cursor": pages.encode("fits", [shown[-1].created_ts, shown[-1].fit_id])
+            if more else None}
 
 
 def retry_fit(ctx: Context, fit_id: str, requested_by: str) -> dict[str, Any]:

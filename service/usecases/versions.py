@@ -11,6 +11,7 @@ from service.core import FittedMetric
 from service.errors import InvalidInput, NotFound
 from service.store import MissingVersion
 
+from . import pages
 from .metrics import require_metric
 
 if TYPE_CHECKING:
@@ -25,11 +26,16 @@ def check_version_number(n: Any, field: str = "version") -> int:
     return n
 
 
-def list_versions(ctx: Context, name: str) -> dict[str, Any]:
+def list_versions(ctx: Context, name: str, limit: int | None = None,
+                  cursor: str | None = None) -> dict[str, Any]:
+    """A page of version summaries by number."""
     require_metric(ctx, name)
+    limit = pages.check_limit(limit)
+    after = pages.decode(cursor, f"versions:{name}", pages.whole)
     active = ctx.storage.versions.active(name)
-    return {"versions": [{**s, "active": s["version"] == active}
-                         for s in ctx.storage.versions.summaries(name)]}
+    listed = [{**s, "active": s["version"] == active}
+              for s in ctx.storage.versions.summaries(name, after, limit + 1)]
+    return pages.page("versions", listed, limit, f"versions:{name}", lambda v: v["version"])
 
 
 def get_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
@@ -113,7 +119,14 @@ def activate(ctx: Context, name: str, version: int, reason: str, who: str) -> di
     return {"name": name, "active_version": version, "previous_version": previous}
 
 
-def history(ctx: Context, name: str) -> dict[str, Any]:
+def history(ctx: Context, name: str, limit: int | None = None,
+            cursor: str | None = None) -> dict[str, Any]:
+    """A page of activations, oldest first (the history only grows)."""
     require_metric(ctx, name)
+    limit = pages.check_limit(limit)
+    start = pages.decode(cursor, f"history:{name}", pages.whole) or 0
     keys = ("from", "to", "at", "who", "reason", "fit_id")
-    return {"history": [{k: e.get(k) for k in keys} for e in ctx.storage.versions.history(name)]}
+    rows = [(start + i, {k: e.get(k) for k in keys})
+            for i, e in enumerate(ctx.storage.versions.history(name, start, limit + 1))]
+    page = pages.page("history", rows, limit, f"history:{name}", lambda r: r[0] + 1)
+    return {"history": [e for _, e in page["history"]], "next_cursor": page["next_cursor"]}

@@ -140,7 +140,7 @@ def test_fit_needs_two_batches_409(
     post_batches(api, "iris", iris_batches(n_batches))
     with unchanged():
         assert_problem(api.post(FITS), 409)
-    assert api.get("/v1/fits").get_json() == {"fits": []}
+    assert api.get("/v1/fits").get_json() == {"fits": [], "next_cursor": None}
 
 
 @pytest.mark.parametrize(
@@ -156,7 +156,7 @@ def test_fit_malformed_body_is_400(
 ) -> None:
     with unchanged():
         assert_problem(api.post(FITS, **kwargs), 400)
-    assert api.get("/v1/fits").get_json() == {"fits": []}
+    assert api.get("/v1/fits").get_json() == {"fits": [], "next_cursor": None}
 
 
 @pytest.mark.parametrize(
@@ -182,7 +182,7 @@ def test_fit_invalid_params_are_422(
 ) -> None:
     with unchanged():
         assert_problem(api.post(FITS, json=body), 422, field)
-    assert api.get("/v1/fits").get_json() == {"fits": []}
+    assert api.get("/v1/fits").get_json() == {"fits": [], "next_cursor": None}
 
 
 @pytest.mark.parametrize(("former", "now"), [("if_better", "when_better"),

@@ -108,11 +108,11 @@ def _response(body: object, status: int = 200, mime: str = "application/json") -
 def test_the_response_checker_is_not_vacuous() -> None:
     """The oracle every API test relies on rejects wrong bodies, statuses and types."""
     checker = SpecChecker(load_spec())
-    good = {"metrics": []}
+    good = {"metrics": [], "next_cursor": None}
     checker.check_response("/v1/metrics", "get", _response(good))
     wrong = [
-        _response({"metrics": [{"name": "x"}]}),  # a metric without its members
-        _response({"metrics": [], "extra": 1}),  # an undocumented member
+        _response({**good, "metrics": [{"name": "x"}]}),  # a metric without its members
+        _response({**good, "extra": 1}),  # an undocumented member
         _response(good, status=201),  # an undocumented status
         _response(good, mime="text/html"),  # an undocumented media type
         _response({"title": "no"}, status=401, mime="application/problem+json"),

@@ -68,8 +68,8 @@ def test_unknown_metric_is_404_on_every_version_route(api: SpecClient, unchanged
 
 def test_metric_without_versions(api: SpecClient, metric: str, unchanged) -> None:
     with unchanged():
-        assert api.get(f"{BASE}/versions").get_json() == {"versions": []}
-        assert api.get(f"{BASE}/history").get_json() == {"history": []}
+        assert api.get(f"{BASE}/versions").get_json() == {"versions": [], "next_cursor": None}
+        assert api.get(f"{BASE}/history").get_json() == {"history": [], "next_cursor": None}
         assert_problem(api.get(f"{BASE}/versions/1"), 404)
         assert_problem(api.put(f"{BASE}/active", json={"version": 1}), 404)
 

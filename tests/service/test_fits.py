@@ -165,7 +165,7 @@ def test_fit_of_a_deleted_metric_leaves_nothing(ctx: Context, run_worker_burst) 
     metrics.delete_metric(ctx, "m")
     run_worker_burst(ctx)
     assert list(ctx.redis.scan_iter(match=ctx.settings.key_prefix + ":metric:*")) == []
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
 
 
 def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypatch) -> None:
@@ -184,7 +184,7 @@ def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypat
     run_worker_burst(ctx)
     assert Job.fetch(job_id, connection=ctx.redis).get_status() == "finished"
     assert ctx.queue.failed_job_registry.count == 0
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
     assert ctx.storage.versions.numbers("m") == [] and ctx.storage.fits.get(fit["fit_id"]) is None
     monkeypatch.setattr(MetricSelector, "fit", original)
     setup_metric(ctx, "m", n=2)

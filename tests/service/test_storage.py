@@ -123,7 +123,7 @@ def test_two_prefixes_share_a_redis_without_seeing_each_other(ctx: Context) -> N
         assert metrics.get_metric(other, "shared")["features"] == ["only"]
         assert metrics.get_metric(other, "shared")["batches"] == 0
         metrics.delete_metric(other, "shared")
-        assert metrics.list_metrics(other) == {"metrics": []}
+        assert metrics.list_metrics(other) == {"metrics": [], "next_cursor": None}
         assert metrics.get_metric(ctx, "shared")["records"] > 0
         assert [m["name"] for m in metrics.list_metrics(ctx)["metrics"]] == ["shared"]
     finally:
@@ -190,7 +190,7 @@ def test_activation_of_a_missing_version_changes_nothing(ctx: Context) -> None:
     with pytest.raises(NotFound):
         versions.activate(ctx, "m", 3, "roll back", "admin")
     assert ctx.storage.versions.active("m") is None
-    assert versions.history(ctx, "m") == {"history": []}
+    assert versions.history(ctx, "m") == {"history": [], "next_cursor": None}
 
 
 def test_feature_change_with_batches_is_a_conflict(ctx: Context) -> None:
