@@ -9,6 +9,8 @@ WORKDIR /app
 COPY pyproject.toml README.md ./
 COPY service ./service
 COPY workers ./workers
+# the API's description, served at /openapi.yaml and /openapi.json
+COPY openapi.yaml ./service/api/openapi.yaml
 RUN pip install . && useradd --system --uid 10001 likewise
 USER likewise
 

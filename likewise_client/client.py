@@ -190,9 +190,26 @@ class Client:
         return self._call(method, path, json, idempotency_key=idempotency_key or new_key(),
                           **kwargs)
 
+    def pages(self, path: str, key: str, params: Json | None = None, *,
+              limit: int | None = None) -> Iterator[list[Json]]:
+        """Every page of a list endpoint, following ``next_cursor`` until it is null."""
+        query = dict(params or {})
+        if limit is not None:
+            query["limit"] = limit
+        while True:
+            body = self._call("GET", path, params=query)
+            yield body[key]
+            if not body.get("next_cursor"):
+                return
+            query["cursor"] = body["next_cursor"]
+
+    def _every(self, path: str, key: str, params: Json | None = None) -> list[Json]:
+        return [item for page in self.pages(path, key, params) for item in page]
+
     # ------------------------------------------------------------------ metrics
     def list_metrics(self) -> list[Json]:
-        return self._call("GET", "/v1/metrics")["metrics"]
+        """Every metric, by name (all pages)."""
+        return self._every("/v1/metrics", "metrics")
 
     def get_metric(self, name: str) -> Json:
         return self._call("GET", f"/v1/metrics/{name}")
@@ -238,7 +255,8 @@ class Client:
                             params=params)
 
     def list_batches(self, metric: str) -> list[Json]:
-        return self._call("GET", f"/v1/metrics/{metric}/batches")["batches"]
+        """Every batch summary, oldest first (all pages)."""
+        return self._every(f"/v1/metrics/{metric}/batches", "batches")
 
     def get_batch(self, metric: str, batch_id: str) -> Json:
         return self._call("GET", f"/v1/metrics/{metric}/batches/{batch_id}")
@@ -250,7 +268,7 @@ class Client:
     def start_fit(self, metric: str, *, idempotency_key: str | None = None,
                   **params: Any) -> Json:
         """Queue a fit (``method``, ``activate``, ``alphas``, ``n_folds``, ``k_max``,
-        ``max_rank``, ``seed``; all optional). Returns the fit, status ``queued``."""
+        ``max_rank``, ``seed``; all optional). Returns the fit, status ``waiting``."""
         return self._create("POST", f"/v1/metrics/{metric}/fits", params, idempotency_key)
 
     def get_fit(self, fit_id: str) -> Json:
@@ -258,7 +276,7 @@ class Client:
 
     def list_fits(self, metric: str | None = None, status: str | None = None) -> list[Json]:
         params = {k: v for k, v in (("metric", metric), ("status", status)) if v}
-        return self._call("GET", "/v1/fits", params=params)["fits"]
+        return self._every("/v1/fits", "fits", params)
 
     def retry_fit(self, fit_id: str, *, idempotency_key: str | None = None) -> Json:
         return self._create("POST", f"/v1/fits/{fit_id}/retry", None, idempotency_key)
@@ -291,10 +309,16 @@ class Client:
 
     # ------------------------------------------------------------------ versions
     def list_versions(self, metric: str) -> list[Json]:
-        return self._call("GET", f"/v1/metrics/{metric}/versions")["versions"]
+        """Every version summary, by number (all pages)."""
+        return self._every(f"/v1/metrics/{metric}/versions", "versions")
 
     def get_version(self, metric: str, version: int) -> Json:
         return self._call("GET", f"/v1/metrics/{metric}/versions/{int(version)}")
+
+    def explain(self, metric: str, version: int) -> Json:
+        """The version by feature name: weight per unit and share per feature, the
+        strongest directions with their loadings, held-out ARI per fold (unrounded)."""
+        return self._call("GET", f"/v1/metrics/{metric}/versions/{int(version)}/explanation")
 
     def activate(self, metric: str, version: int, reason: str = "", *,
                  idempotency_key: str | None = None) -> Json:
@@ -304,7 +328,8 @@ class Client:
                             {"version": int(version), "reason": reason}, idempotency_key)
 
     def history(self, metric: str) -> list[Json]:
-        return self._call("GET", f"/v1/metrics/{metric}/history")["history"]
+        """Every activation, oldest first (all pages)."""
+        return self._every(f"/v1/metrics/{metric}/history", "history")
 
     def drift(self, metric: str, version: int | None = None, since: str | None = None
               ) -> Json:
@@ -370,6 +395,14 @@ class Client:
     def prometheus(self) -> str:
         """The Prometheus text exposition of ``/metrics``."""
         return self._call("GET", "/metrics")
+
+    def openapi(self) -> Json:
+        """The service's OpenAPI document (``/openapi.json``)."""
+        return self._call("GET", "/openapi.json")
+
+    def openapi_yaml(self) -> str:
+        """The same document as the service's YAML text (``/openapi.yaml``)."""
+        return self._call("GET", "/openapi.yaml")
 
 
 @contextlib.contextmanager

@@ -11,7 +11,6 @@ that ``likewise run`` writes, ``./var`` by default). Never Redis directly.
 from __future__ import annotations
 
 import argparse
-import math
 import os
 import sys
 import time
@@ -116,21 +115,12 @@ def cmd_versions(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
     return 0
 
 
-def feature_weights(version: dict[str, Any]) -> list[tuple[str, float, float]]:
-    """``(feature, share, per_unit)``, largest share first.
-
-    The version's matrix ``M`` acts on standardised features (``x / scale``), so the
-    learned squared distance along feature j alone is ``M_jj · (Δx_j / scale_j)²``.
-    ``share`` is ``M_jj / tr(M)`` (how much of the metric's weight lies on the feature);
-    ``per_unit`` is ``√M_jj / scale_j``, the learned distance one unit of the feature
-    adds by itself, in the feature's own units.
-    """
-    metric = version["metric"]
-    diag = [float(metric["matrix"][j][j]) for j in range(len(metric["features"]))]
-    total = sum(diag)
-    out = [(name, d / total if total > 0 else 0.0, math.sqrt(max(d, 0.0)) / float(scale))
-           for name, d, scale in zip(metric["features"], diag, metric["scales"], strict=True)]
-    return sorted(out, key=lambda item: -item[1])
+def feature_weights(explanation: dict[str, Any]) -> list[tuple[str, float, float]]:
+    """``(feature, share, per_unit)`` from the service's explanation, largest share
+    first: ``share`` is ``M_jj / tr(M)`` (standardised features), ``per_unit`` the
+    learned distance one unit of the feature adds by itself (docs/method.md)."""
+    rows = [(name, f["share"], f["weight"]) for name, f in explanation["features"].items()]
+    return sorted(rows, key=lambda item: -item[1])
 
 
 def cmd_explain(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
@@ -141,6 +131,7 @@ def cmd_explain(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
             print(f"{args.metric}: no active version", file=sys.stderr)
             return 1
     v = lw.get_version(args.metric, number)
+    ex = lw.explain(args.metric, number)
     score = v["score"]
     print(f"{args.metric} version {v['version']}{' (active)' if v['active'] else ''}: "
           f"{v['method']}, rank {v['rank']}, alpha {v['alpha']:g}", file=out)
@@ -148,11 +139,16 @@ def cmd_explain(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
         print(v["report"]["summary"], file=out)
     print(f"held-out ARI {score['ari']:.3f} against Euclidean {score['baseline_ari']:.3f}"
           f" ({'beats' if v['beats_baseline'] else 'does not beat'} it)\n", file=out)
-    weights = feature_weights(v)
+    weights = feature_weights(ex)
     top = max((share for _, share, _ in weights), default=0.0) or 1.0
     rows = [(name, share, f"{per_unit:.3g}", "#" * round(BAR * share / top))
             for name, share, per_unit in weights]
     table(["feature", "share", "per unit", ""], rows, out)
+    if ex["folds"]:
+        print("", file=out)
+        table(["fold", "repeat", "batches scored", "held-out ARI", "Euclidean ARI"],
+              [(f["fold"], f["repeat"], f["scored_batches"], f["ari"], f["baseline_ari"])
+               for f in ex["folds"]], out)
     return 0
 
 

@@ -2,10 +2,10 @@
 
 ::
 
-    queued ──start──> running ──succeed──> succeeded
-      │  ^              │  │
-      │  └──wait_retry──┘  └──fail──> failed ──requeue──> queued
-      │  └──hand_over───┘ (a new job after the attempt's lease lapsed)
+    waiting ──start──> running ──succeed──> succeeded
+      │  ^               │  │
+      │  └──wait_retry───┘  └──fail──> failed ──requeue──> waiting
+      │  └──hand_over────┘ (a new job after the attempt's lease lapsed)
       └──────────────fail─────────────^
 
 Every change of a fit record goes through :class:`Fit`'s methods; storage applies a
@@ -21,28 +21,39 @@ from typing import Any
 
 from service.clock import utcnow
 
+# the name ``waiting`` had before (the queue library's word); stored records still read
+FORMER_STATUSES = frozenset({"queued"})
+
 
 class FitStatus(str, Enum):
-    QUEUED = "queued"
+    WAITING = "waiting"  # for a worker, or for another attempt
     RUNNING = "running"
     SUCCEEDED = "succeeded"
     FAILED = "failed"
 
+    @classmethod
+    def _missing_(cls, value: object) -> FitStatus | None:
+        """A status under the name it had before (records stored then still read)."""
+        return cls.WAITING if value in FORMER_STATUSES else None
+
     @property
     def live(self) -> bool:
-        """Queued or running: the fit may still produce a version."""
-        return self in (FitStatus.QUEUED, FitStatus.RUNNING)
+        """Waiting or running: the fit may still produce a version."""
+        return self in (FitStatus.WAITING, FitStatus.RUNNING)
 
     def __str__(self) -> str:
         return self.value
 
 
 MOVES: dict[FitStatus, frozenset[FitStatus]] = {
-    FitStatus.QUEUED: frozenset({FitStatus.RUNNING, FitStatus.FAILED, FitStatus.QUEUED}),
-    FitStatus.RUNNING: frozenset({FitStatus.SUCCEEDED, FitStatus.FAILED, FitStatus.QUEUED}),
-    FitStatus.FAILED: frozenset({FitStatus.QUEUED}),
+    FitStatus.WAITING: frozenset({FitStatus.RUNNING, FitStatus.FAILED, FitStatus.WAITING}),
+    FitStatus.RUNNING: frozenset({FitStatus.SUCCEEDED, FitStatus.FAILED, FitStatus.WAITING}),
+    FitStatus.FAILED: frozenset({FitStatus.WAITING}),
     FitStatus.SUCCEEDED: frozenset(),
 }
+
+# activation policies under the names they had before (records stored then still read)
+FORMER_ACTIVATE = {"if_better": "when_better", "always": "at_once", "never": "by_hand"}
 
 PUBLIC_FIELDS = ("fit_id", "metric", "status", "progress", "stage", "params", "version",
                  "error", "decision", "created_at", "started_at", "ended_at",
@@ -64,8 +75,8 @@ class Fit:
     dedupe_key: str | None
     created_at: str
     created_ts: float
-    status: FitStatus = FitStatus.QUEUED
-    stage: str = "queued"
+    status: FitStatus = FitStatus.WAITING
+    stage: str = "waiting"
     progress: float = 0.0
     version: int | None = None
     error: str | None = None
@@ -82,8 +93,13 @@ class Fit:
     def from_record(cls, record: dict[str, Any]) -> Fit:
         names = {f.name for f in dataclasses.fields(cls)} - {"extra"}
         known = {k: v for k, v in record.items() if k in names}
-        known["status"] = FitStatus(known.get("status", "queued"))
+        known["status"] = FitStatus(known.get("status", "waiting"))
+        if known.get("stage") in FORMER_STATUSES:
+            known["stage"] = "waiting"
         known.setdefault("dedupe_key", None)
+        params = known.get("params")
+        if isinstance(params, dict) and params.get("activate") in FORMER_ACTIVATE:
+            known["params"] = {**params, "activate": FORMER_ACTIVATE[params["activate"]]}
         return cls(**known, extra={k: v for k, v in record.items() if k not in names})
 
     def to_record(self) -> dict[str, Any]:
@@ -120,22 +136,22 @@ class Fit:
 
     def wait_for_retry(self, error: str, job_id: str | None = None) -> Fit:
         """A running attempt ended without a result; another attempt follows."""
-        return self._to(FitStatus.QUEUED, stage="waiting for retry", error=error,
+        return self._to(FitStatus.WAITING, stage="waiting for retry", error=error,
                         job_id=job_id or self.job_id)
 
     def hand_over(self, error: str, job_id: str) -> Fit:
         """A running attempt died; a new job (a new run) will make the next attempt."""
-        return self._to(FitStatus.QUEUED, stage="waiting for retry", error=error,
+        return self._to(FitStatus.WAITING, stage="waiting for retry", error=error,
                         job_id=job_id, runs=self.runs + 1)
 
     def reissue(self, job_id: str) -> Fit:
         """A queued fit's job was lost before its attempt began: a new job, same attempt."""
-        return self._to(FitStatus.QUEUED, stage="queued", job_id=job_id, runs=self.runs + 1,
+        return self._to(FitStatus.WAITING, stage="waiting", job_id=job_id, runs=self.runs + 1,
                         error="the queue lost this fit's job before it began; queued again")
 
     def requeue(self, job_id: str, by: str) -> Fit:
-        """A failed fit is queued again by a person (same id and parameters)."""
-        return self._to(FitStatus.QUEUED, stage="queued", progress=0.0, error=None,
+        """A failed fit waits again, put back by a person (same id and parameters)."""
+        return self._to(FitStatus.WAITING, stage="waiting", progress=0.0, error=None,
                         decision=None, ended_at=None, job_id=job_id, runs=self.runs + 1,
                         retried_by=by)
 

@@ -1,8 +1,9 @@
 """The HTTP API: ``create_app`` builds a Flask app around one :class:`Context`.
 
 Nothing connects at import time; ``create_app`` wires the context (Redis connects on
-first use). Routes: ``/v1/...`` (Bearer auth), ``/healthz``, ``/readyz``, ``/metrics``, and the
-operators' console under ``/console/`` (its data parts need a Bearer token too).
+first use). Routes: ``/v1/...`` (Bearer auth), ``/healthz``, ``/readyz``, ``/metrics``,
+``/openapi.yaml``, ``/openapi.json``, and the operators' console under ``/console/``
+(its data parts need a Bearer token too).
 """
 
 from __future__ import annotations
@@ -38,6 +39,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
         groupings,
         health,
         metrics,
+        openapi,
         telemetry,
         tracing,
         versions,
@@ -68,6 +70,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
     app.register_blueprint(v1)
     app.register_blueprint(health.bp)
     app.register_blueprint(console.bp)
+    app.register_blueprint(openapi.bp)
     return app
 
 

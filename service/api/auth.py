@@ -30,6 +30,7 @@ SCOPE_OF: dict[str, str] = {
     "v1.fits.retry_fit": "fit",
     "v1.versions.list_versions": "view",
     "v1.versions.get_version": "view",
+    "v1.versions.explain_version": "view",
     "v1.versions.activate": "release",
     "v1.versions.history": "view",
     "v1.groupings.group": "view",

@@ -14,6 +14,7 @@ from .schemas import (
     BatchQuerySchema,
     BatchStatsQuerySchema,
     BatchStatsSchema,
+    PageQuerySchema,
     json_body,
     query_args,
 )
@@ -39,7 +40,8 @@ def add_batch(name: str) -> Response:
 
 @bp.get("/metrics/<name>/batches")
 def list_batches(name: str) -> Response:
-    return reply(uc.list_batches(context(), name))
+    query = query_args(PageQuerySchema())
+    return reply(uc.list_batches(context(), name, query.get("limit"), query.get("cursor")))
 
 
 @bp.get("/metrics/<name>/batches/<batch_id>")

@@ -29,9 +29,9 @@ def request_fit(name: str) -> Response:
 @bp.get("/fits")
 def list_fits() -> Response:
     query = query_args(FitQuerySchema())
-    who = current()
-    listed = uc.list_fits(context(), query.get("metric"), query.get("status"))["fits"]
-    return reply({"fits": [f for f in listed if who.may_touch(f["metric"])]})
+    return reply(uc.list_fits(context(), query.get("metric"), query.get("status"),
+                              query.get("limit"), query.get("cursor"),
+                              visible=current().may_touch))
 
 
 @bp.get("/fits/<fit_id>")

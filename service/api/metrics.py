@@ -9,7 +9,7 @@ from service.usecases import metrics as uc
 from .auth import current
 from .deps import context, no_content, reply
 from .idempotency import idempotent
-from .schemas import MetricSchema, json_body
+from .schemas import MetricSchema, PageQuerySchema, json_body, query_args
 
 bp = Blueprint("metrics", __name__)
 
@@ -29,9 +29,9 @@ def put_metric(name: str) -> Response:
 
 @bp.get("/metrics")
 def list_metrics() -> Response:
-    who = current()
-    listed = uc.list_metrics(context())["metrics"]
-    return reply({"metrics": [m for m in listed if who.may_touch(m["name"])]})
+    query = query_args(PageQuerySchema())
+    return reply(uc.list_metrics(context(), query.get("limit"), query.get("cursor"),
+                                 visible=current().may_touch))
 
 
 @bp.get("/metrics/<name>")

@@ -17,7 +17,7 @@ from marshmallow import Schema, ValidationError, fields, validate, validates_sch
 
 from service.config import MAX_FEATURES
 from service.errors import MalformedRequest
-from service.usecases import fits
+from service.usecases import fits, pages
 from service.usecases.metrics import MAX_DESCRIPTION, MISSING_POLICIES
 from service.usecases.versions import MAX_REASON
 
@@ -143,11 +143,16 @@ class GroupingSchema(_TableSchema):
     version = fields.Integer(strict=True, validate=validate.Range(min=1), allow_none=True)
 
 
+def _activate_policy(value: str) -> None:
+    if value not in ACTIVATE_POLICIES:
+        raise ValidationError(fits.activate_message(value))
+
+
 class FitSchema(_Strict):
     """Fit parameters; the ranges are those of ``service.usecases.fits.normalize_params``."""
 
     method = fields.String(load_default="auto", validate=validate.OneOf(FIT_METHODS))
-    activate = fields.String(load_default="if_better", validate=validate.OneOf(ACTIVATE_POLICIES))
+    activate = fields.String(load_default=fits.DEFAULTS["activate"], validate=_activate_policy)
     alphas = fields.List(
         PositiveNumber(),
         validate=validate.Length(min=1, max=fits.MAX_ALPHAS),
@@ -209,7 +214,14 @@ class GroupingQuerySchema(_Strict):
     version = fields.Integer(validate=validate.Range(min=1, max=2**31))
 
 
-class FitQuerySchema(_Strict):
+class PageQuerySchema(_Strict):
+    """``limit`` and ``cursor`` of every list (``service.usecases.pages``)."""
+
+    limit = fields.Integer(validate=validate.Range(min=1, max=pages.MAX_LIMIT))
+    cursor = fields.String(validate=validate.Length(min=1, max=pages.MAX_CURSOR))
+
+
+class FitQuerySchema(PageQuerySchema):
     metric = fields.String(validate=validate.Length(min=1, max=64))
     status = fields.String(validate=validate.OneOf(FIT_STATUSES))
 

@@ -9,19 +9,25 @@ from service.usecases import versions as uc
 from .auth import principal
 from .deps import context, reply
 from .idempotency import idempotent
-from .schemas import ActivationSchema, json_body
+from .schemas import ActivationSchema, PageQuerySchema, json_body, query_args
 
 bp = Blueprint("versions", __name__)
 
 
 @bp.get("/metrics/<name>/versions")
 def list_versions(name: str) -> Response:
-    return reply(uc.list_versions(context(), name))
+    query = query_args(PageQuerySchema())
+    return reply(uc.list_versions(context(), name, query.get("limit"), query.get("cursor")))
 
 
 @bp.get("/metrics/<name>/versions/<int:n>")
 def get_version(name: str, n: int) -> Response:
     return reply(uc.get_version(context(), name, n))
+
+
+@bp.get("/metrics/<name>/versions/<int:n>/explanation")
+def explain_version(name: str, n: int) -> Response:
+    return reply(uc.explain_version(context(), name, n))
 
 
 @bp.put("/metrics/<name>/active")
@@ -33,4 +39,5 @@ def activate(name: str) -> Response:
 
 @bp.get("/metrics/<name>/history")
 def history(name: str) -> Response:
-    return reply(uc.history(context(), name))
+    query = query_args(PageQuerySchema())
+    return reply(uc.history(context(), name, query.get("limit"), query.get("cursor")))

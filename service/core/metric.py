@@ -49,6 +49,36 @@ class FittedMetric:
         :meth:`transform`, for callers that share it between maps)."""
         return (X - self.mean) / self.scales
 
+    def unit_weights(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(weight, share)`` per feature (docs/method.md, "Reading a version").
+
+        ``weight_j = ‖L[:, j]‖ / s_j``: the learned distance one unit of feature j adds
+        by itself, in the feature's own units (a step ``δ`` along feature j alone moves
+        ``z`` by ``δ · L[:, j] / s_j``). ``share_j = M_jj / tr(M)``: the fraction of the
+        metric's trace on feature j, on standardised features (unit-free; sums to 1).
+        """
+        col = np.linalg.norm(self.components, axis=0)
+        weight = col / self.scales
+        sq = col**2  # M_jj
+        total = float(sq.sum())
+        share = sq / total if total > 0 else np.zeros_like(sq)
+        return weight, share
+
+    def directions(self, top: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """``(strength, loadings)``: eigenvalues of ``M`` (largest first, the zero ones
+        left out) and the unit eigenvectors as rows (loadings on standardised
+        features), each signed so that its largest loading is positive."""
+        vals, vecs = np.linalg.eigh(self.matrix)
+        order = np.argsort(vals)[::-1]
+        vals, vecs = vals[order], vecs[:, order].T
+        keep = vals > max(float(vals[0]) if vals.size else 0.0, 0.0) * 1e-10
+        vals, vecs = vals[keep], vecs[keep]
+        if top is not None:
+            vals, vecs = vals[:top], vecs[:top]
+        big = np.abs(vecs).argmax(axis=1) if vecs.size else np.zeros(0, dtype=int)
+        signs = np.sign(vecs[np.arange(len(vecs)), big])
+        return vals, vecs * np.where(signs == 0, 1.0, signs)[:, None]
+
     def with_k_rule(self, k_rule: dict[str, Any] | None) -> FittedMetric:
         return FittedMetric(
             self.method, self.alpha, self.scales, self.mean, self.components, k_rule, self.info

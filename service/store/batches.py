@@ -72,6 +72,20 @@ class BatchStore:
             metas = pipe.execute()
         return [json.loads(m) for m in metas if m is not None]
 
+    def metas_after(self, name: str, after: int | None, count: int
+                    ) -> list[tuple[int, dict[str, Any]]]:
+        """Up to ``count`` batches ingested after position ``after`` (their ingest
+        number, the index score), oldest first, as ``(position, meta)``."""
+        lo = f"({after}" if after is not None else "-inf"
+        pairs = self.redis.zrangebyscore(self.keys.batch_index(name), lo, "+inf", start=0,
+                                         num=count, withscores=True)
+        with self.redis.pipeline(transaction=False) as pipe:
+            for b, _ in pairs:
+                pipe.hget(self.keys.batch(name, text(b)), "meta")
+            metas = pipe.execute() if pairs else []
+        return [(int(score), json.loads(m))
+                for (_, score), m in zip(pairs, metas, strict=True) if m is not None]
+
     def meta(self, name: str, batch_id: str) -> dict[str, Any] | None:
         raw = self.redis.hget(self.keys.batch(name, batch_id), "meta")
         return json.loads(raw) if raw is not None else None

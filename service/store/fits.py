@@ -69,6 +69,26 @@ class FitStore:
         ids = [(s, text(f)) for pairs in ranges for f, s in pairs]
         return [f for _, f in sorted(ids)]
 
+    def ids_before(self, metric_names: list[str], before: tuple[float, str] | None,
+                   count: int) -> list[tuple[float, str]]:
+        """Up to ``count`` fits of ``metric_names``, newest first, that come after
+        ``before`` in that order (creation time, then id), as ``(created_ts, fit_id)``."""
+        keys = [self.keys.fit_index(m) for m in metric_names]
+        hi = "+inf" if before is None else repr(before[0])
+        with self.redis.pipeline(transaction=False) as pipe:
+            for key in keys:  # fits created at the very same time as ``before``
+                pipe.zcount(key, hi, hi) if before is not None else pipe.echo(b"0")
+            ties = [int(t) for t in pipe.execute()] if keys else []
+        with self.redis.pipeline(transaction=False) as pipe:
+            for key, tie in zip(keys, ties, strict=True):
+                pipe.zrevrangebyscore(key, hi, "-inf", start=0, num=count + tie,
+                                      withscores=True)
+            ranges = pipe.execute() if keys else []
+        found = [(float(s), text(f)) for pairs in ranges for f, s in pairs]
+        if before is not None:
+            found = [p for p in found if p < tuple(before)]
+        return sorted(found, reverse=True)[:count]
+
     def live_ids(self) -> list[str]:
         return sorted(text(f) for f in self.redis.smembers(self.keys.live_fits()))
 
@@ -76,7 +96,7 @@ class FitStore:
         return self.keys.dedupe(name, params_hash)
 
     def dedupe_holder(self, dedupe_key: str) -> Fit | None:
-        """The fit a dedupe slot points at (a queued or running fit with those params)."""
+        """The fit a dedupe slot points at (a waiting or running fit with those params)."""
         fit_id = text(self.redis.get(dedupe_key))
         return self.get(fit_id) if fit_id else None
 

@@ -29,10 +29,10 @@ Key layout (``P`` = the deployment's key prefix; metric names match
     P:metric:{name}:active          string active version number
     P:metric:{name}:history         list   activations (JSON), oldest first
     P:metric:{name}:fits            zset   fit ids of this metric, by creation time
-    P:metric:{name}:dedupe:{hash}   string fit id of a queued/running fit with these params
+    P:metric:{name}:dedupe:{hash}   string fit id of a waiting/running fit with these params
     P:fit:{fit_id}                  hash   fit record fields (JSON values)
     P:fit:{fit_id}:lease            string job id of the attempt running it (expires unless renewed)
-    P:live-fits                     set    ids of queued and running fits (what the warden checks)
+    P:live-fits                     set    ids of waiting and running fits (what the warden checks)
     P:idem:{digest}                 string a stored answer to an Idempotency-Key (expires)
     P:batchseq                      string ingest order of batches (INCR)
     P:tallies                       hash   deployment-wide counters read by /metrics:

@@ -76,8 +76,15 @@ class VersionStore:
     def numbers(self, name: str) -> list[int]:
         return [int(v) for v in self.redis.zrange(self.keys.version_index(name), 0, -1)]
 
-    def summaries(self, name: str) -> list[dict[str, Any]]:
-        nums = self.numbers(name)
+    def summaries(self, name: str, after: int | None = None, count: int | None = None
+                  ) -> list[dict[str, Any]]:
+        """Version summaries by number, after version ``after`` (up to ``count``)."""
+        if after is None and count is None:
+            nums = self.numbers(name)
+        else:
+            lo = f"({after}" if after is not None else "-inf"
+            nums = [int(v) for v in self.redis.zrangebyscore(
+                self.keys.version_index(name), lo, "+inf", start=0, num=count or -1)]
         with self.redis.pipeline(transaction=False) as pipe:
             for n in nums:
                 pipe.hget(self.keys.version(name, n), "summary")
@@ -115,5 +122,8 @@ class VersionStore:
 
         return transact(self.redis, [akey, vkey], body)
 
-    def history(self, name: str) -> list[dict[str, Any]]:
-        return [json.loads(e) for e in self.redis.lrange(self.keys.history(name), 0, -1)]
+    def history(self, name: str, start: int = 0, count: int | None = None
+                ) -> list[dict[str, Any]]:
+        """Activations from position ``start`` (oldest first; the list only grows)."""
+        stop = -1 if count is None else start + count - 1
+        return [json.loads(e) for e in self.redis.lrange(self.keys.history(name), start, stop)]

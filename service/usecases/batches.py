@@ -17,6 +17,7 @@ from service.errors import InvalidInput, NotFound, from_core
 from service.store.codecs import pack_json, pack_matrix
 from service.tables import Table, check_groups, encoded_names
 
+from . import pages
 from .metrics import require_metric
 
 if TYPE_CHECKING:
@@ -118,9 +119,16 @@ def _summary(meta: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
-def list_batches(ctx: Context, name: str) -> dict[str, Any]:
+def list_batches(ctx: Context, name: str, limit: int | None = None,
+                 cursor: str | None = None) -> dict[str, Any]:
+    """A page of batch summaries, oldest first (by ingest order)."""
     require_metric(ctx, name)
-    return {"batches": [_summary(m) for m in ctx.storage.batches.metas(name)]}
+    limit = pages.check_limit(limit)
+    after = pages.decode(cursor, f"batches:{name}", pages.whole)
+    rows = ctx.storage.batches.metas_after(name, after, limit + 1)
+    page = pages.page("batches", rows, limit, f"batches:{name}", lambda r: r[0])
+    return {"batches": [_summary(m) for _, m in page["batches"]],
+            "next_cursor": page["next_cursor"]}
 
 
 def get_batch(ctx: Context, name: str, batch_id: str) -> dict[str, Any]:

@@ -55,7 +55,7 @@ def overview(ctx: Context, may_touch: Callable[[str], bool]) -> dict[str, Any]:
         return {**f, "age": age(since, now), "percent": round(100 * float(f["progress"] or 0))}
 
     board = {
-        "waiting": [row(f, f["created_at"]) for f in fits if f["status"] == "queued"],
+        "waiting": [row(f, f["created_at"]) for f in fits if f["status"] == "waiting"],
         "running": [row(f, f["started_at"] or f["created_at"]) for f in fits
                     if f["status"] == "running"],
         "failed": [row(f, f["ended_at"]) for f in fits if f["status"] == "failed"

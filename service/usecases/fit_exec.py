@@ -106,11 +106,11 @@ def _decide(
     vs_base = (f"held-out ARI {ari:.4f} vs {base:.4f} for Euclidean k-means"
                + (" (beats the baseline)" if report.get("beats_baseline") else
                   " (does not beat the baseline)"))
-    if mode == "always":
-        return True, f"activate=always: version {n} activated; {vs_base}"
-    if mode == "never":
+    if mode == "at_once":
+        return True, f"activate=at_once: version {n} activated; {vs_base}"
+    if mode == "by_hand":
         kept = f"version {active} stays active" if active else "no version is active"
-        return False, f"activate=never: version {n} stored, {kept}; {vs_base}"
+        return False, f"activate=by_hand: version {n} stored, {kept}; {vs_base}"
     if active is None or active_summary is None:
         return True, f"first version of metric {name!r}: activated; {vs_base}"
     try:
@@ -123,8 +123,8 @@ def _decide(
             f"({active_summary['method']}, alpha={active_summary['alpha']:g}) re-scored "
             "on the same folds")
     if ari >= old_ari:
-        return True, f"activate=if_better: {same}: version {n} activated"
-    return False, f"activate=if_better: {same}: version {active} stays active"
+        return True, f"activate=when_better: {same}: version {n} activated"
+    return False, f"activate=when_better: {same}: version {active} stays active"
 
 
 def execute_fit(

@@ -15,11 +15,14 @@ from __future__ import annotations
 
 import re
 import secrets
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
 from service.errors import Conflict, InvalidInput, NotFound
 from service.store import FeaturesLocked
 from service.tables import LEVEL_SEPARATOR, encoded_names
+
+from . import pages
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -138,10 +141,17 @@ def put_metric(
     return _public(ctx, record), outcome == "created"
 
 
-def list_metrics(ctx: Context) -> dict[str, Any]:
-    found = [m for m in ctx.storage.metrics.get_many(ctx.storage.metrics.names()) if m is not None]
+def list_metrics(ctx: Context, limit: int | None = None, cursor: str | None = None,
+                 visible: Callable[[str], bool] | None = None) -> dict[str, Any]:
+    """A page of metrics by name (those ``visible`` says the caller may see)."""
+    limit = pages.check_limit(limit)
+    after = pages.decode(cursor, "metrics", lambda v: isinstance(v, str))
+    names = [n for n in ctx.storage.metrics.names()
+             if (after is None or n > after) and (visible is None or visible(n))]
+    found = [m for m in ctx.storage.metrics.get_many(names[:limit + 1]) if m is not None]
     counts = ctx.storage.metrics.counts_many([m["name"] for m in found])
-    return {"metrics": [_public(ctx, m, c) for m, c in zip(found, counts, strict=True)]}
+    listed = [_public(ctx, m, c) for m, c in zip(found, counts, strict=True)]
+    return pages.page("metrics", listed, limit, "metrics", lambda m: m["name"])
 
 
 def get_metric(ctx: Context, name: str) -> dict[str, Any]:

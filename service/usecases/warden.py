@@ -1,6 +1,6 @@
 """The warden: brings live fits in line with their queue jobs, so reads never write.
 
-A fit is queued or running until a worker finishes it. When a worker dies, a job is
+A fit is waiting or running until a worker finishes it. When a worker dies, a job is
 deleted or an operator stops it, the fit record alone would say "running" forever.
 The warden runs in every worker process (``workers.worker``, every
 ``Settings.warden_interval`` seconds) and :func:`sweep` checks each live fit:
@@ -14,7 +14,7 @@ The warden runs in every worker process (``workers.worker``, every
   retries are left, else failed);
 - a fit whose job no longer exists fails ("the queue job of this fit no longer exists");
 - a fit whose job failed or was stopped fails with the job's error;
-- a running fit whose job waits for a retry goes back to queued.
+- a running fit whose job waits for a retry goes back to waiting.
 
 Every write is fenced on the job id the fit record names, so a fit that moved on
 (retried by a person, finished meanwhile) is left alone.
@@ -61,7 +61,7 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
         return fit
     if fit.status is FitStatus.RUNNING and ctx.storage.fits.lease_holder(fit.fit_id) is None:
         return _hand_over(ctx, fit)
-    if fit.status is FitStatus.QUEUED and jobqueue.stranded(
+    if fit.status is FitStatus.WAITING and jobqueue.stranded(
             ctx, fit.job_id, ctx.settings.stranded_seconds):
         return _reissue(ctx, fit)
     state, error = jobqueue.job_state(ctx, fit.job_id)
@@ -101,7 +101,7 @@ def _hand_over(ctx: Context, fit: Fit) -> Fit:
     else:
         job_id = jobqueue.job_id_for(ctx, fit.fit_id, fit.runs + 1)
         changed = ctx.storage.fits.change(
-            fit.fit_id, lambda f: f.hand_over(f"{message}; it is queued again", job_id)
+            fit.fit_id, lambda f: f.hand_over(f"{message}; it waits for another attempt", job_id)
             if (f.status, f.job_id, f.attempts) == seen else None,
             enqueue=jobqueue.enqueuer(ctx, fit.fit_id, job_id))
     if changed is not None:

@@ -131,7 +131,7 @@ def test_unknown_member_and_non_finite_json(api, metric, batch, unchanged):
 def test_fit_from_statistics_and_two_raw_batches_gives_the_all_raw_matrix(
         api, ctx, metric, fit_to_version):
     batches = iris_batches(6)
-    params = {"method": "discriminant", "alphas": [0.1], "activate": "always"}
+    params = {"method": "discriminant", "alphas": [0.1], "activate": "at_once"}
     post_batches(api, metric, batches)
     all_raw = fit_to_version(metric, **params)
     all_raw_doc = api.get(f"/v1/metrics/iris/versions/{all_raw['version']}").get_json()

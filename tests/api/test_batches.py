@@ -81,7 +81,7 @@ def test_delete_batch(api: SpecClient, with_batches: list[str]) -> None:
 
 # ------------------------------------------------------------------------- errors
 def _no_batches(api: SpecClient) -> None:
-    assert api.get(URL).get_json() == {"batches": []}
+    assert api.get(URL).get_json() == {"batches": [], "next_cursor": None}
     assert api.get("/v1/metrics/iris").get_json()["records"] == 0
 
 

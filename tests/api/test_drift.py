@@ -24,7 +24,7 @@ def test_a_unit_change_is_flagged_by_feature_name(api, fitted, fit_to_version) -
     assert list(body["features"]) == IRIS_FEATURES and body["flagged"] == []
 
     # version 2 (active), fed petal lengths in millimetres instead of centimetres
-    assert fit_to_version("iris", activate="always", method="diagonal")["version"] == 2
+    assert fit_to_version("iris", activate="at_once", method="diagonal")["version"] == 2
     moved = pool.copy()
     moved[:, 2] *= 1000
     resp = api.post("/v1/metrics/iris/groupings", json={"records": as_records(moved), "k": 3})

@@ -23,10 +23,10 @@ def test_fit_is_accepted_then_runs_on_a_real_worker(
     assert resp.status_code == 202
     fit = resp.get_json()
     assert resp.headers["Location"] == f"/v1/fits/{fit['fit_id']}"
-    assert (fit["status"], fit["progress"], fit["version"]) == ("queued", 0.0, None)
-    assert fit["params"]["method"] == "auto" and fit["params"]["activate"] == "if_better"
+    assert (fit["status"], fit["progress"], fit["version"]) == ("waiting", 0.0, None)
+    assert fit["params"]["method"] == "auto" and fit["params"]["activate"] == "when_better"
     assert fit["requested_by"] == "admin"
-    assert api.get(resp.headers["Location"]).get_json()["status"] == "queued"
+    assert api.get(resp.headers["Location"]).get_json()["status"] == "waiting"
 
     run_worker_burst(ctx, max_jobs=1)
     done = api.get(resp.headers["Location"]).get_json()
@@ -40,7 +40,7 @@ def test_identical_request_while_queued_returns_the_same_fit(
     api: SpecClient, with_batches: list[str]
 ) -> None:
     first = api.post(FITS, json={"method": "closed_form"})
-    second = api.post(FITS, json={"method": "closed_form", "activate": "if_better"})
+    second = api.post(FITS, json={"method": "closed_form", "activate": "when_better"})
     assert second.status_code == 202
     assert second.get_json()["fit_id"] == first.get_json()["fit_id"]
     assert second.headers["Location"] == first.headers["Location"]
@@ -63,7 +63,7 @@ def test_list_fits_filters_by_metric_and_status(
 
     assert ids("") == [waiting, done]  # newest first
     assert ids("?metric=iris&status=succeeded") == [done]
-    assert ids("?status=queued") == [waiting]
+    assert ids("?status=waiting") == [waiting]
     assert ids("?metric=other") == []
 
 
@@ -90,7 +90,7 @@ def test_retry_a_failed_fit(
     resp = api.post(url, token=ETL_TOKEN)
     assert resp.status_code == 202
     assert resp.headers["Location"] == f"/v1/fits/{fit['fit_id']}"
-    assert (resp.get_json()["status"], resp.get_json()["error"]) == ("queued", None)
+    assert (resp.get_json()["status"], resp.get_json()["error"]) == ("waiting", None)
     run_worker_burst(ctx, max_jobs=1)
     done = api.get(f"/v1/fits/{fit['fit_id']}").get_json()
     assert (done["status"], done["version"]) == ("succeeded", 1)
@@ -140,7 +140,7 @@ def test_fit_needs_two_batches_409(
     post_batches(api, "iris", iris_batches(n_batches))
     with unchanged():
         assert_problem(api.post(FITS), 409)
-    assert api.get("/v1/fits").get_json() == {"fits": []}
+    assert api.get("/v1/fits").get_json() == {"fits": [], "next_cursor": None}
 
 
 @pytest.mark.parametrize(
@@ -156,7 +156,7 @@ def test_fit_malformed_body_is_400(
 ) -> None:
     with unchanged():
         assert_problem(api.post(FITS, **kwargs), 400)
-    assert api.get("/v1/fits").get_json() == {"fits": []}
+    assert api.get("/v1/fits").get_json() == {"fits": [], "next_cursor": None}
 
 
 @pytest.mark.parametrize(
@@ -182,13 +182,26 @@ def test_fit_invalid_params_are_422(
 ) -> None:
     with unchanged():
         assert_problem(api.post(FITS, json=body), 422, field)
-    assert api.get("/v1/fits").get_json() == {"fits": []}
+    assert api.get("/v1/fits").get_json() == {"fits": [], "next_cursor": None}
+
+
+@pytest.mark.parametrize(("former", "now"), [("if_better", "when_better"),
+                                           ("always", "at_once"), ("never", "by_hand")])
+def test_former_activation_policy_names_are_refused_naming_the_new_one(
+    api: SpecClient, with_batches: list[str], unchanged, former: str, now: str
+) -> None:
+    with unchanged():
+        body = assert_problem(api.post(FITS, json={"activate": former}), 422, "activate")
+    message = next(e["message"] for e in body["errors"] if e["field"] == "activate")
+    assert repr(now) in message and "when_better, at_once, by_hand" in message
+    assert api.get("/v1/fits").get_json()["fits"] == []
 
 
 @pytest.mark.parametrize(
     ("query", "status", "field"),
     [
         ("?status=done", 422, "status"),
+        ("?status=queued", 422, "status"),  # the former name of waiting
         ("?metric=Bad!", 422, "metric"),  # the query parameter at fault, not "name"
         ("?colour=red", 422, "colour"),
         ("?metric=nothing", 404, None),

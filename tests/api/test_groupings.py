@@ -62,7 +62,7 @@ def test_columns_form_auto_k_and_explicit_version(
 def test_grouping_follows_activations(
     api: SpecClient, fitted: dict[str, Any], fit_to_version: Callable[..., dict], held_out
 ) -> None:
-    fit_to_version("iris", method="euclidean", activate="never")
+    fit_to_version("iris", method="euclidean", activate="by_hand")
     body = {"records": as_records(held_out[0]), "k": 3}
     assert api.post(URL, json=body).get_json()["version"] == 1
     api.put("/v1/metrics/iris/active", json={"version": 2, "reason": "compare"})

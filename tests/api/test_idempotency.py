@@ -119,7 +119,7 @@ def test_fits_activations_and_metrics_replay(api: SpecClient, ctx: Context,
     assert ctx.queue.count == 1
     run_worker_burst(ctx, max_jobs=2)
     second = api.post("/v1/metrics/iris/fits", json={"method": "euclidean",
-                                                     "activate": "never"})
+                                                     "activate": "by_hand"})
     run_worker_burst(ctx, max_jobs=2)
     v2 = api.get(second.headers["Location"]).get_json()["version"]
     roll = {"version": v2, "reason": "compare"}

@@ -108,7 +108,7 @@ def test_put_invalid_is_422_naming_the_field(
     with unchanged():
         resp = api.put(path, json=body)
     assert_problem(resp, 422, field)
-    assert api.get("/v1/metrics").get_json() == {"metrics": []}
+    assert api.get("/v1/metrics").get_json() == {"metrics": [], "next_cursor": None}
 
 
 def test_escaped_surrogate_pairs_are_text(api: SpecClient) -> None:

@@ -59,6 +59,7 @@ def _requests(fit_id: str, batch_id: str) -> dict[str, tuple[str, str, Any]]:
         "v1.fits.retry_fit": ("POST", f"/v1/fits/{fit_id}/retry", None),
         "v1.versions.list_versions": ("GET", "/v1/metrics/iris/versions", None),
         "v1.versions.get_version": ("GET", "/v1/metrics/iris/versions/1", None),
+        "v1.versions.explain_version": ("GET", "/v1/metrics/iris/versions/1/explanation", None),
         "v1.versions.activate": ("PUT", "/v1/metrics/iris/active",
                                  {"version": 1, "reason": "matrix"}),
         "v1.versions.history": ("GET", "/v1/metrics/iris/history", None),

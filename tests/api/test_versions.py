@@ -32,7 +32,7 @@ def test_version_lists_and_details(
 def test_activate_roll_forward_and_back_with_history(
     api: SpecClient, fitted: dict[str, Any], fit_to_version: Callable[..., dict]
 ) -> None:
-    second = fit_to_version("iris", method="euclidean", activate="never")
+    second = fit_to_version("iris", method="euclidean", activate="by_hand")
     assert second["version"] == 2 and second["decision"]["activated"] is False
     assert api.get(BASE).get_json()["active_version"] == 1
     assert api.get(f"{BASE}/versions/2").get_json()["parent"] == 1
@@ -68,8 +68,8 @@ def test_unknown_metric_is_404_on_every_version_route(api: SpecClient, unchanged
 
 def test_metric_without_versions(api: SpecClient, metric: str, unchanged) -> None:
     with unchanged():
-        assert api.get(f"{BASE}/versions").get_json() == {"versions": []}
-        assert api.get(f"{BASE}/history").get_json() == {"history": []}
+        assert api.get(f"{BASE}/versions").get_json() == {"versions": [], "next_cursor": None}
+        assert api.get(f"{BASE}/history").get_json() == {"history": [], "next_cursor": None}
         assert_problem(api.get(f"{BASE}/versions/1"), 404)
         assert_problem(api.put(f"{BASE}/active", json={"version": 1}), 404)
 

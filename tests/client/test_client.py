@@ -19,6 +19,7 @@ from types import SimpleNamespace
 import numpy as np
 import pandas as pd
 import pytest
+import yaml
 
 from likewise_client import (
     NO_RETRY,
@@ -71,7 +72,8 @@ OPERATIONS = {
     "listVersions": "list_versions", "getVersion": "get_version",
     "activateVersion": "activate", "activationHistory": "history", "driftReport": "drift",
     "groupRecords": "group", "queueOverview": "queues", "healthz": "health",
-    "readyz": "ready", "prometheusMetrics": "prometheus",
+    "readyz": "ready", "prometheusMetrics": "prometheus", "openapiJson": "openapi",
+    "openapiYaml": "openapi_yaml", "explainVersion": "explain",
 }
 
 
@@ -120,7 +122,7 @@ def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> 
         assert sum(detail["group_sizes"].values()) == len(y0)
 
         fit = lw.start_fit(name, method="auto")
-        assert fit["status"] in ("queued", "running", "succeeded")
+        assert fit["status"] in ("waiting", "running", "succeeded")
         seen = []
         done = lw.wait_for_fit(fit["fit_id"], timeout=120, interval=0.1,
                                on_progress=lambda f: seen.append(f["status"]))
@@ -150,7 +152,7 @@ def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> 
         assert set(watched["features"]) == set(IRIS_FEATURES)
 
         second = lw.wait_for_fit(lw.start_fit(name, method="euclidean",
-                                              activate="never")["fit_id"], timeout=120)
+                                              activate="by_hand")["fit_id"], timeout=120)
         assert second["version"] == 2
         moved = lw.activate(name, 2, "client test")
         assert moved == {"name": name, "active_version": 2, "previous_version": 1}
@@ -163,6 +165,11 @@ def test_metric_batches_fit_versions_groupings_end_to_end(live, metric_name) -> 
         ready, body = lw.ready()
         assert ready and body["checks"]["redis"] is True
         assert "likewise_http_requests_total" in lw.prometheus()
+        spec = lw.openapi()
+        assert "/openapi.json" in spec["paths"] and yaml.safe_load(lw.openapi_yaml()) == spec
+        explained = lw.explain(name, 2)
+        assert explained["version"] == 2 and set(explained["features"]) == set(
+            lw.get_version(name, 2)["metric"]["features"])
 
         lw.delete_metric(name)
         with pytest.raises(ProblemError) as gone:

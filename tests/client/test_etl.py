@@ -110,7 +110,7 @@ def test_missing_values_are_refused_naming_the_cell(batches):
 def test_fit_from_statistics_and_arrow_batches_gives_the_all_raw_matrix(
         live, metric_name, batches, capsys):
     frame = frame_of(batches, with_batch_column=True)
-    params = {"method": "discriminant", "alphas": [0.1], "activate": "always", "seed": 0}
+    params = {"method": "discriminant", "alphas": [0.1], "activate": "at_once", "seed": 0}
     with live.client() as lw:
         lw.put_metric(metric_name, FEATURES)
         for _, part in frame.groupby("batch"):

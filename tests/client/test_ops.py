@@ -36,7 +36,7 @@ def two_versions(live, metric_name):
         lw.put_metric(metric_name, IRIS_FEATURES)
         for X, y in iris_batches(4):
             lw.post_batch(metric_name, X, y, columns=IRIS_FEATURES)
-        for params in ({}, {"method": "euclidean", "activate": "never"}):
+        for params in ({}, {"method": "euclidean", "activate": "by_hand"}):
             fit = lw.wait_for_fit(lw.start_fit(metric_name, **params)["fit_id"], 120)
             assert fit["status"] == "succeeded", fit
     return metric_name
@@ -64,16 +64,22 @@ def test_metrics_versions_and_explain(live, run, two_versions) -> None:
     shares = [float(line.split()[1]) for line in out.splitlines()
               if line.split() and line.split()[0] in IRIS_FEATURES]
     assert shares == [0.25] * 4
-    # per-unit weight against numpy: the length of L·e_j / scale_j, from the map itself
+    # the command shows the service's explanation (not weights of its own): per-unit
+    # weight against numpy, the length of L·e_j / scale_j from the stored map itself
     with live.client() as lw:
         version = lw.get_version(name, 1)
+        explanation = lw.explain(name, 1)
     L = np.array(version["metric"]["components"])
     scales = np.array(version["metric"]["scales"])
     expected = dict(zip(IRIS_FEATURES, np.linalg.norm(L, axis=0) / scales, strict=True))
-    for feature, share, per_unit in feature_weights(version):
+    for feature, share, per_unit in feature_weights(explanation):
         np.testing.assert_allclose(per_unit, expected[feature], rtol=1e-9)
         assert 0 <= share <= 1
-    assert sum(s for _, s, _ in feature_weights(version)) == pytest.approx(1.0)
+    assert sum(s for _, s, _ in feature_weights(explanation)) == pytest.approx(1.0)
+    code, out, _ = run("explain", name, "1")
+    folds = [line.split() for line in out.splitlines()[-len(explanation["folds"]):]]
+    assert [(int(f[0]), float(f[3])) for f in folds] == [
+        (f["fold"], round(f["ari"], 3)) for f in explanation["folds"]]
 
 
 def test_activate_and_rollback_need_a_reason_and_move_the_active_version(

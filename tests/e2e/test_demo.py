@@ -34,5 +34,10 @@ def test_demo_runs_the_whole_flow_and_reports_held_out_ari(settings, tmp_path):
         learned, euclidean = map(float, mean.groups())
         assert learned > euclidean
         assert "better than plain Euclidean" in text and "NOT better" not in text
+        # both scores it prints are explained in its own output
+        from service.demo import SCORE_CV, SCORE_FRESH
+
+        assert SCORE_CV in text and SCORE_FRESH in text
+        assert text.index("cross-validated held-out ARI") < text.index(SCORE_CV)
     finally:
         assert _stop(proc) == 0

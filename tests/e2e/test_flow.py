@@ -185,7 +185,7 @@ def test_whole_flow_through_the_launcher(settings, tmp_path):
 
         for Xb, yb in train[20:]:
             _post_batch(http, "digits", features, Xb, yb)
-        second = _fit(http, "digits", {"activate": "always"})
+        second = _fit(http, "digits", {"activate": "at_once"})
         assert second["version"] == 2
         assert http.request("GET", "/v1/metrics/digits")[1]["active_version"] == 2
 

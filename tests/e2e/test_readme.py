@@ -67,7 +67,7 @@ _WAIT_FOR_FITS = """
 for _ in $(seq 1 240); do
   live=$(curl -sf "BASE/v1/fits?metric=shipments" -H "$AUTH" | python3 -c \
     'import json,sys; fits = json.load(sys.stdin)["fits"]
-print(sum(f["status"] in ("queued", "running") for f in fits))')
+print(sum(f["status"] in ("waiting", "running") for f in fits))')
   [ "$live" = "0" ] && break
   sleep 0.5
 done

@@ -32,7 +32,7 @@ def _ctx_with(ctx: Context, **changes) -> Context:
 
 
 def _expected_decision(ctx: Context, name: str, params: dict, active: int) -> bool:
-    """Recompute the if_better rule outside the service: the new configuration's held-out
+    """Recompute the when_better rule outside the service: the new configuration's held-out
     ARI against the active version's configuration re-scored on the same folds."""
     p = fits.normalize_params(params)
     data = load_training_data(ctx, name)
@@ -47,7 +47,7 @@ def _expected_decision(ctx: Context, name: str, params: dict, active: int) -> bo
 def test_fit_succeeds_and_version_1_is_active(ctx: Context, run_worker_burst) -> None:
     _, _, ids = setup_metric(ctx, "m", dataset="wine", n=4)
     fit, created = fits.request_fit(ctx, "m", {}, "etl")
-    assert created and fit["status"] == "queued" and fit["version"] is None
+    assert created and fit["status"] == "waiting" and fit["version"] is None
     job_id = ctx.storage.fits.get(fit["fit_id"]).job_id
     run_worker_burst(ctx)
     done = fits.get_fit(ctx, fit["fit_id"])
@@ -102,11 +102,11 @@ def test_activation_policies(ctx: Context, run_worker_burst) -> None:
     assert metrics.get_metric(ctx, "m")["active_version"] == 1
     assert versions.get_version(ctx, "m", 2)["parent"] == 1
 
-    never = fit({"activate": "never", "seed": 1})
+    never = fit({"activate": "by_hand", "seed": 1})
     assert never["decision"]["activated"] is False
-    assert never["decision"]["reason"].startswith("activate=never")
+    assert never["decision"]["reason"].startswith("activate=by_hand")
 
-    forced = fit({"method": "euclidean", "activate": "always"})
+    forced = fit({"method": "euclidean", "activate": "at_once"})
     assert forced["decision"]["activated"] is True
     assert metrics.get_metric(ctx, "m")["active_version"] == forced["version"] == 4
 
@@ -150,7 +150,7 @@ def test_failed_fit_is_retried_on_request(ctx: Context, run_worker_burst) -> Non
     X, y = data[1]
     batches.add_batch(ctx, "m", as_table(feats, X, y.tolist()))
     again = fits.retry_fit(ctx, fit["fit_id"], "admin")
-    assert again["fit_id"] == fit["fit_id"] and again["status"] == "queued"
+    assert again["fit_id"] == fit["fit_id"] and again["status"] == "waiting"
     assert again["error"] is None
     run_worker_burst(ctx)
     done = fits.get_fit(ctx, fit["fit_id"])
@@ -165,7 +165,7 @@ def test_fit_of_a_deleted_metric_leaves_nothing(ctx: Context, run_worker_burst) 
     metrics.delete_metric(ctx, "m")
     run_worker_burst(ctx)
     assert list(ctx.redis.scan_iter(match=ctx.settings.key_prefix + ":metric:*")) == []
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
 
 
 def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypatch) -> None:
@@ -184,7 +184,7 @@ def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypat
     run_worker_burst(ctx)
     assert Job.fetch(job_id, connection=ctx.redis).get_status() == "finished"
     assert ctx.queue.failed_job_registry.count == 0
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
     assert ctx.storage.versions.numbers("m") == [] and ctx.storage.fits.get(fit["fit_id"]) is None
     monkeypatch.setattr(MetricSelector, "fit", original)
     setup_metric(ctx, "m", n=2)
@@ -198,7 +198,7 @@ def test_lost_queue_job_is_reported_failed(ctx: Context, run_worker_burst) -> No
     fit, _ = fits.request_fit(ctx, "m", {}, "admin")
     Job.fetch(ctx.storage.fits.get(fit["fit_id"]).job_id, connection=ctx.redis).delete()
     # reads never write: the fit shows queued until the warden looks at it
-    assert fits.get_fit(ctx, fit["fit_id"])["status"] == "queued"
+    assert fits.get_fit(ctx, fit["fit_id"])["status"] == "waiting"
     assert warden.sweep(ctx) == 1 and warden.sweep(ctx) == 0
     lost = fits.get_fit(ctx, fit["fit_id"])
     assert lost["status"] == "failed" and "no longer exists" in lost["error"]
@@ -232,7 +232,7 @@ def test_a_stranded_job_is_issued_again(ctx: Context, run_worker_burst, taken: b
     eager = _ctx_with(ctx, stranded_seconds=0)
     assert warden.sweep(eager) == 1 and warden.sweep(eager) == 0
     again = ctx.storage.fits.get(fit["fit_id"])
-    assert again.status.value == "queued" and again.job_id != old_job
+    assert again.status.value == "waiting" and again.job_id != old_job
     assert again.attempts == 0 and "lost" in again.error
     assert ctx.queue.count == 1
     run_worker_burst(ctx)
@@ -319,11 +319,11 @@ def test_worker_killed_mid_fit(ctx: Context, run_worker_burst, retries: int) -> 
     assert "worker running this fit stopped" in out["error"], out
     assert not Job.exists(first_job, connection=c.redis)  # the dead job is forgotten
     if retries:
-        assert out["status"] == "queued"
+        assert out["status"] == "waiting"
         assert c.storage.fits.get(fit["fit_id"]).job_id != first_job
         run_worker_burst(c)
         out = fits.get_fit(c, fit["fit_id"])
         assert (out["status"], out["attempts"], out["version"]) == ("succeeded", 2, 1), out
     else:
         assert out["status"] == "failed"
-        assert fits.retry_fit(c, fit["fit_id"], "admin")["status"] == "queued"
+        assert fits.retry_fit(c, fit["fit_id"], "admin")["status"] == "waiting"

@@ -31,13 +31,13 @@ def test_grouping_follows_activation(ctx: Context, run_worker_burst) -> None:
     _, (held_out,) = open_batches("wine", 1, seed=99)
     X, y = held_out
     table = as_table(feats, X)
-    assert _fit(ctx, run_worker_burst, {"activate": "never"}) == 1
+    assert _fit(ctx, run_worker_burst, {"activate": "by_hand"}) == 1
     with pytest.raises(Conflict):  # versions exist, none active
         groupings.group(ctx, "m", table, k=3)
     explicit = groupings.group(ctx, "m", table, k=int(len(set(y.tolist()))), version=1)
     assert explicit["version"] == 1
     versions.activate(ctx, "m", 1, "first look", "admin")
-    assert _fit(ctx, run_worker_burst, {"method": "euclidean", "activate": "always"}) == 2
+    assert _fit(ctx, run_worker_burst, {"method": "euclidean", "activate": "at_once"}) == 2
 
     other = Context.build(ctx.settings)  # a second process: its own cache
     try:

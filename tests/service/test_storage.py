@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import json
 import threading
 
 import numpy as np
@@ -122,7 +123,7 @@ def test_two_prefixes_share_a_redis_without_seeing_each_other(ctx: Context) -> N
         assert metrics.get_metric(other, "shared")["features"] == ["only"]
         assert metrics.get_metric(other, "shared")["batches"] == 0
         metrics.delete_metric(other, "shared")
-        assert metrics.list_metrics(other) == {"metrics": []}
+        assert metrics.list_metrics(other) == {"metrics": [], "next_cursor": None}
         assert metrics.get_metric(ctx, "shared")["records"] > 0
         assert [m["name"] for m in metrics.list_metrics(ctx)["metrics"]] == ["shared"]
     finally:
@@ -189,7 +190,7 @@ def test_activation_of_a_missing_version_changes_nothing(ctx: Context) -> None:
     with pytest.raises(NotFound):
         versions.activate(ctx, "m", 3, "roll back", "admin")
     assert ctx.storage.versions.active("m") is None
-    assert versions.history(ctx, "m") == {"history": []}
+    assert versions.history(ctx, "m") == {"history": [], "next_cursor": None}
 
 
 def test_feature_change_with_batches_is_a_conflict(ctx: Context) -> None:
@@ -215,3 +216,46 @@ def test_matrices_stored_in_the_old_zlib_format_still_load(ctx: Context) -> None
     rows = load_training_data(ctx, "m")
     assert_array_equal(rows[0]["X"], X)
     assert_array_equal(rows[1]["X"], data[1][0])
+
+
+def test_fit_records_stored_under_former_names_read_under_ours(ctx: Context) -> None:
+    # a record as stored before the activation policies were renamed
+    fit = Fit(fit_id="a" * 20, metric="m", metric_uid="u", params={"activate": "never"},
+              requested_by="t", job_id="job-a", dedupe_key=None, created_at="now",
+              created_ts=0.0)
+    record = fit.to_record()
+    ctx.redis.hset(ctx.storage.keys.fit(fit.fit_id), mapping={
+        k: json.dumps(v) for k, v in record.items()})
+    got = ctx.storage.fits.get(fit.fit_id)
+    assert got is not None and got.params["activate"] == "by_hand"
+    for former, now in (("if_better", "when_better"), ("always", "at_once")):
+        ctx.redis.hset(ctx.storage.keys.fit(fit.fit_id), "params",
+                       json.dumps({"activate": former}))
+        assert ctx.storage.fits.get(fit.fit_id).params == {"activate": now}
+
+
+def test_fit_records_stored_with_the_former_waiting_status_read_as_waiting(
+    ctx: Context,
+) -> None:
+    from service.usecases import fits as fit_uc
+
+    feats, _, _ = setup_metric(ctx, "m", n=2)
+    uid = ctx.storage.metrics.get("m")["uid"]
+    fit = Fit(fit_id="b" * 20, metric="m", metric_uid=uid, params={"activate": "if_better"},
+              requested_by="t", job_id="job-b", dedupe_key=ctx.storage.fits.dedupe_key("m", "h"),
+              created_at="now", created_ts=1.0)
+    ctx.storage.fits.create(fit, enqueue=lambda pipe: None)
+    # as a record was written before ``waiting`` had its name
+    ctx.redis.hset(ctx.storage.keys.fit(fit.fit_id), mapping={
+        "status": json.dumps("queued"), "stage": json.dumps("queued")})
+    shown = fit_uc.get_fit(ctx, fit.fit_id)
+    assert (shown["status"], shown["stage"]) == ("waiting", "waiting")
+    assert shown["params"]["activate"] == "when_better"
+    assert [f["fit_id"] for f in fit_uc.list_fits(ctx, status="waiting")["fits"]] == [fit.fit_id]
+    assert ctx.storage.fits.get(fit.fit_id).live
+    # the dedupe check reads the raw status too: the old record still holds its slot
+    again = dataclasses.replace(fit, fit_id="c" * 20)
+    assert ctx.storage.fits.create(again, enqueue=lambda pipe: None) == (fit.fit_id, False)
+    # and it moves on under our names
+    moved = ctx.storage.fits.change(fit.fit_id, lambda f: f.start())
+    assert moved is not None and moved.status is FitStatus.RUNNING

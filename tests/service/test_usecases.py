@@ -33,7 +33,7 @@ def _raises(exc_type: type[ServiceError], status: int, field: str | None, fn, *a
 def _nothing_stored(ctx: Context, name: str = "m", n_batches: int = 0) -> None:
     m = metrics.get_metric(ctx, name)
     assert (m["batches"], m["versions"], m["active_version"]) == (n_batches, 0, None)
-    assert fits.list_fits(ctx, name) == {"fits": []}
+    assert fits.list_fits(ctx, name) == {"fits": [], "next_cursor": None}
     assert ctx.queue.count == 0
 
 
@@ -41,7 +41,7 @@ def _nothing_stored(ctx: Context, name: str = "m", n_batches: int = 0) -> None:
 @pytest.mark.parametrize("name", ["", "Upper", "has space", "a" * 65, "dot.name", "ü", 5])
 def test_metric_name_rule(ctx: Context, name) -> None:
     _raises(InvalidInput, 422, "name", metrics.put_metric, ctx, name, ["a"])
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
 
 
 @pytest.mark.parametrize("features,field", [
@@ -50,14 +50,14 @@ def test_metric_name_rule(ctx: Context, name) -> None:
 ])
 def test_metric_features_are_validated(ctx: Context, features, field) -> None:
     _raises(InvalidInput, 422, field, metrics.put_metric, ctx, "m", features)
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
 
 
 def test_too_many_features_and_long_description(ctx: Context) -> None:
     too_many = [f"f{i}" for i in range(ctx.settings.max_batch_features + 1)]
     _raises(InvalidInput, 422, "features", metrics.put_metric, ctx, "m", too_many)
     _raises(InvalidInput, 422, "description", metrics.put_metric, ctx, "m", ["a"], "x" * 2001)
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
 
 
 def test_put_metric_created_unchanged_updated(ctx: Context) -> None:
@@ -82,7 +82,7 @@ def test_missing_metric_is_404_everywhere(ctx: Context) -> None:
     ]:
         _raises(NotFound, 404, None, fn, ctx, "nope", *args)
     _raises(NotFound, 404, None, fits.list_fits, ctx, "nope")
-    assert metrics.list_metrics(ctx) == {"metrics": []}
+    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
 
 
 def test_delete_metric_removes_every_key(ctx: Context) -> None:
@@ -185,17 +185,17 @@ def test_fit_lookups(ctx: Context) -> None:
     _raises(InvalidInput, 422, "status", fits.list_fits, ctx, None, "done")
     setup_metric(ctx, "m", n=2)
     fit, created = fits.request_fit(ctx, "m", {"method": "euclidean"}, "etl")
-    assert created and fit["status"] == "queued" and fit["requested_by"] == "etl"
+    assert created and fit["status"] == "waiting" and fit["requested_by"] == "etl"
     _raises(Conflict, 409, None, fits.retry_fit, ctx, fit["fit_id"], "admin")
-    assert fits.list_fits(ctx, status="queued")["fits"] == [fit]
-    assert fits.list_fits(ctx, "m", "failed") == {"fits": []}
+    assert fits.list_fits(ctx, status="waiting")["fits"] == [fit]
+    assert fits.list_fits(ctx, "m", "failed") == {"fits": [], "next_cursor": None}
     assert ctx.queue.count == 1
 
 
 # ---- versions and groupings without a fit ------------------------------------------
 def test_versions_and_groupings_before_any_fit(ctx: Context) -> None:
     feats, data, _ = setup_metric(ctx, "m", n=2)
-    assert versions.list_versions(ctx, "m") == {"versions": []}
+    assert versions.list_versions(ctx, "m") == {"versions": [], "next_cursor": None}
     _raises(NotFound, 404, None, versions.get_version, ctx, "m", 1)
     for bad in [0, -1, "1", True, None]:
         _raises(InvalidInput, 422, "version", versions.get_version, ctx, "m", bad)
@@ -206,6 +206,6 @@ def test_versions_and_groupings_before_any_fit(ctx: Context) -> None:
     _raises(Conflict, 409, None, groupings.group, ctx, "m", table)
     _raises(Conflict, 409, None, groupings.group, ctx, "m", table, "auto")
     _raises(NotFound, 404, None, groupings.group, ctx, "m", table, 2, 1)
-    assert versions.history(ctx, "m") == {"history": []}
+    assert versions.history(ctx, "m") == {"history": [], "next_cursor": None}
     assert metrics.get_metric(ctx, "m")["active_version"] is None
 

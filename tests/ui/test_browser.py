@@ -74,7 +74,7 @@ def _two_versions(live: Live, name: str) -> None:
     assert first["status"] == "succeeded" and first["version"] == 1, first
     post(batches[4:6])
     second = client.wait_for_fit(
-        client.start_fit(name, method="diagonal", activate="always")["fit_id"], timeout=240)
+        client.start_fit(name, method="diagonal", activate="at_once")["fit_id"], timeout=240)
     assert second["status"] == "succeeded" and second["version"] == 2, second
     post(batches[6:])
 

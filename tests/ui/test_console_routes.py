@@ -75,7 +75,7 @@ def test_the_metric_part_shows_versions_history_plots_and_the_rollback(
     api: SpecClient, fitted: dict, fit_to_version: Any
 ) -> None:
     post_batches(api, "iris", iris_batches(2, seed=7))
-    second = fit_to_version("iris", activate="always", method="diagonal")
+    second = fit_to_version("iris", activate="at_once", method="diagonal")
     assert second["version"] == 2
     resp = api.get("/console/parts/metrics/iris")
     assert resp.status_code == 200 and resp.mimetype == "text/html"
