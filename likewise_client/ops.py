@@ -115,6 +115,21 @@ def cmd_versions(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
     return 0
 
 
+def cmd_drift(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
+    report = lw.drift(args.metric, version=args.version, since=args.since)
+    print(f"{args.metric} version {report['version']}: {report['verdict']} — "
+          f"{report['records']} records grouped since {report['since']} "
+          f"(training reference: {report['reference_records']} records)", file=out)
+    rows = [(name, s.get("verdict"), s.get("mean_shift"), s["psi"], s["ks"])
+            for name, s in report["features"].items()]
+    m = report["margins"]
+    rows.append(("(margins)", m.get("verdict"), m.get("mean_shift"), m["psi"], m["ks"]))
+    table(["feature", "verdict", "mean shift (sd)", "PSI", "KS"], rows, out)
+    if report["flagged"]:
+        print("flagged: " + ", ".join(report["flagged"]), file=out)
+    return 0
+
+
 def feature_weights(explanation: dict[str, Any]) -> list[tuple[str, float, float]]:
     """``(feature, share, per_unit)`` from the service's explanation, largest share
     first: ``share`` is ``M_jj / tr(M)`` (standardised features), ``per_unit`` the
@@ -279,6 +294,11 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     p = add("explain", cmd_explain, "show a version's feature weights, by feature name")
     p.add_argument("metric")
     p.add_argument("version", nargs="?", type=int, help="default: the active version")
+    p = add("drift", cmd_drift, "how far recent groupings' records are from the training "
+                                "batches, by feature")
+    p.add_argument("metric")
+    p.add_argument("--version", type=int, default=None, help="default: the active version")
+    p.add_argument("--since", default=None, help="an ISO 8601 time (default: all retained)")
     p = add("activate", cmd_activate, "make a version the active one (reason required)")
     p.add_argument("metric")
     p.add_argument("version", type=int)

@@ -82,6 +82,22 @@ def test_metrics_versions_and_explain(live, run, two_versions) -> None:
         (f["fold"], round(f["ari"], 3)) for f in explanation["folds"]]
 
 
+def test_drift_shows_the_verdict_and_names_the_shifted_feature(live, run, two_versions
+                                                               ) -> None:
+    name = two_versions
+    pool = np.vstack([X for X, _ in iris_batches(6)])
+    moved = pool.copy()
+    moved[:, 2] *= 1000  # petal length in other units
+    with live.client() as lw:
+        lw.group(name, moved, 3, columns=IRIS_FEATURES)
+        expected = lw.drift(name)
+    code, out, _ = run("drift", name)
+    assert code == 0 and expected["verdict"] == "drifted"
+    assert out.splitlines()[0].startswith(f"{name} version 1: drifted")
+    row = next(line.split() for line in out.splitlines() if line.startswith("petal_length"))
+    assert row[1] == "drifted" and "flagged: petal_length" in out
+
+
 def test_activate_and_rollback_need_a_reason_and_move_the_active_version(
         live, run, two_versions) -> None:
     name = two_versions
