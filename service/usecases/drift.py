@@ -39,6 +39,7 @@ from service.errors import Conflict, InvalidInput, NotFound
 from service.store.codecs import pack_json, unpack_json
 from service.tables import encoded_names
 
+from .backlog import BACKLOG
 from .metrics import require_metric
 from .versions import chosen_version
 
@@ -88,13 +89,20 @@ def _sizes(ref: Reference, n_features: int) -> dict[str, int]:
 
 def record(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
            X: np.ndarray, grouping: Grouping) -> None:
-    """Add one grouping request's summary to the current hour's bucket."""
+    """Add one grouping request's summary to the current hour's bucket — after the
+    answer has gone: the summary is computed and written by the process's backlog."""
+    hour = _hour(_now())
+    BACKLOG.submit(lambda: _write(ctx, metric, version, fitted, X, grouping, hour))
+
+
+def _write(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
+           X: np.ndarray, grouping: Grouping, hour: int) -> None:
     ref = _reference(ctx, metric, version)
     if ref is None:
         return
     s = summarise(fitted, X, grouping, ref.layouts)
     ctx.storage.drift.add(
-        metric["name"], metric["uid"], version, _hour(_now()),
+        metric["name"], metric["uid"], version, hour,
         (ctx.settings.drift_hours + 1) * HOUR, s.moments.count, s.moments.mean,
         s.moments.m2, {"f": s.features, "m": s.margins, "d": s.distances, "g": s.groups})
 
@@ -135,9 +143,11 @@ def report(ctx: Context, name: str, version: int | None = None, since: Any = Non
            ) -> dict[str, Any]:
     """Drift of the records grouped with ``version`` (default: the active one) since
     ``since`` (ISO 8601; default and earliest: ``drift_hours`` ago; buckets are
-    hourly, so it counts from the start of its hour)."""
+    hourly, so it counts from the start of its hour). This process's own summaries
+    still in its backlog are written first; another process's land within moments."""
     from .groupings import load_version_metric
 
+    BACKLOG.flush()
     metric = require_metric(ctx, name)
     now = _now()
     at = _check_since(since, now)

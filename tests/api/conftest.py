@@ -16,6 +16,7 @@ from flask import Flask
 
 from service.api import create_app
 from service.context import Context
+from service.usecases.backlog import BACKLOG
 from tests.conftest import ADMIN_TOKEN, ETL_TOKEN
 
 from .helpers import IRIS_FEATURES, iris_batches, post_batches
@@ -75,6 +76,7 @@ def unchanged(ctx: Context) -> Callable[[], contextlib.AbstractContextManager[No
     @contextlib.contextmanager
     def check(but: str | None = None) -> Iterator[None]:
         def snapshot() -> dict[bytes, Any]:
+            assert BACKLOG.flush()  # summaries handed off by earlier requests land first
             keys = _snapshot(ctx)
             return {k: v for k, v in keys.items() if not (but and k.startswith(but.encode()))}
 

@@ -11,6 +11,7 @@ from sklearn.metrics import adjusted_rand_score
 
 from service.api import create_app
 from service.context import Context
+from service.usecases.backlog import BACKLOG
 
 from .helpers import IRIS_FEATURES, as_records, assert_problem, iris_batches
 from .spec import SpecClient
@@ -33,6 +34,7 @@ def test_grouping_with_the_active_version(
     with unchanged(but=drift_keys):  # grouping stores only its drift summary
         resp = api.post(URL, json={"records": as_records(X), "k": k})
     assert resp.status_code == 200
+    assert BACKLOG.flush()  # the summary is written after the answer
     assert len(list(ctx.redis.scan_iter(match=drift_keys + "*"))) == 1  # one hourly bucket
     g = resp.get_json()
     assert (g["version"], g["k"], g["k_chosen"]) == (1, k, False)
