@@ -83,6 +83,28 @@ def versions_chart(versions: Sequence[dict[str, Any]], active: int | None) -> st
     return _svg(draw, 5.6, 2.8)
 
 
+def margins_chart(hist: dict[str, Any]) -> str:
+    """Shares of records per margin bin: recent groupings against the training
+    batches seen through the same version (the last bar is everything beyond)."""
+    edges = np.asarray(hist["edges"], dtype=float)
+    width = float(edges[1] - edges[0]) if edges.size > 1 else 1.0
+    lefts = np.append(edges[:-1], edges[-1])  # the overflow bar sits past the last edge
+
+    def draw(fig: Figure) -> None:
+        ax = fig.add_subplot()
+        ax.bar(lefts, hist["reference"], width=width, align="edge", color=EUCLID,
+               alpha=0.35, label="training batches (reference)")
+        ax.step(np.append(lefts, lefts[-1] + width), [*hist["live"], hist["live"][-1]],
+                where="post", color=LEARNED, linewidth=1.6,
+                label=f"recent groupings ({hist['records']} records)")
+        ax.set_xlabel("margin: distance to the runner-up centre minus distance to the own "
+                      "centre (the last bar: beyond the last edge)")
+        ax.set_ylabel("share of records")
+        ax.legend(loc="upper right", frameon=False, fontsize=8)
+
+    return _svg(draw, 11.0, 2.4)
+
+
 def feature_weights(components: np.ndarray) -> np.ndarray:
     """Each feature's weight in the learned squared distance: the diagonal of
     ``M = LᵀL`` on standardised features, scaled so the weights average 1 (under the

@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Any
 
 from service.core import FittedMetric
 
-from . import charts
+from . import charts, drift
 from .fits import list_fits
 from .metrics import require_metric
 from .queues import queue_overview
@@ -107,7 +107,7 @@ def metric_board(ctx: Context, name: str) -> dict[str, Any]:
         "name": name, "description": metric.get("description", ""),
         "features": metric["features"], "versions": versions[::-1], "active": active,
         "history": past[::-1], "rollback_to": rollback_target(active, past, numbers),
-        "charts": {}, "batch": None,
+        "charts": {}, "batch": None, "drift": None,
     }
     if versions:
         out["charts"]["versions"] = charts.versions_chart(versions, active)
@@ -120,6 +120,10 @@ def metric_board(ctx: Context, name: str) -> dict[str, Any]:
     columns = list(doc["metric"]["features"])
     out["charts"]["weights"] = charts.weights_chart(
         columns, charts.feature_weights(fitted.components))
+    hist = drift.margin_histogram(ctx, name, active)
+    if hist is not None and hist["records"] > 0:
+        out["drift"] = {"records": hist["records"], "verdict": hist["verdict"]}
+        out["charts"]["margins"] = charts.margins_chart(hist)
     trained = {b["batch_id"] for b in doc["batches"]}
     newest = _shown_batch(ctx, name, trained)
     if newest is not None and newest["X"].shape[1] == fitted.n_features:

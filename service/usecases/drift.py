@@ -171,10 +171,41 @@ def report(ctx: Context, name: str, version: int | None = None, since: Any = Non
             "thresholds": THRESHOLDS}
 
 
+def margin_histogram(ctx: Context, name: str, version: int) -> dict[str, Any] | None:
+    """The margins of the records grouped with ``version`` over the retained window
+    against its training reference, as shares per bin (for the console's panel):
+    ``edges`` (interior bin edges), ``live`` and ``reference`` (shares of the interior
+    bins and, last, of the overflow), ``records``, ``verdict``. None without a
+    reference."""
+    from .groupings import load_version_metric
+
+    BACKLOG.flush()
+    metric = require_metric(ctx, name)
+    _, declared, inputs = load_version_metric(ctx, metric, version)
+    ref = _reference(ctx, metric, version)
+    if ref is None:
+        return None
+    d = len(encoded_names(declared, inputs.get("categories")))
+    last = _hour(_now())
+    live, _, _ = _live(ctx, metric, version, ref, d, last - ctx.settings.drift_hours, last)
+    layout = ref.layouts.margins
+
+    def shares(counts: np.ndarray) -> list[float]:
+        total = float(counts.sum())
+        kept = np.asarray(counts[1:], dtype=float)  # margins are never below 0
+        return (kept / total).tolist() if total > 0 else [0.0] * kept.size
+
+    scores = compare(ref, live, encoded_names(declared, inputs.get("categories")))
+    return {"edges": layout.edges.tolist(), "live": shares(live.margins),
+            "reference": shares(ref.summary.margins), "records": int(live.margins.sum()),
+            "verdict": scores["margins"].get("verdict")}
+
+
 def latest_verdicts(ctx: Context) -> dict[str, dict[str, Any]]:
     """Every metric's verdict for its active version over the whole retention (for the
     metrics exposition and the operator page): version, verdict, records, flagged.
     ``verdict`` is None for a metric without an active version or without a reference."""
+    BACKLOG.flush()
     out: dict[str, dict[str, Any]] = {}
     for name in ctx.storage.metrics.names():
         try:

@@ -77,6 +77,8 @@ def _two_versions(live: Live, name: str) -> None:
         client.start_fit(name, method="diagonal", activate="at_once")["fit_id"], timeout=240)
     assert second["status"] == "succeeded" and second["version"] == 2, second
     post(batches[6:])
+    X, _ = batches[0]
+    client.group(name, as_records(X), 3)  # something for the drift panel
 
 
 def test_roll_back_from_the_console(live: Live, metric_name: str, browser) -> None:
@@ -99,7 +101,7 @@ def test_roll_back_from_the_console(live: Live, metric_name: str, browser) -> No
     wait.until(ec.presence_of_element_located((By.CSS_SELECTOR, f'{board}[data-active="2"]')))
 
     # the three plots are inline SVG; the bars are keyed by feature name
-    for plot in ("versions", "weights", "projection"):
+    for plot in ("versions", "weights", "margins", "projection"):
         svg = driver.find_elements(By.CSS_SELECTOR, f"#plot-{plot} svg")
         assert len(svg) == 1, plot
         assert svg[0].size["width"] > 200 and svg[0].size["height"] > 100, plot

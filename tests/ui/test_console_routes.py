@@ -14,7 +14,7 @@ from xml.etree import ElementTree
 from service.api import create_app
 from service.context import Context
 from service.tokens import digest
-from tests.api.helpers import IRIS_FEATURES, assert_problem, iris_batches, post_batches
+from tests.api.helpers import IRIS_FEATURES, as_records, assert_problem, iris_batches, post_batches
 from tests.api.spec import SpecClient
 
 SVG = re.compile(r"<svg\b.*?</svg>", re.S)
@@ -91,6 +91,15 @@ def test_the_metric_part_shows_versions_history_plots_and_the_rollback(
     assert 'data-to="1"' in html and "Roll back to version 1" in html
     assert "not used to fit version 2" not in html  # every batch trained version 2
     assert html.count("<li data-from") == 2
+    # once records were grouped, a drift panel: their margins against the training ones
+    X, _ = iris_batches(1, seed=8)[0]
+    assert api.post("/v1/metrics/iris/groupings", json={"records": as_records(X),
+                                                        "k": 3}).status_code == 200
+    html = api.get("/console/parts/metrics/iris").get_data(as_text=True)
+    svgs = SVG.findall(html)
+    assert len(svgs) == 4 and 'id="plot-margins"' in html
+    ElementTree.fromstring(svgs[2])
+    assert f"margins of the {len(X)} records" in " ".join(html.split())
 
 
 def test_the_overview_lists_metrics_and_the_queue(api: SpecClient, fitted: dict) -> None:
