@@ -3,7 +3,8 @@
 A version's reference is written with the version itself (``VersionStore.commit``).
 A bucket is one hash per metric, version and UTC hour with five fields (see
 ``keys.py``): the record count, the number of requests, the features' means and M2s
-and every bin count, the last three as comma-separated text. A grouping request adds
+and every bin count, the last three as comma-separated text — and a sixth, the
+missing values filled in, once a request filled any. A grouping request adds
 its summary with ONE round trip: a Lua script (sent as EVALSHA) that merges the
 moments with the pairwise update of Chan, Golub & LeVeque (1979), adds the bin
 counts and renews the bucket's expiry — atomic, so concurrent requests never lose
@@ -63,6 +64,7 @@ end
 redis.call('HSET', key, 'n', string.format('%d', na + nb), 'mean', mean, 'm2', m2,
            'counts', counts)
 redis.call('HINCRBY', key, 'requests', 1)
+if tonumber(ARGV[6] or '0') > 0 then redis.call('HINCRBY', key, 'imputed', ARGV[6]) end
 redis.call('EXPIRE', key, ARGV[1])
 return na + nb
 """
@@ -78,6 +80,7 @@ class Bucket:
     mean: np.ndarray
     m2: np.ndarray
     counts: dict[str, np.ndarray]
+    imputed: int = 0  # missing values the requests filled in
 
 
 class DriftStore:
@@ -86,8 +89,8 @@ class DriftStore:
         self._add = redis.register_script(_ADD)
 
     def add(self, name: str, uid: str, version: int, hour: int, ttl_seconds: int,
-            count: int, mean: np.ndarray, m2: np.ndarray, counts: dict[str, np.ndarray]
-            ) -> None:
+            count: int, mean: np.ndarray, m2: np.ndarray, counts: dict[str, np.ndarray],
+            imputed: int = 0) -> None:
         """Merge one request's summary into its hour's bucket (one round trip).
 
         ``counts`` maps a histogram's name to its bin counts (any shape, stored flat,
@@ -96,7 +99,7 @@ class DriftStore:
         flat = np.concatenate([np.asarray(a, dtype=np.int64).ravel() for a in counts.values()])
         args = [int(ttl_seconds), int(count), ",".join(map(repr, np.asarray(mean, float).tolist())),
                 ",".join(map(repr, np.asarray(m2, float).tolist())),
-                ",".join(map(str, flat.tolist()))]
+                ",".join(map(str, flat.tolist())), int(imputed)]
         self._add(keys=[self.keys.drift_bucket(name, uid, version, hour)], args=args)
 
     def buckets(self, name: str, uid: str, version: int, hours: list[int],
@@ -125,7 +128,7 @@ def _decode(hour: int, raw: dict[bytes, bytes], sizes: dict[str, int]) -> Bucket
     cuts = np.cumsum(list(sizes.values()))[:-1]
     counts = dict(zip(sizes, np.split(flat, cuts), strict=True))
     return Bucket(hour, int(f.get("requests", 0)), int(f.get("n", 0)), _floats(f.get("mean")),
-                  _floats(f.get("m2")), counts)
+                  _floats(f.get("m2")), counts, int(f.get("imputed", 0)))
 
 
 __all__ = ["Bucket", "DriftStore"]

@@ -88,15 +88,15 @@ def _sizes(ref: Reference, n_features: int) -> dict[str, int]:
 
 
 def record(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
-           X: np.ndarray, grouping: Grouping) -> None:
+           X: np.ndarray, grouping: Grouping, imputed: int = 0) -> None:
     """Add one grouping request's summary to the current hour's bucket — after the
     answer has gone: the summary is computed and written by the process's backlog."""
     hour = _hour(_now())
-    BACKLOG.submit(lambda: _write(ctx, metric, version, fitted, X, grouping, hour))
+    BACKLOG.submit(lambda: _write(ctx, metric, version, fitted, X, grouping, hour, imputed))
 
 
 def _write(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
-           X: np.ndarray, grouping: Grouping, hour: int) -> None:
+           X: np.ndarray, grouping: Grouping, hour: int, imputed: int) -> None:
     ref = _reference(ctx, metric, version)
     if ref is None:
         return
@@ -104,7 +104,8 @@ def _write(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMet
     ctx.storage.drift.add(
         metric["name"], metric["uid"], version, hour,
         (ctx.settings.drift_hours + 1) * HOUR, s.moments.count, s.moments.mean,
-        s.moments.m2, {"f": s.features, "m": s.margins, "d": s.distances, "g": s.groups})
+        s.moments.m2, {"f": s.features, "m": s.margins, "d": s.distances, "g": s.groups},
+        imputed=imputed)
 
 
 # ---- reading -------------------------------------------------------------------------
@@ -124,8 +125,9 @@ def _check_since(since: Any, now: datetime) -> datetime | None:
 
 
 def _live(ctx: Context, metric: dict[str, Any], n: int, ref: Reference, d: int,
-          first: int, last: int) -> tuple[Summary, int, int]:
-    """Merged buckets of hours ``first..last``: summary, requests, hours with data."""
+          first: int, last: int) -> tuple[Summary, int, int, int]:
+    """Merged buckets of hours ``first..last``: summary, requests, hours with data,
+    missing values filled in."""
     buckets = ctx.storage.drift.buckets(metric["name"], metric["uid"], n,
                                         list(range(first, last + 1)), _sizes(ref, d))
     total = empty_summary(d, ref.layouts)
@@ -136,7 +138,8 @@ def _live(ctx: Context, metric: dict[str, Any], n: int, ref: Reference, d: int,
         total = total.merge(Summary(Moments(b.count, b.mean, b.m2),
                                     c["f"].reshape(d, FEATURE_LAYOUT.size), c["m"], c["d"],
                                     c["g"]))
-    return total, sum(b.requests for b in buckets), len(buckets)
+    return (total, sum(b.requests for b in buckets), len(buckets),
+            sum(b.imputed for b in buckets))
 
 
 def report(ctx: Context, name: str, version: int | None = None, since: Any = None
@@ -162,9 +165,15 @@ def report(ctx: Context, name: str, version: int | None = None, since: Any = Non
                        "(it was fitted before drift watch); fit a new version")
     last = _hour(now)
     first = max(_hour(at) if at is not None else 0, last - ctx.settings.drift_hours)
-    live, requests, hours = _live(ctx, metric, version, ref, len(features), first, last)
+    live, requests, hours, imputed = _live(ctx, metric, version, ref, len(features), first,
+                                           last)
     scores = compare(ref, live, features)
+    records, trained = live.moments.count, ref.summary.moments.count
     return {"name": name, "version": version,
+            "imputed": imputed,
+            "imputed_per_record": imputed / records if records else None,
+            "reference_imputed_per_record": int(inputs.get("imputed_in_training", 0))
+            / trained if trained else None,
             "since": iso_utc(datetime.fromtimestamp(first * HOUR, timezone.utc)),
             "until": iso_utc(now), "hours": hours, "requests": requests,
             "reference_records": ref.summary.moments.count, **scores,
@@ -187,7 +196,8 @@ def margin_histogram(ctx: Context, name: str, version: int) -> dict[str, Any] | 
         return None
     d = len(encoded_names(declared, inputs.get("categories")))
     last = _hour(_now())
-    live, _, _ = _live(ctx, metric, version, ref, d, last - ctx.settings.drift_hours, last)
+    live, _, _, _ = _live(ctx, metric, version, ref, d, last - ctx.settings.drift_hours,
+                          last)
     layout = ref.layouts.margins
 
     def shares(counts: np.ndarray) -> list[float]:

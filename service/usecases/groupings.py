@@ -91,7 +91,7 @@ def group(
         raise InvalidInput.field(field, message, f"{field}: {message}") from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
-    drift.record(ctx, metric, version, fitted, m.X, g)
+    drift.record(ctx, metric, version, fitted, m.X, g, imputed=m.imputed)
     margins = g.margins.astype(float)
     answer = {
         "version": version,

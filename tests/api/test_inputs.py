@@ -79,6 +79,12 @@ def test_the_version_reads_by_level_and_fills_gaps(api: SpecClient,
     assert got["imputed"] == 1 and got["imputed_by_feature"] == {"bill_length_mm": 1}
     assert got["distances"] == pytest.approx(by_hand["distances"])
     assert by_hand["imputed"] == 0
+    # drift watch counts what the groupings filled in, beside the training batches' rate
+    watch = api.get(f"{URL}/drift").get_json()
+    assert watch["records"] == 2 * (len(pool) + 1) and watch["imputed"] == 1
+    assert watch["imputed_per_record"] == pytest.approx(1 / watch["records"])
+    assert watch["reference_imputed_per_record"] == pytest.approx(
+        inputs["imputed_in_training"] / watch["reference_records"])
     # a level the metric does not know is named, with its row
     unknown = {**filled, "island": "Anvers"}
     body = assert_problem(api.post(f"{URL}/groupings", json={"records": [unknown], "k": 1}),
