@@ -19,20 +19,14 @@ import pyarrow.csv as pa_csv
 import pyarrow.ipc as pa_ipc
 import pyarrow.parquet as pq
 
-from service.errors import InvalidInput, MalformedRequest
+from service.errors import MalformedRequest
 from service.tables import Table, check_size
+from service.tables import field_error as _bad
 
 CSV = "text/csv"
 ARROW_STREAM = "application/vnd.apache.arrow.stream"
 PARQUET = "application/vnd.apache.parquet"
 FORMATS = (CSV, ARROW_STREAM, PARQUET)
-
-
-def _bad(field_name: str, message: str, row: int | None = None) -> InvalidInput:
-    error: dict[str, Any] = {"field": field_name, "message": message}
-    if row is not None:
-        error["row"] = row
-    return InvalidInput(f"{field_name}: {message}", [error])
 
 
 def read(raw: bytes, media_type: str, max_records: int | None,

@@ -39,11 +39,15 @@ LEVEL_SEPARATOR = "="  # a categorical feature's level column: "carrier=north"
 Kind = Literal["records", "rows", "tabular"]
 
 
-def _bad(field_name: str, message: str, row: int | None = None) -> InvalidInput:
+def field_error(field_name: str, message: str, row: int | None = None) -> InvalidInput:
+    """A 422 naming ``field_name`` (and the row of a tabular body, when given)."""
     error: dict[str, Any] = {"field": field_name, "message": message}
     if row is not None:
         error["row"] = row
     return InvalidInput(f"{field_name}: {message}", [error])
+
+
+_bad = field_error
 
 
 def _first(items: Sequence[Any], predicate: Callable[[Any], bool]) -> int:
@@ -185,6 +189,10 @@ class Table:
         if error is not None:
             raise error
         index = [self.names.index(f) for f in features]
+        plain = (not categories.keys() & set(features) and not self.text.keys() & set(index)
+                 and (self.missing is None or not self.missing[:, index].any()))
+        if plain:  # the common case: numbers only, nothing to fill — one gather
+            return Matrix(np.ascontiguousarray(self.numbers[:, index]))
         blocks: list[np.ndarray] = []
         imputed: dict[str, int] = {}
         out_col = 0

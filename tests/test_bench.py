@@ -10,11 +10,15 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 
 
+def _run(script: str, *args: str) -> str:
+    """A bench script's output (it must exit 0 within 5 minutes)."""
+    return subprocess.run([sys.executable, str(ROOT / "bench" / script), *args],
+                          capture_output=True, text=True, timeout=300, check=True,
+                          cwd=ROOT).stdout
+
+
 def test_fit_bench_quick_run_prints_every_table() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "fit.py"), "--quick"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("fit.py", "--quick")
     for heading in ("1. Fit on digits", "1b. Closed form + CV against NCA",
                     "2. Statistics vs fit", "3. Exact 1-D k-means"):
         assert heading in out
@@ -23,69 +27,44 @@ def test_fit_bench_quick_run_prints_every_table() -> None:
 
 
 def test_few_batches_bench_runs_with_one_seed_per_data_set() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "few_batches.py"), "1"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("few_batches.py", "1")
     assert "one_se − argmax over 5 problems" in out
 
 
 def test_fit_latency_bench_runs_one_trial() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "fit_latency.py"), "--trials", "1"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("fit_latency.py", "--trials", "1")
     assert "request→version" in out and "target:" in out
 
 
 def test_ingest_bench_runs_small() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "ingest.py"), "--quick"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("ingest.py", "--quick")
     for fmt in ("json", "csv", "arrow", "parquet"):
         assert out.count(f" {fmt} ") == 2  # a line in each table
     assert "target: Arrow" in out and "Peak memory" in out
 
 
 def test_fit_budget_bench_runs_small_sizes() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "fit_budget.py"), "--sizes", "60", "120",
-         "--max-unbudgeted", "60", "--repeats", "1"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("fit_budget.py", "--sizes", "60", "120", "--max-unbudgeted", "60",
+               "--repeats", "1")
     assert "target:" in out and ("same" in out or "DIFFERENT" in out)
     assert "skipped (> 60 batches)" in out
 
 
 def test_store_codecs_bench_runs_small() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "store_codecs.py"), "--rows", "2000",
-         "--repeats", "1"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("store_codecs.py", "--rows", "2000", "--repeats", "1")
     assert "zstd 3" in out and "pack_matrix as stored now" in out
 
 
 def test_drift_overhead_bench_runs_quick() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "drift_overhead.py"), "--quick"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("drift_overhead.py", "--quick")
     assert "without ms" in out and "ratio" in out and "target:" in out
 
 
 def test_grouping_bench_runs_quick() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "grouping.py"), "--quick"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("grouping.py", "--quick")
     assert "in process s" in out and out.count("target:") == 1 and "k auto" in out
 
 
 def test_throughput_bench_runs_quick() -> None:
-    out = subprocess.run(
-        [sys.executable, str(ROOT / "bench" / "throughput.py"), "--quick"],
-        capture_output=True, text=True, timeout=300, check=True, cwd=ROOT,
-    ).stdout
+    out = _run("throughput.py", "--quick")
     assert "reference: group_records" in out and "target: 4 clients" in out
