@@ -128,12 +128,34 @@ class BatchStore:
             meta = json.loads(raw)
             sha = meta.get("sha256")
             owner = text(pipe.hget(k.content(name), sha)) if sha else None
+            # a copy stored with allow_duplicate inherits the content entry, so a later
+            # retry of the same content is still recognised once the first is gone
+            heir = self._copy_of(pipe, name, sha, batch_id) if owner == batch_id else None
             pipe.multi()
             pipe.delete(bkey)
             pipe.zrem(k.batch_index(name), batch_id)
             pipe.decrby(k.records(name), int(meta["records"]))
-            if owner == batch_id:
+            if heir is not None:
+                pipe.hset(k.content(name), sha, heir)
+            elif owner == batch_id:
                 pipe.hdel(k.content(name), sha)
             return True
 
-        return transact(self.redis, [bkey, self.keys.content(name)], body)
+        # the index is watched too: a copy added meanwhile must not be missed
+        return transact(self.redis, [bkey, k.content(name), k.batch_index(name)], body)
+
+    def _copy_of(self, pipe: Pipeline, name: str, sha: str, batch_id: str) -> str | None:
+        """The oldest other batch of ``name`` with content hash ``sha`` (reads while
+        watching; deletes of a content owner are rare, so a scan of the metas is fine)."""
+        others = [text(b) for b in pipe.zrange(self.keys.batch_index(name), 0, -1)
+                  if text(b) != batch_id]
+        if not others:
+            return None
+        with self.redis.pipeline(transaction=False) as reads:
+            for b in others:
+                reads.hget(self.keys.batch(name, b), "meta")
+            metas = reads.execute()
+        for b, raw in zip(others, metas, strict=True):
+            if raw is not None and json.loads(raw).get("sha256") == sha:
+                return b
+        return None

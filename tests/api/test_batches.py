@@ -60,6 +60,21 @@ def test_columns_form_in_any_order_is_the_same_batch(api: SpecClient, metric: st
     assert b.get_json()["batch_id"] != a["batch_id"]
 
 
+def test_a_kept_copy_still_guards_its_content_after_the_first_is_deleted(
+        api: SpecClient, metric: str, batch) -> None:
+    X, labels = batch
+    body = records_body(X, labels)
+    first = api.post(URL, json=body).get_json()
+    copy = api.post(URL + "?allow_duplicate=true", json=body).get_json()
+    assert api.delete(f"{URL}/{first['batch_id']}").status_code == 204
+    # the copy holds the same content: a retry is refused and names the copy
+    again = api.post(URL, json=body)
+    assert again.status_code == 409 and again.get_json()["batch_id"] == copy["batch_id"]
+    assert api.delete(f"{URL}/{copy['batch_id']}").status_code == 204
+    # with no copy left the content may be stored again
+    assert api.post(URL, json=body).status_code == 201
+
+
 def test_string_labels_are_accepted(api: SpecClient, metric: str, batch) -> None:
     X, labels = batch
     resp = api.post(URL, json={"records": as_records(X), "groups": [f"g{v}" for v in labels]})
