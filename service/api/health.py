@@ -6,6 +6,7 @@ from flask import Blueprint, Response
 
 from service.usecases import queues as uc
 
+from .auth import current
 from .deps import context, reply
 from .problems import problem_response
 
@@ -33,4 +34,4 @@ def readyz() -> Response:
 
 @v1_bp.get("/queues")
 def queues() -> Response:
-    return reply(uc.queue_overview(context()))
+    return reply(uc.queue_overview(context(), visible=current().may_touch))

@@ -61,7 +61,7 @@ def overview(ctx: Context, may_touch: Callable[[str], bool]) -> dict[str, Any]:
         "failed": [row(f, f["ended_at"]) for f in fits if f["status"] == "failed"
                    ][:FAILED_SHOWN],
     }
-    queues = queue_overview(ctx)
+    queues = queue_overview(ctx, visible=may_touch)
     workers = [{**w, "beat_age": age(w["last_heartbeat"], now)} for w in queues["workers"]]
     return {"metrics": metrics, "fits": board, "queue": queues["queues"][0],
             "workers": workers, "at": now.strftime("%H:%M:%S UTC")}

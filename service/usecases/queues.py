@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
@@ -13,14 +14,25 @@ if TYPE_CHECKING:
     from service.context import Context
 
 
-def queue_overview(ctx: Context) -> dict[str, Any]:
-    workers = [{
-        "name": w.name,
-        "state": w.state.value,
-        "last_heartbeat": iso_utc(w.last_heartbeat) if w.last_heartbeat else None,
-        "queues": w.queues,
-        "current_fit": w.current_fit,
-    } for w in jobqueue.workers(ctx)]
+def queue_overview(ctx: Context, visible: Callable[[str], bool] | None = None
+                   ) -> dict[str, Any]:
+    """Counts are deployment-wide (the queue is shared); a worker's current fit and its
+    metric are shown only where ``visible(metric)`` allows (None: every metric)."""
+    views = jobqueue.workers(ctx)
+    current = [w.current_fit for w in views if w.current_fit]
+    fits = dict(zip(current, ctx.storage.fits.get_many(current), strict=True)) if current else {}
+    workers = []
+    for w in views:
+        fit = fits.get(w.current_fit) if w.current_fit else None
+        shown = fit is not None and (visible is None or visible(fit.metric))
+        workers.append({
+            "name": w.name,
+            "state": w.state.value,
+            "last_heartbeat": iso_utc(w.last_heartbeat) if w.last_heartbeat else None,
+            "queues": w.queues,
+            "current_fit": w.current_fit if shown else None,
+            "current_metric": fit.metric if shown else None,
+        })
     return {"queues": [jobqueue.queue_counts(ctx)], "workers": workers}
 
 

@@ -327,3 +327,24 @@ def test_worker_killed_mid_fit(ctx: Context, run_worker_burst, retries: int) -> 
     else:
         assert out["status"] == "failed"
         assert fits.retry_fit(c, fit["fit_id"], "admin")["status"] == "waiting"
+
+
+def test_the_queue_view_hides_a_fit_of_a_metric_the_caller_may_not_touch(ctx: Context) -> None:
+    """A worker that has taken a fit (made with the queue's own dequeue and bookkeeping
+    calls) names it and its metric, except to a caller restricted to other metrics."""
+    from rq import Queue, Worker
+
+    setup_metric(ctx, "m", n=2)
+    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    job, _ = Queue.dequeue_any([ctx.queue], timeout=None, connection=ctx.redis)
+    worker = Worker([ctx.queue], connection=ctx.redis, name=f"{ctx.settings.key_prefix}-busy")
+    worker.register_birth()
+    try:
+        worker.prepare_execution(job)
+        [seen] = queues.queue_overview(ctx)["workers"]
+        assert (seen["current_fit"], seen["current_metric"]) == (fit["fit_id"], "m")
+        [hidden] = queues.queue_overview(ctx, visible=lambda name: name != "m")["workers"]
+        assert (hidden["current_fit"], hidden["current_metric"]) == (None, None)
+        assert hidden["name"] == seen["name"]
+    finally:
+        worker.register_death()
