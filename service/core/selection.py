@@ -30,6 +30,12 @@ error of the mean held-out ARI is within ``heldout_tolerance`` (or
 ``max_heldout_batches`` are scored); ``heldout_tolerance=None`` scores every batch
 (:mod:`service.core._budget`, docs/method.md "Held-out budget").
 
+Held-out groupings (``heldout_groupings_``, the versions' drift reference): every
+candidate's labels of the first repetition's held-out batches are kept while
+scoring (at most ``max_heldout_batches`` batches); the winner's are measured
+through its fold maps once it is chosen, the rest dropped (docs/method.md,
+"Held-out groupings").
+
 Selection rule (``rule="one_se"``, the default for ``method="auto"``). With three
 to five small batches the held-out ARI of the candidates differs by noise, and the
 arg-max over ~19 candidates chases it. Scores are paired (every candidate is scored

@@ -181,7 +181,8 @@ def report(ctx: Context, name: str, version: int | None = None, since: Any = Non
             "since": iso_utc(datetime.fromtimestamp(first * HOUR, timezone.utc)),
             "until": iso_utc(now), "hours": hours, "requests": requests,
             "reference_records": ref.summary.moments.count,
-            "reference_heldout_batches": ref.heldout.batches if ref.heldout else None,
+            "reference_heldout_batches": ref.heldout.batches
+            if scores["margins"]["reference"] == "held_out" else None,
             **scores,
             "thresholds": THRESHOLDS}
 
