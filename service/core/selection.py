@@ -97,10 +97,10 @@ class MetricSelector:
     held-out batches as the chosen learner and α grouped them in cross-validation,
     each by the map fitted on its fold's training batches (first repetition), so no
     batch shaped the map that grouped it. Labels are cross-validation's own (k-means
-    at the batch's true k, the same random numbers; regrouped for the winner alone,
-    nothing is scored twice); distances and margins are measured through that fold's
-    map (:func:`service.core.grouping.grouping_of`), the same kind of map as
-    ``metric_``. Only the batches cross-validation scored are there: the held-out
+    at the batch's true k, kept as they were scored: nothing is grouped twice);
+    distances and margins are measured through that fold's map
+    (:func:`service.core.grouping.grouping_of`), the same kind of map as ``metric_``.
+    Only the batches cross-validation scored are there: the held-out
     budget's sample when it applies, at most ``max_heldout_batches`` of them (evenly
     spread), each as its at most ``max_heldout_records`` scored records (in
     ``batches`` order when not subsampled). Left out: batches whose fold could not
