@@ -125,9 +125,20 @@ def cmd_drift(lw: Client, args: argparse.Namespace, out: TextIO) -> int:
     m = report["margins"]
     rows.append(("(margins)", m.get("verdict"), m.get("mean_shift"), m["psi"], m["ks"]))
     table(["feature", "verdict", "mean shift (sd)", "PSI", "KS"], rows, out)
+    print(f"margins scored against: {margin_reference(report)}", file=out)
     if report["flagged"]:
         print("flagged: " + ", ".join(report["flagged"]), file=out)
     return 0
+
+
+def margin_reference(report: dict[str, Any]) -> str:
+    """What a drift report's margins were scored against, in words."""
+    if report["margins"].get("reference") == "held_out":
+        return (f"the training batches held out in cross-validation "
+                f"({report.get('reference_heldout_batches')} batches, each grouped by a "
+                "map fitted without it)")
+    return "the training batches grouped by the version itself (in sample; fitted " \
+        "before held-out references)"
 
 
 def feature_weights(explanation: dict[str, Any]) -> list[tuple[str, float, float]]:

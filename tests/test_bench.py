@@ -68,3 +68,8 @@ def test_grouping_bench_runs_quick() -> None:
 def test_throughput_bench_runs_quick() -> None:
     out = _run("throughput.py", "--quick")
     assert "reference: group_records" in out and "target: 4 clients" in out
+
+
+def test_drift_reference_bench_runs_quick() -> None:
+    out = _run("drift_reference.py", "--quick", "--batches", "6")
+    assert "PSI held" in out and out.count("wine ") == 1 and "target:" in out

@@ -125,6 +125,10 @@ class CrossValidation:
         # per candidate, its per-batch scores over the sample: built once, dropped
         # only when the candidate gets new scores
         self._per_batch: dict[Candidate, dict[str, np.ndarray]] = {}
+        # the held-out labels of these batches (None: every batch), per candidate, in
+        # the first repetition: the selector takes the winner's (its drift reference)
+        self.keep_labels: set[int] | None = None
+        self._labels: dict[Candidate, dict[int, np.ndarray]] = {}
 
     # ------------------------------------------------------------ data access
     def held_out_data(self, b: int) -> tuple[np.ndarray, np.ndarray]:
@@ -225,6 +229,8 @@ class CrossValidation:
                     # the raw baseline rides along the first time its batch is grouped
                     raw = [] if b in self._raw else [self._raw_metric(b)]
                     preds = self._group_all([metrics[c] for c in lacking] + raw, b, (0, i, b))
+                    if fold.repeat == 0 and (self.keep_labels is None or b in self.keep_labels):
+                        self._keep(lacking, b, preds)
                     scored = _scored(self.held_out_data(b)[1], preds)
                     if raw:
                         self._raw[b] = scored.pop()
@@ -235,6 +241,26 @@ class CrossValidation:
             if progress is not None:
                 progress((i + 1) / len(self.folds))
             self.forget(i)
+
+    def first_folds(self) -> dict[int, int]:
+        """Each batch's fold in the first repetition (every batch is held out once)."""
+        return {b: i for i, f in enumerate(self.folds) if f.repeat == 0 for b in f.held_out}
+
+    def held_out_labels(self, cand: Candidate) -> dict[int, np.ndarray]:
+        """The labels :meth:`run` gave the batches in ``keep_labels`` as ``cand``
+        grouped them held out in the first repetition (kept as they were scored)."""
+        return dict(self._labels.get(cand, {}))
+
+    def drop_labels(self) -> None:
+        """Keep no more held-out labels (the selector has taken the winner's)."""
+        self._labels.clear()
+        self.keep_labels = set()
+
+    def _keep(self, cands: Sequence[Candidate], b: int, preds: list[np.ndarray]) -> None:
+        """Keep held-out batch ``b``'s labels per candidate, in the smallest integers."""
+        small = np.min_scalar_type(max(int(self.held_out_data(b)[1].max()), 1))
+        for cand, labels in zip(cands, preds, strict=False):  # preds may end with raw's
+            self._labels.setdefault(cand, {})[b] = labels.astype(small)
 
     def score(
         self,

@@ -22,6 +22,12 @@ Interior bin ``i`` (1-based position ``i + 1`` in the counts) holds
   fixed when the reference is built (:func:`layout_for`);
 * group sizes: ``GROUP_LAYOUT`` = 16 bins of 0.25 from 0 (an even split is 1).
 
+A version's reference is its training batches' summary, each batch grouped through
+the version itself (in sample), plus the margins and distances of the held-out
+batches, each grouped by the map cross-validation fitted without it
+(:class:`HeldOut`); live margins and distances are scored against the held-out
+ones when a reference has them (:meth:`Reference.margin_reference`).
+
 Scores of live records against the reference: standardised mean shift
 ``(mean_live − mean_ref) / sd_ref`` per feature; the population stability index over
 the fixed bins; the two-sample Kolmogorov–Smirnov statistic from the histograms.
@@ -332,31 +338,75 @@ def summarise(metric: FittedMetric, X: np.ndarray, grouping: Grouping, layouts: 
 
 
 @dataclass(frozen=True, eq=False)
+class HeldOut:
+    """Margins and distances of held-out batches, each grouped by a map fitted
+    without it (``MetricSelector.heldout_groupings_``), in a version's bins."""
+
+    margins: np.ndarray  # (margin layout size,) counts of finite margins
+    distances: np.ndarray  # (distance layout size,)
+    batches: int  # held-out batches counted
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"margins": self.margins.tolist(), "distances": self.distances.tolist(),
+                "batches": self.batches}
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> HeldOut:
+        return cls(np.asarray(data["margins"], dtype=np.int64),
+                   np.asarray(data["distances"], dtype=np.int64), int(data["batches"]))
+
+
+@dataclass(frozen=True, eq=False)
 class Reference:
-    """The training batches as seen through a version: layouts and their summary."""
+    """The training batches as seen through a version: layouts, their summary (each
+    batch grouped through the version itself: in sample) and, for versions fitted
+    since held-out references exist, the held-out batches' margins and distances
+    (``heldout``; None in older references)."""
 
     layouts: Layouts
     summary: Summary
+    heldout: HeldOut | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        return {"layouts": self.layouts.to_dict(), "summary": self.summary.to_dict()}
+        out = {"layouts": self.layouts.to_dict(), "summary": self.summary.to_dict()}
+        if self.heldout is not None:
+            out["heldout"] = self.heldout.to_dict()
+        return out
 
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> Reference:
-        return cls(Layouts.from_dict(data["layouts"]), Summary.from_dict(data["summary"]))
+        heldout = data.get("heldout")
+        return cls(Layouts.from_dict(data["layouts"]), Summary.from_dict(data["summary"]),
+                   HeldOut.from_dict(heldout) if heldout is not None else None)
+
+    def margin_reference(self) -> tuple[np.ndarray, np.ndarray, str]:
+        """The margin and distance counts live records are scored against, and which:
+        ``held_out`` when the reference has them, else ``in_sample``."""
+        if self.heldout is not None and self.heldout.margins.sum() > 0:
+            return self.heldout.margins, self.heldout.distances, "held_out"
+        return self.summary.margins, self.summary.distances, "in_sample"
 
 
-def build_reference(metric: FittedMetric, batches: Sequence[tuple[np.ndarray, Grouping]]
-                    ) -> Reference:
+def build_reference(metric: FittedMetric, batches: Sequence[tuple[np.ndarray, Grouping]],
+                    heldout: Sequence[Grouping] = ()) -> Reference:
     """The reference of a version from its training batches, each grouped through it
-    (``(X, grouping)`` pairs): the margin and distance bins are set from them."""
+    (``(X, grouping)`` pairs): the margin and distance bins are set from them. The
+    ``heldout`` groupings (each batch grouped by a map fitted without it) are counted
+    in the same bins; none gives a reference without held-out counts."""
     margins = np.concatenate([np.asarray(g.margins, float) for _, g in batches])
     distances = np.concatenate([np.asarray(g.distances, float) for _, g in batches])
     layouts = Layouts(layout_for(margins), layout_for(distances))
     total = empty_summary(metric.n_features, layouts)
     for X, g in batches:
         total = total.merge(summarise(metric, X, g, layouts))
-    return Reference(layouts, total)
+    held = None
+    if heldout:
+        m = np.concatenate([np.asarray(g.margins, float) for g in heldout])
+        held = HeldOut(layouts.margins.count(m[np.isfinite(m)]),
+                       layouts.distances.count(
+                           np.concatenate([np.asarray(g.distances, float) for g in heldout])),
+                       len(heldout))
+    return Reference(layouts, total, held)
 
 
 def _scores(ref: np.ndarray, live: np.ndarray, count: int, shift: float | None = None
@@ -378,6 +428,12 @@ def compare(reference: Reference, live: Summary, features: Sequence[str]) -> dic
     """Scores of ``live`` against ``reference``: per feature (by name), margins,
     distances and group sizes, the overall verdict and the features it flags.
 
+    Margins and distances are scored against the held-out batches' when the
+    reference has them (live records were never in the training set, so margins of
+    batches grouped by a map fitted without them are what to expect; in-sample
+    margins tend to be wider, since the map was fitted to separate those very groups),
+    else against the in-sample ones; ``reference`` in their scores says which.
+
     The overall verdict is the worst of the features' verdicts. Margins and distances
     get a verdict of their own that does not enter it: how well records separate
     depends on k and on which groups a request holds, which analysts' batches need not
@@ -394,8 +450,9 @@ def compare(reference: Reference, live: Summary, features: Sequence[str]) -> dic
         s["reference_mean"] = float(ref.moments.mean[j])
         s["reference_sd"] = float(sd[j])
         per_feature[name] = s
-    margins = _scores(ref.margins, live.margins, int(live.margins.sum()))
-    distances = _scores(ref.distances, live.distances, n)
+    ref_margins, ref_distances, kind = reference.margin_reference()
+    margins = {**_scores(ref_margins, live.margins, int(live.margins.sum())), "reference": kind}
+    distances = {**_scores(ref_distances, live.distances, n), "reference": kind}
     groups = _scores(ref.groups, live.groups, int(live.groups.sum()))
     del groups["verdict"]
     flagged = [f for f, s in per_feature.items() if s["verdict"] in ("shifting", "drifted")]
@@ -412,6 +469,6 @@ THRESHOLDS = {
 }
 
 __all__ = ["FEATURE_LAYOUT", "GROUP_LAYOUT", "THRESHOLDS", "VERDICTS", "BinLayout",
-           "Layouts", "Moments", "Reference", "Summary", "build_reference", "compare",
+           "HeldOut", "Layouts", "Moments", "Reference", "Summary", "build_reference", "compare",
            "empty_summary", "ks_from_counts", "ks_pvalue", "layout_for", "mean_shift",
            "merge_all", "psi", "psi_noise", "summarise", "verdict", "worst"]

@@ -89,3 +89,27 @@ def _group(
         sizes=sizes,
         k_chosen=chosen,
     )
+
+
+def grouping_of(metric: FittedMetric, X: np.ndarray, labels: np.ndarray) -> Grouping:
+    """Records ``X`` (already checked) in the groups ``labels`` give them, seen through
+    ``metric``: each group's centre is its records' mean in the learned space, then
+    distances and margins as :func:`group_records` reports them (at the end of k-means
+    its centres are these means). Groups are renumbered by first appearance; empty
+    ones are dropped."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        Z = metric.transform(np.asarray(X, dtype=float))
+    labels = np.asarray(labels, dtype=np.intp)
+    first = np.full(int(labels.max()) + 1, labels.size)
+    np.minimum.at(first, labels, np.arange(labels.size))
+    used = np.flatnonzero(first < labels.size)
+    order = used[np.argsort(first[used], kind="stable")]
+    new_id = np.empty(first.size, dtype=np.intp)
+    new_id[order] = np.arange(order.size)
+    labels = new_id[labels]
+    onehot = labels[None, :] == np.arange(order.size)[:, None]  # k × n
+    sizes = onehot.sum(axis=1)
+    centres = (onehot @ Z) / sizes[:, None]
+    own, other = own_and_runner_up(Z, centres, labels)
+    return Grouping(k=int(order.size), labels=labels, distances=own,
+                    margins=np.maximum(other - own, 0.0), sizes=sizes)

@@ -30,6 +30,12 @@ error of the mean held-out ARI is within ``heldout_tolerance`` (or
 ``max_heldout_batches`` are scored); ``heldout_tolerance=None`` scores every batch
 (:mod:`service.core._budget`, docs/method.md "Held-out budget").
 
+Held-out groupings (``heldout_groupings_``, the versions' drift reference): every
+candidate's labels of the first repetition's held-out batches are kept while
+scoring (at most ``max_heldout_batches`` batches); the winner's are measured
+through its fold maps once it is chosen, the rest dropped (docs/method.md,
+"Held-out groupings").
+
 Selection rule (``rule="one_se"``, the default for ``method="auto"``). With three
 to five small batches the held-out ARI of the candidates differs by noise, and the
 arg-max over ~19 candidates chases it. Scores are paired (every candidate is scored
@@ -58,6 +64,7 @@ from ._budget import Budget
 from ._cv import Candidate, CrossValidation, make_folds
 from .clustering import validated_inner_loop
 from .errors import CoreError, NotEnoughDataError
+from .grouping import Grouping, grouping_of
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
 from .stats import BatchStats
@@ -83,8 +90,21 @@ class MetricSelector:
     """Choose learner and α by K-fold cross-validation over batches, then refit on all.
 
     Parameters are stored only; ``fit`` returns self with ``metric_`` (FittedMetric,
-    with its calibrated ``k_rule``) and ``report_`` (JSON-safe dict, see the module doc
-    and ``_report``).
+    with its calibrated ``k_rule``), ``report_`` (JSON-safe dict, see the module doc
+    and ``_report``) and ``heldout_groupings_``.
+
+    ``heldout_groupings_`` (dict: index in ``batches`` → :class:`Grouping`): the
+    held-out batches as the chosen learner and α grouped them in cross-validation,
+    each by the map fitted on its fold's training batches (first repetition), so no
+    batch shaped the map that grouped it. Labels are cross-validation's own (k-means
+    at the batch's true k, kept as they were scored: nothing is grouped twice);
+    distances and margins are measured through that fold's map
+    (:func:`service.core.grouping.grouping_of`), the same kind of map as ``metric_``.
+    Only the batches cross-validation scored are there: the held-out
+    budget's sample when it applies, at most ``max_heldout_batches`` of them (evenly
+    spread), each as its at most ``max_heldout_records`` scored records (in
+    ``batches`` order when not subsampled). Left out: batches whose fold could not
+    be fitted, and statistics-only batches (never held out).
     """
 
     def __init__(
@@ -164,6 +184,8 @@ class MetricSelector:
         )
         cands = self._candidates()
         budget = Budget(self.heldout_tolerance, self.min_heldout_batches, self.max_heldout_batches)
+        if not budget.applies(len(batches)):  # a budget scores at most max_heldout_batches
+            self._cv.keep_labels = set(_spread(range(len(batches)), self.max_heldout_batches))
         self._budget = self._cv.score(
             cands, budget, lambda f: self._report_progress("cross-validation", 0.05 + 0.75 * f)
         )
@@ -175,6 +197,8 @@ class MetricSelector:
         for w in caught:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         self._report_progress("k-rule", 0.85)
+        self._fold_maps: dict[int, FittedMetric | None] = {}
+        heldout = self._heldout_groupings(winner)
         evidence = self._k_evidence(winner, metric)
         metric = metric.with_k_rule(kchoice.rule_from_evidence(evidence))
         k_acc, k_trials = None, 0
@@ -182,6 +206,7 @@ class MetricSelector:
             hits = kchoice.held_out_k_hits(evidence, _K_FOLDS)
             k_acc, k_trials = (float(np.mean(hits)) if hits else None), len(hits)
         self.metric_ = metric
+        self.heldout_groupings_ = heldout
         self.report_ = self._report(cands, winner, reason, best, k_acc, k_trials, metric)
         self._report_progress("done", 1.0)
         return self
@@ -296,22 +321,12 @@ class MetricSelector:
         reported as ``partly_in_sample``. The batches' records are the subsamples
         scored in cross-validation.
         """
-        which = list(range(len(self._cv.batches)))
-        if len(which) > self.max_k_batches:
-            pick = np.linspace(0, len(which) - 1, self.max_k_batches).round().astype(int)
-            which = [which[j] for j in pick]
-        fold_of = {
-            b: i for i, f in enumerate(self._cv.folds) if f.repeat == 0 for b in f.held_out
-        }
-        fitted: dict[int, FittedMetric | None] = {}
+        which = _spread(range(len(self._cv.batches)), self.max_k_batches)
+        fold_of = self._cv.first_folds()
         maps: list[FittedMetric] = []
         in_sample = False
         for b in which:
-            i = fold_of[b]
-            if i not in fitted:
-                fitted[i] = self._cv.fold_metric(i, winner)
-                self._cv.forget(i)
-            m = fitted[i]
+            m = self._fold_map(fold_of[b], winner)
             if m is None:  # rare: refit from all statistics but this batch's
                 rest = self._cv.without_batch(b)
                 try:
@@ -326,6 +341,31 @@ class MetricSelector:
         if in_sample:
             mapping = "partly_in_sample"
         return kchoice.evidence_from_maps(maps, data, self.k_max, self.random_state, mapping)
+
+    def _fold_map(self, i: int, winner: Candidate) -> FittedMetric | None:
+        """The winner fitted on fold ``i``'s training batches (None if it cannot be),
+        fitted once for the held-out groupings and the k rule."""
+        if i not in self._fold_maps:
+            self._fold_maps[i] = self._cv.fold_metric(i, winner)
+            self._cv.forget(i)
+        return self._fold_maps[i]
+
+    def _heldout_groupings(self, winner: Candidate) -> dict[int, Grouping]:
+        """``heldout_groupings_``: the scored batches (at most ``max_heldout_batches``,
+        evenly spread) as cross-validation grouped them with the winner, seen through
+        the winner's fold map."""
+        labels = self._cv.held_out_labels(winner)
+        self._cv.drop_labels()
+        fold_of = self._cv.first_folds()
+        out: dict[int, Grouping] = {}
+        for b in sorted(labels, key=lambda b: (fold_of[b], b)):
+            m = self._fold_map(fold_of[b], winner)
+            if m is None:  # nothing was learned without this batch: no reference
+                continue
+            g = grouping_of(m, self._cv.held_out_data(b)[0], labels[b])
+            if np.isfinite(g.distances).all():
+                out[b] = g
+        return dict(sorted(out.items()))
 
     def _budget_report(self, res: dict[str, Any], n_batches: int) -> dict[str, Any]:
         """The held-out sample and the winner's sampling standard error (0 when every
@@ -397,6 +437,14 @@ class MetricSelector:
             "n_features": int(cv.total.n_features),
             "warnings": list(metric.info.get("warnings", [])),
         }
+
+
+def _spread(items: Sequence[int], at_most: int) -> list[int]:
+    """``items``, or ``at_most`` of them evenly spread (the first and last included)."""
+    items = list(items)
+    if len(items) <= at_most:
+        return items
+    return [items[j] for j in np.linspace(0, len(items) - 1, at_most).round().astype(int)]
 
 
 def _check_batches(batches: Sequence[Batch]) -> list[tuple[np.ndarray, np.ndarray]]:

@@ -84,23 +84,33 @@ def versions_chart(versions: Sequence[dict[str, Any]], active: int | None) -> st
 
 
 def margins_chart(hist: dict[str, Any]) -> str:
-    """Shares of records per margin bin: recent groupings against the training
-    batches seen through the same version (the last bar is everything beyond)."""
+    """Shares of records per margin bin: recent groupings against the reference they
+    are scored against (the training batches as cross-validation held them out, or
+    in sample for older versions), and the in-sample margins as a dashed line when
+    the reference is the held-out one (the last bar is everything beyond)."""
     edges = np.asarray(hist["edges"], dtype=float)
     width = float(edges[1] - edges[0]) if edges.size > 1 else 1.0
     lefts = np.append(edges[:-1], edges[-1])  # the overflow bar sits past the last edge
+    held_out = hist.get("reference_kind") == "held_out"
+
+    def steps(shares: list[float]) -> tuple[np.ndarray, list[float]]:
+        return np.append(lefts, lefts[-1] + width), [*shares, shares[-1]]
 
     def draw(fig: Figure) -> None:
         ax = fig.add_subplot()
-        ax.bar(lefts, hist["reference"], width=width, align="edge", color=EUCLID,
-               alpha=0.35, label="training batches (reference)")
-        ax.step(np.append(lefts, lefts[-1] + width), [*hist["live"], hist["live"][-1]],
-                where="post", color=LEARNED, linewidth=1.6,
-                label=f"recent groupings ({hist['records']} records)")
+        shown = [ax.bar(lefts, hist["reference"], width=width, align="edge", color=EUCLID,
+                        alpha=0.35, label="training batches held out in cross-validation "
+                        "(reference)" if held_out else "training batches, in sample "
+                        "(reference)")]
+        if held_out:
+            shown += ax.step(*steps(hist["in_sample"]), where="post", color=MUTED,
+                             linewidth=1.1, linestyle="--", label="training batches, in sample")
+        shown += ax.step(*steps(hist["live"]), where="post", color=LEARNED, linewidth=1.6,
+                         label=f"recent groupings ({hist['records']} records)")
         ax.set_xlabel("margin: distance to the runner-up centre minus distance to the own "
                       "centre (the last bar: beyond the last edge)")
         ax.set_ylabel("share of records")
-        ax.legend(loc="upper right", frameon=False, fontsize=8)
+        ax.legend(handles=shown, loc="upper right", frameon=False, fontsize=8)
 
     return _svg(draw, 11.0, 2.4)
 

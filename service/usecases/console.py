@@ -122,7 +122,8 @@ def metric_board(ctx: Context, name: str) -> dict[str, Any]:
         columns, charts.feature_weights(fitted.components))
     hist = drift.margin_histogram(ctx, name, active)
     if hist is not None and hist["records"] > 0:
-        out["drift"] = {"records": hist["records"], "verdict": hist["verdict"]}
+        out["drift"] = {"records": hist["records"], "verdict": hist["verdict"],
+                        "reference": hist["reference_kind"]}
         out["charts"]["margins"] = charts.margins_chart(hist)
     trained = {b["batch_id"] for b in doc["batches"]}
     newest = _shown_batch(ctx, name, trained)

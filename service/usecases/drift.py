@@ -1,8 +1,9 @@
 """Drift watch: how far the records being grouped are from a version's training batches.
 
 * At fit time, :func:`reference_blob` summarises the training batches as seen through
-  the new version (each batch grouped with its own number of labelled groups) and
-  the fit commits it in the version's own transaction.
+  the new version (each batch grouped with its own number of labelled groups), and
+  the margins and distances of the batches cross-validation held out, each grouped
+  by a map fitted without it; the fit commits it in the version's own transaction.
 * Every grouping calls :func:`record`: the request's summary goes into the hour's
   bucket of that version (one round trip; never the records).
 * :func:`report` scores the buckets since a time against the reference
@@ -10,12 +11,14 @@
   verdict for its active version over the whole retention, for dashboards.
 
 Versions fitted before drift watch have no reference: nothing is recorded for them
-and their report is a 409.
+and their report is a 409. References written before held-out margins existed score
+live margins against the in-sample ones (the report's ``margins.reference`` says
+which).
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
@@ -58,14 +61,15 @@ def _now() -> datetime:
 
 
 # ---- at fit time ---------------------------------------------------------------------
-def reference_blob(fitted: FittedMetric, batches: Sequence[tuple[np.ndarray, np.ndarray]]
-                   ) -> bytes | None:
+def reference_blob(fitted: FittedMetric, batches: Sequence[tuple[np.ndarray, np.ndarray]],
+                   heldout: Iterable[Grouping] = ()) -> bytes | None:
     """The stored drift reference of a new version: its training batches, each grouped
-    through it with as many groups as its labels name. None if they cannot be grouped
-    (the version is then stored without a reference)."""
+    through it with as many groups as its labels name, and the held-out groupings of
+    its cross-validation (``MetricSelector.heldout_groupings_``). None if the batches
+    cannot be grouped (the version is then stored without a reference)."""
     try:
         seen = [(X, group_records(fitted, X, len(np.unique(labels)))) for X, labels in batches]
-        return pack_json(build_reference(fitted, seen).to_dict())
+        return pack_json(build_reference(fitted, seen, list(heldout)).to_dict())
     except CoreError:
         return None
 
@@ -176,16 +180,20 @@ def report(ctx: Context, name: str, version: int | None = None, since: Any = Non
             / trained if trained else None,
             "since": iso_utc(datetime.fromtimestamp(first * HOUR, timezone.utc)),
             "until": iso_utc(now), "hours": hours, "requests": requests,
-            "reference_records": ref.summary.moments.count, **scores,
+            "reference_records": ref.summary.moments.count,
+            "reference_heldout_batches": ref.heldout.batches
+            if scores["margins"]["reference"] == "held_out" else None,
+            **scores,
             "thresholds": THRESHOLDS}
 
 
 def margin_histogram(ctx: Context, name: str, version: int) -> dict[str, Any] | None:
     """The margins of the records grouped with ``version`` over the retained window
     against its training reference, as shares per bin (for the console's panel):
-    ``edges`` (interior bin edges), ``live`` and ``reference`` (shares of the interior
-    bins and, last, of the overflow), ``records``, ``verdict``. None without a
-    reference."""
+    ``edges`` (interior bin edges), ``live``, ``reference`` (what live margins are
+    scored against: ``reference_kind`` ``held_out`` or, in older references,
+    ``in_sample``) and ``in_sample`` (shares of the interior bins and, last, of the
+    overflow), ``records``, ``verdict``. None without a reference."""
     from .groupings import load_version_metric
 
     BACKLOG.flush()
@@ -206,8 +214,10 @@ def margin_histogram(ctx: Context, name: str, version: int) -> dict[str, Any] | 
         return (kept / total).tolist() if total > 0 else [0.0] * kept.size
 
     scores = compare(ref, live, encoded_names(declared, inputs.get("categories")))
+    against, _, kind = ref.margin_reference()
     return {"edges": layout.edges.tolist(), "live": shares(live.margins),
-            "reference": shares(ref.summary.margins), "records": int(live.margins.sum()),
+            "reference": shares(against), "reference_kind": kind,
+            "in_sample": shares(ref.summary.margins), "records": int(live.margins.sum()),
             "verdict": scores["margins"].get("verdict")}
 
 

@@ -187,7 +187,8 @@ def _attempt(ctx: Context, fit: Fit, job_id: str,
                                     f"{exc.field or 'batches'}: {exc.message}"), fit_id)
     fitted, report = selector.metric_, selector.report_
     progress("deciding", 0.92)
-    reference = reference_blob(fitted, batches)  # committed with the version
+    # committed with the version
+    reference = reference_blob(fitted, batches, selector.heldout_groupings_.values())
     n = st.versions.next_number(name)
     doc: dict[str, Any] = {
         "summary": {

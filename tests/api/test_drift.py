@@ -22,6 +22,10 @@ def test_a_unit_change_is_flagged_by_feature_name(api, fitted, fit_to_version) -
     body = api.get("/v1/metrics/iris/drift?version=1").get_json()
     assert body["verdict"] == "steady" and body["records"] == len(pool), body["features"]
     assert list(body["features"]) == IRIS_FEATURES and body["flagged"] == []
+    # margins are scored against the batches cross-validation held out (six batches:
+    # all of them scored, each grouped by the map of the fold that held it out)
+    assert body["margins"]["reference"] == body["distances"]["reference"] == "held_out"
+    assert body["reference_heldout_batches"] == 6
 
     # version 2 (active), fed petal lengths in millimetres instead of centimetres
     assert fit_to_version("iris", activate="at_once", method="diagonal")["version"] == 2

@@ -96,6 +96,8 @@ def test_drift_shows_the_verdict_and_names_the_shifted_feature(live, run, two_ve
     assert out.splitlines()[0].startswith(f"{name} version 1: drifted")
     row = next(line.split() for line in out.splitlines() if line.startswith("petal_length"))
     assert row[1] == "drifted" and "flagged: petal_length" in out
+    assert expected["margins"]["reference"] == "held_out"
+    assert "margins scored against: the training batches held out in cross-validation" in out
 
 
 def test_activate_and_rollback_need_a_reason_and_move_the_active_version(

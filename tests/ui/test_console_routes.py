@@ -99,7 +99,10 @@ def test_the_metric_part_shows_versions_history_plots_and_the_rollback(
     svgs = SVG.findall(html)
     assert len(svgs) == 4 and 'id="plot-margins"' in html
     ElementTree.fromstring(svgs[2])
-    assert f"margins of the {len(X)} records" in " ".join(html.split())
+    text = " ".join(html.split())
+    assert f"margins of the {len(X)} records" in text
+    assert "against its training batches as cross-validation held them out" in text
+    assert "training batches held out in cross-validation" in svgs[2]  # the legend
 
 
 def test_the_overview_lists_metrics_and_the_queue(api: SpecClient, fitted: dict) -> None:
