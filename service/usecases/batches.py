@@ -119,11 +119,10 @@ def _summary(meta: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
-def list_batches(ctx: Context, name: str, limit: int | None = None,
+def list_batches(ctx: Context, name: str, limit: int = pages.DEFAULT_LIMIT,
                  cursor: str | None = None) -> dict[str, Any]:
     """A page of batch summaries, oldest first (by ingest order)."""
     require_metric(ctx, name)
-    limit = pages.check_limit(limit)
     after = pages.decode(cursor, f"batches:{name}", pages.whole)
     rows = ctx.storage.batches.metas_after(name, after, limit + 1)
     page = pages.page("batches", rows, limit, f"batches:{name}", lambda r: r[0])

@@ -23,28 +23,20 @@ from service.store import FeaturesLocked
 from service.tables import LEVEL_SEPARATOR, encoded_names
 
 from . import pages
+from .params import metric_name
 
 if TYPE_CHECKING:
     from service.context import Context
 
-NAME_RE = re.compile(r"[a-z0-9_-]{1,64}")
 FEATURE_RE = re.compile(r"[^\x00-\x1f]{1,128}")
 MAX_DESCRIPTION = 2000
 MISSING_POLICIES = ("refuse", "impute_mean")
 
 
-def check_name(name: Any) -> str:
-    """A metric name: lowercase letters, digits, ``-`` and ``_``, at most 64 characters."""
-    if not isinstance(name, str) or not NAME_RE.fullmatch(name):
-        raise InvalidInput.field(
-            "name", "use 1 to 64 lowercase letters, digits, '-' or '_'",
-            f"invalid metric name {name!r}")
-    return name
-
-
 def require_metric(ctx: Context, name: str) -> dict[str, Any]:
-    """The stored metric record (with ``uid``) or 404."""
-    check_name(name)
+    """The stored metric record (with ``uid``) or 404; a name from the URL path is read
+    here (a :class:`MetricName` already was)."""
+    name = metric_name(name)
     metric = ctx.storage.metrics.get(name)
     if metric is None:
         raise NotFound(f"metric {name!r} does not exist")
@@ -125,7 +117,7 @@ def put_metric(
 
     409 if the features or categories change while the metric has batches.
     """
-    check_name(name)
+    name = metric_name(name)
     features = _check_features(ctx, features)
     inputs = _check_inputs(ctx, features, categories, missing_values, ignore_extra_columns)
     if description is None:
@@ -141,10 +133,9 @@ def put_metric(
     return _public(ctx, record), outcome == "created"
 
 
-def list_metrics(ctx: Context, limit: int | None = None, cursor: str | None = None,
+def list_metrics(ctx: Context, limit: int = pages.DEFAULT_LIMIT, cursor: str | None = None,
                  visible: Callable[[str], bool] | None = None) -> dict[str, Any]:
     """A page of metrics by name (those ``visible`` says the caller may see)."""
-    limit = pages.check_limit(limit)
     after = pages.decode(cursor, "metrics", lambda v: isinstance(v, str))
     names = [n for n in ctx.storage.metrics.names()
              if (after is None or n > after) and (visible is None or visible(n))]
@@ -159,6 +150,6 @@ def get_metric(ctx: Context, name: str) -> dict[str, Any]:
 
 
 def delete_metric(ctx: Context, name: str) -> None:
-    check_name(name)
+    name = metric_name(name)
     if not ctx.storage.metrics.delete(name):
         raise NotFound(f"metric {name!r} does not exist")

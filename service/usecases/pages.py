@@ -24,8 +24,7 @@ MAX_CURSOR = 512  # characters
 
 
 def check_limit(limit: Any) -> int:
-    if limit is None:
-        return DEFAULT_LIMIT
+    """``limit``'s rule (the HTTP schema reads the query with it; use cases take the int)."""
     if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= MAX_LIMIT:
         raise InvalidInput.field("limit", f"a whole number from 1 to {MAX_LIMIT}")
     return limit
