@@ -16,7 +16,6 @@ import time
 from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
-from service import jobqueue
 from service.clock import utcnow
 from service.errors import Conflict, NotFound
 from service.lifecycle import Fit, FitStatus
@@ -60,11 +59,11 @@ def request_fit(
     if holder is not None:  # this request writes anyway: let a dead fit free the slot
         warden.check_fit(ctx, holder)
     fit_id = secrets.token_hex(10)
-    job_id = jobqueue.job_id_for(ctx, fit_id, 0)
+    job_id = ctx.jobs.job_id_for(fit_id, 0)
     fit = Fit(fit_id=fit_id, metric=name, metric_uid=metric["uid"], params=p,
               requested_by=requested_by, job_id=job_id, dedupe_key=dkey,
               created_at=utcnow(), created_ts=time.time())
-    got, created = ctx.storage.fits.create(fit, jobqueue.enqueuer(ctx, fit_id, job_id))
+    got, created = ctx.storage.fits.create(fit, ctx.jobs.enqueuer(fit_id, job_id))
     return get_fit(ctx, got), created
 
 
@@ -97,7 +96,7 @@ def list_fits(
     before = pages.decode(cursor, "fits", _fit_position)
     if metric is not None:
         require_metric(ctx, metric)
-        names = [metric]
+        names: list[str] = [metric]
     else:
         names = ctx.storage.metrics.names()
     names = [n for n in names if visible is None or visible(n)]
@@ -130,11 +129,11 @@ def retry_fit(ctx: Context, fit_id: str, requested_by: str) -> dict[str, Any]:
         raise Conflict(f"fit {fit_id} is {fit.status}; only a failed fit can be retried")
     name = fit.metric
     _enough_batches(ctx, name)
-    job_id = jobqueue.job_id_for(ctx, fit_id, fit.runs + 1)
+    job_id = ctx.jobs.job_id_for(fit_id, fit.runs + 1)
     moved = ctx.storage.fits.change(
         fit_id, lambda f: f.requeue(job_id, requested_by)
         if f.status is FitStatus.FAILED and f.runs == fit.runs else None,
-        enqueue=jobqueue.enqueuer(ctx, fit_id, job_id))
+        enqueue=ctx.jobs.enqueuer(fit_id, job_id))
     if moved is None:
         raise Conflict(f"fit {fit_id} changed state; only a failed fit can be retried")
     return moved.public()

@@ -5,7 +5,6 @@ from __future__ import annotations
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
-from service import jobqueue
 from service.clock import iso_utc
 from service.store import UNAVAILABLE
 
@@ -20,8 +19,8 @@ def queue_overview(ctx: Context) -> dict[str, Any]:
         "last_heartbeat": iso_utc(w.last_heartbeat) if w.last_heartbeat else None,
         "queues": w.queues,
         "current_fit": w.current_fit,
-    } for w in jobqueue.workers(ctx)]
-    return {"queues": [jobqueue.queue_counts(ctx)], "workers": workers}
+    } for w in ctx.jobs.workers()]
+    return {"queues": [ctx.jobs.queue_counts()], "workers": workers}
 
 
 def readiness(ctx: Context) -> tuple[bool, dict[str, Any]]:
@@ -31,7 +30,7 @@ def readiness(ctx: Context) -> tuple[bool, dict[str, Any]]:
         return False, {"redis": False, "workers_seen": 0}
     now = datetime.now(timezone.utc)
     try:
-        seen = sum(1 for w in jobqueue.workers(ctx) if w.last_heartbeat is not None and (
+        seen = sum(1 for w in ctx.jobs.workers() if w.last_heartbeat is not None and (
             now - w.last_heartbeat).total_seconds() <= ctx.settings.worker_seen_seconds)
     except UNAVAILABLE:
         return False, {"redis": False, "workers_seen": 0}
