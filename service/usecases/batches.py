@@ -29,7 +29,7 @@ BATCH_ID_LEN = 16
 def content_hash(X: np.ndarray, labels: list[Any]) -> str:
     """sha256 over the float64 little-endian matrix (feature order) and the labels' JSON."""
     h = hashlib.sha256()
-    h.update(memoryview(np.ascontiguousarray(X, dtype="<f8")))  # hashed in place, no copy
+    h.update(np.ascontiguousarray(X, dtype="<f8").data)  # hashed in place, no copy
     h.update(json.dumps(labels, separators=(",", ":")).encode())
     return h.hexdigest()
 

@@ -46,7 +46,7 @@ def _svg(draw: Callable[[Figure], None], width: float, height: float) -> str:
              "xtick.color": MUTED, "ytick.color": MUTED, "axes.spines.top": False,
              "axes.spines.right": False, "figure.facecolor": PAPER,
              "axes.facecolor": PAPER, "savefig.facecolor": PAPER}
-    with matplotlib.rc_context(style):
+    with matplotlib.rc_context(style):  # type: ignore[arg-type]  # keys are rc names
         fig = Figure(figsize=(width, height), layout="constrained")
         draw(fig)
         buf = io.StringIO()

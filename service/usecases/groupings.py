@@ -12,12 +12,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from service.core import CoreError, FittedMetric, RecordOverflowError, group_records
-from service.errors import Conflict, InvalidInput, NotFound, from_core
+from service.errors import InvalidInput, NotFound, from_core
 from service.tables import Table
 
 from . import drift
 from .metrics import require_metric
 from .params import GroupCount, VersionNumber
+from .versions import chosen_version
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -61,14 +62,12 @@ def group(
     id_column: str | None = None,
 ) -> dict[str, Any]:
     """Group the table's records; ``id_column`` is echoed back as ``ids`` (and may be
-    a column the metric does not use). ``k`` None: the service chooses it."""
+    a column the metric does not use). ``k`` None: the service chooses it; ``version``
+    None: the active one."""
     metric = require_metric(ctx, name)
     _within_limit(k, ctx.settings.max_groups)
-    if version is None:
-        version = ctx.storage.versions.active(name)
-        if version is None:
-            raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
-    fitted, features, inputs = load_version_metric(ctx, metric, version)
+    n = chosen_version(ctx, name, version)
+    fitted, features, inputs = load_version_metric(ctx, metric, n)
     if ignore_extra is None:
         ignore_extra = metric["inputs"]["ignore_extra_columns"]
     ids = table.column_values(id_column) if id_column is not None else None
@@ -85,10 +84,10 @@ def group(
         raise InvalidInput.field(field, message, f"{field}: {message}") from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
-    drift.record(ctx, metric, version, fitted, m.X, g, imputed=m.imputed)
+    drift.record(ctx, metric, n, fitted, m.X, g, imputed=m.imputed)
     margins = g.margins.astype(float)
     answer = {
-        "version": version,
+        "version": n,
         "k": int(g.k),
         "k_chosen": bool(g.k_chosen),
         "labels": g.labels.astype(int).tolist(),

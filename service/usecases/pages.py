@@ -56,7 +56,7 @@ def whole(v: Any) -> bool:
     return isinstance(v, int) and not isinstance(v, bool) and v >= 0
 
 
-def page(key: str, items: list[dict[str, Any]], limit: int, kind: str,
+def page(key: str, items: list[Any], limit: int, kind: str,
          position: Any) -> dict[str, Any]:
     """The answer: ``items`` (at most ``limit``; one more means there is a next page)
     under ``key``, and the cursor after the last one shown (None at the end)."""

@@ -22,7 +22,7 @@ __all__ = ["MAX_REASON", "activate", "chosen_version", "explain_version", "get_v
            "history", "list_versions"]
 
 
-def chosen_version(ctx: Context, name: str, version: VersionNumber | None) -> int:
+def chosen_version(ctx: Context, name: str, version: int | None) -> int:
     """``version``, or else the active version (409 when none is)."""
     if version is not None:
         return version
