@@ -39,12 +39,16 @@ def test_the_metric_name_pattern_is_spelt_once() -> None:
     "{MAX_REASON} characters",  # a reason
     '"a finite number greater than 0"',  # an alpha (the core's own edge says it its way)
     "positive numbers",  # the list of alphas
+    "printable characters, no surrounding spaces",  # a feature name
+    "{MAX_DESCRIPTION} characters",  # a metric's description
+    "a non-empty list of level names",  # a categorical feature's levels
 ])
 def test_each_rule_says_its_message_in_one_place(message: str) -> None:
     assert _spelt_in(message) == ["service/usecases/params.py"], message
 
 
-RULES = {"version_number", "group_count", "reason", "fit_status", "FIT_FIELDS", "parse"}
+RULES = {"version_number", "group_count", "reason", "fit_status", "FIT_FIELDS", "parse",
+         "feature_names", "level_map", "description", "missing_policy"}
 
 
 def test_use_cases_do_not_run_the_schemas_rules_again() -> None:
@@ -68,6 +72,10 @@ def test_the_schemas_read_with_the_rules() -> None:
     assert schemas.ActivationSchema().fields["reason"].rule is params.reason
     assert schemas.GroupingQuerySchema().fields["k"].rule is params.group_count
     assert schemas.FitQuerySchema().fields["status"].rule is params.fit_status
+    metric = schemas.MetricSchema().fields
+    assert [metric[k].rule for k in ("features", "description", "categories",
+                                     "missing_values")] == [
+        params.feature_names, params.description, params.level_map, params.missing_policy]
 
 
 def test_a_ruled_field_names_the_envelope_field_and_the_rules_message() -> None:
@@ -82,3 +90,8 @@ def test_a_ruled_field_names_the_envelope_field_and_the_rules_message() -> None:
         schemas.FitQuerySchema().load({"metric": "Bad!"})
     assert list(err.value.messages) == ["metric"]  # the query's name, not the path's
     assert re.search("lowercase", err.value.messages["metric"][0])
+    with pytest.raises(ValidationError) as err:
+        schemas.MetricSchema().load({"features": ["a", " b"], "categories": {"a": []}})
+    assert err.value.messages == {
+        "features": {1: ["names are 1-128 printable characters, no surrounding spaces"]},
+        "categories": {"a": ["a non-empty list of level names"]}}

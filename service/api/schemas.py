@@ -22,16 +22,17 @@ from marshmallow import Schema, ValidationError, fields, post_load, validate, va
 from service.config import MAX_FEATURES
 from service.errors import InvalidInput, MalformedRequest
 from service.usecases import pages, params
-from service.usecases.metrics import MAX_DESCRIPTION, MISSING_POLICIES
 
 from .bodies import parse_json
 
-_INDEXED = re.compile(r".*\[(\d+)\]")
+# a rule's field below its own: "alphas[1]" (an item) or "categories.island" (a key)
+_BELOW = re.compile(r"[^.\[]+(?:\[(\d+)\]|\.(.+))")
 
 
 class Ruled(fields.Field):
     """A value read by its rule (a parse function of ``service.usecases.params``): the
-    rule's message, under the envelope's field name (``alphas[1]`` stays indexed).
+    rule's message, under the envelope's field name (``alphas[1]`` and
+    ``categories.island`` stay below it).
     Null is handed to the rule too (it says whether null means something).
     ``query=True`` first reads a query string's digits as a whole number
     (``max_digits`` of them at most)."""
@@ -59,15 +60,16 @@ class Ruled(fields.Field):
         try:
             return self.rule(value)
         except InvalidInput as exc:
-            indexed: dict[int, list[str]] = {}
+            below: dict[int | str, list[str]] = {}
             plain: list[str] = []
             for error in exc.errors or [{"field": "", "message": exc.detail}]:
-                at = _INDEXED.fullmatch(error["field"])
+                at = _BELOW.fullmatch(error["field"])
                 if at:
-                    indexed.setdefault(int(at[1]), []).append(error["message"])
+                    key = int(at[1]) if at[1] is not None else at[2]
+                    below.setdefault(key, []).append(error["message"])
                 else:
                     plain.append(error["message"])
-            raise ValidationError(indexed or plain) from exc
+            raise ValidationError(below or plain) from exc
 
 
 class JSONArray(fields.Field):
@@ -103,20 +105,10 @@ class _Strict(Schema):
 
 
 class MetricSchema(_Strict):
-    features = BoundedList(
-        fields.String(validate=validate.Length(min=1, max=128)),
-        MAX_FEATURES,
-        required=True,
-        validate=validate.Length(min=1),
-    )
-    description = fields.String(load_default="", validate=validate.Length(max=MAX_DESCRIPTION))
-    categories = fields.Dict(
-        keys=fields.String(validate=validate.Length(min=1, max=128)),
-        values=BoundedList(fields.String(validate=validate.Length(min=1, max=128)),
-                           MAX_FEATURES, validate=validate.Length(min=1)),
-        load_default=dict)
-    missing_values = fields.String(load_default="refuse",
-                                   validate=validate.OneOf(MISSING_POLICIES))
+    features = Ruled(params.feature_names, required=True)
+    description = Ruled(params.description, load_default="")
+    categories = Ruled(params.level_map, load_default=dict)
+    missing_values = Ruled(params.missing_policy, load_default="refuse")
     ignore_extra_columns = fields.Boolean(load_default=False)
 
 

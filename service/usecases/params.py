@@ -2,7 +2,8 @@
 
 A parse function takes a raw value (as JSON decoded it, or as a caller holds it) and
 returns a small typed value — :class:`MetricName`, :class:`VersionNumber`,
-:class:`GroupCount`, :class:`Reason`, :class:`FitParams` — or raises
+:class:`GroupCount`, :class:`Reason`, :class:`FitParams`, a metric's feature names,
+description, categories and missing-value policy — or raises
 :class:`~service.errors.InvalidInput` naming the field at fault. The HTTP schemas
 (``service/api/schemas.py``) run these functions as their fields, so a request's
 values are checked once, at the edge, and the problem names the envelope's field; the
@@ -22,6 +23,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass
 from typing import Any
 
+from service.config import MAX_FEATURES
 from service.core import METHODS as LEARNERS
 from service.errors import InvalidInput
 from service.lifecycle import FORMER_ACTIVATE, FitStatus
@@ -30,6 +32,9 @@ from service.lifecycle import FORMER_ACTIVATE, FitStatus
 # tests/test_params.py holds the two together); names never contain ":" (key layout)
 NAME_RE = re.compile(r"[a-z0-9_-]{1,64}")
 MAX_REASON = 1000
+FEATURE_RE = re.compile(r"[^\x00-\x1f]{1,128}")
+MAX_DESCRIPTION = 2000
+MISSING_POLICIES = ("refuse", "impute_mean")
 
 
 class MetricName(str):
@@ -95,6 +100,50 @@ def fit_status(value: Any, field: str = "status") -> FitStatus:
     if not isinstance(value, str) or value not in FitStatus._value2member_map_:
         raise InvalidInput.field(field, "one of " + ", ".join(s.value for s in FitStatus))
     return FitStatus(value)
+
+
+# --- a metric's definition (the deployment's own limits are the use case's) --------
+
+def feature_names(value: Any, field: str = "features") -> list[str]:
+    """A non-empty list of unique names, each 1-128 printable characters without
+    surrounding spaces; a list over the hard cap is refused by its count alone."""
+    if not isinstance(value, list) or not value:
+        raise InvalidInput.field(field, "must be a non-empty list of names")
+    if len(value) > MAX_FEATURES:
+        raise InvalidInput.field(field, f"At most {MAX_FEATURES} items.")
+    for i, f in enumerate(value):
+        if not isinstance(f, str) or not FEATURE_RE.fullmatch(f) or f != f.strip():
+            raise InvalidInput.field(
+                f"{field}[{i}]", "names are 1-128 printable characters, no surrounding spaces")
+    if len(set(value)) != len(value):
+        raise InvalidInput.field(field, "names must be unique")
+    return list(value)
+
+
+def level_map(value: Any, field: str = "categories") -> dict[str, list[str]]:
+    """``{feature: [level, ...]}``: each list non-empty, of unique non-empty names."""
+    if not isinstance(value, dict):
+        raise InvalidInput.field(field, "an object of feature: [level, ...]")
+    for name, levels in value.items():
+        where = f"{field}.{name}"
+        if (not isinstance(levels, list) or not levels or len(levels) > MAX_FEATURES
+                or not all(isinstance(v, str) and 0 < len(v) <= 128 for v in levels)):
+            raise InvalidInput.field(where, "a non-empty list of level names")
+        if len(set(levels)) != len(levels):
+            raise InvalidInput.field(where, "level names must be unique")
+    return {name: list(levels) for name, levels in value.items()}
+
+
+def description(value: Any, field: str = "description") -> str:
+    if not isinstance(value, str) or len(value) > MAX_DESCRIPTION:
+        raise InvalidInput.field(field, f"a string of at most {MAX_DESCRIPTION} characters")
+    return value
+
+
+def missing_policy(value: Any, field: str = "missing_values") -> str:
+    if not isinstance(value, str) or value not in MISSING_POLICIES:
+        raise InvalidInput.field(field, "one of " + ", ".join(MISSING_POLICIES))
+    return value
 
 
 # --- fit parameters ---------------------------------------------------------------
