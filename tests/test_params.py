@@ -90,6 +90,10 @@ def test_a_ruled_field_names_the_envelope_field_and_the_rules_message() -> None:
         schemas.FitQuerySchema().load({"metric": "Bad!"})
     assert list(err.value.messages) == ["metric"]  # the query's name, not the path's
     assert re.search("lowercase", err.value.messages["metric"][0])
+    for odd in ("²", "٣", "-1", "1.0", " 2"):  # not ASCII digits: the rule refuses them
+        with pytest.raises(ValidationError) as err:
+            schemas.PageQuerySchema().load({"limit": odd})
+        assert list(err.value.messages) == ["limit"], odd
     with pytest.raises(ValidationError) as err:
         schemas.MetricSchema().load({"features": ["a", " b"], "categories": {"a": []}})
     assert err.value.messages == {

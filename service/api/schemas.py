@@ -51,8 +51,8 @@ class Ruled(fields.Field):
         return super().deserialize(value, attr, data, **kwargs)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if (self.query and isinstance(value, str) and value.isdigit()
-                and len(value) <= self.max_digits):
+        if (self.query and isinstance(value, str) and value.isascii() and value.isdigit()
+                and len(value) <= self.max_digits):  # ("²".isdigit(), but int() refuses it)
             value = int(value)
         return self._read(value)
 
