@@ -43,12 +43,13 @@ def fit_once(ctx, name: str, feats: list[str], labelled: list) -> None:  # noqa:
     worker in this process (burst mode); exits when the fit fails."""
     from service.tables import from_json
     from service.usecases import batches, fits
+    from service.usecases.params import FitParams
     from workers.worker import run_worker
 
     for Xb, yb in labelled:
         table = from_json({"columns": feats, "rows": Xb.tolist()})
         batches.add_batch(ctx, name, table.with_groups([int(v) for v in yb]))
-    fit, _ = fits.request_fit(ctx, name, {}, "bench")
+    fit, _ = fits.request_fit(ctx, name, FitParams.parse({}), "bench")
     run_worker(ctx.settings, burst=True, name=f"{ctx.settings.key_prefix}-w", simple=True)
     if fits.get_fit(ctx, fit["fit_id"])["status"] != "succeeded":
         raise SystemExit("the fit failed")

@@ -34,6 +34,7 @@ from service.context import Context  # noqa: E402
 from service.tables import Table, from_json  # noqa: E402
 from service.usecases import drift, groupings, metrics  # noqa: E402
 from service.usecases.backlog import BACKLOG  # noqa: E402
+from service.usecases.params import group_count  # noqa: E402
 from tests.datasets import load_open, make_batches  # noqa: E402
 
 TARGET = 1.05
@@ -47,7 +48,7 @@ def _fit(ctx: Context, feats: list[str]) -> None:
 def _time(ctx: Context, table: Table, write: bool, real_record) -> float:
     drift.record = real_record if write else (lambda *args, **kwargs: None)
     started = time.perf_counter()
-    groupings.group(ctx, "bench", table, k=3)
+    groupings.group(ctx, "bench", table, k=group_count(3))
     elapsed = time.perf_counter() - started
     # the summary is written after the answer (the backlog's thread): let it finish
     # outside the timing, so the next call starts with an empty backlog

@@ -37,6 +37,7 @@ from service.context import Context  # noqa: E402
 from service.core import MetricSelector  # noqa: E402
 from service.tables import from_json  # noqa: E402
 from service.usecases import batches, fits, metrics  # noqa: E402
+from service.usecases.params import FitParams  # noqa: E402
 from tests.datasets import load_open, make_batches  # noqa: E402
 
 FEATURES = ["sepal_length", "sepal_width", "petal_length", "petal_width"]
@@ -84,7 +85,7 @@ def main(trials: int) -> None:
             sel.fit([(Xb, yb) for Xb, yb in data])
             core = time.perf_counter() - started
             asked = time.time()
-            fit, _ = fits.request_fit(ctx, "bench", params, "bench")
+            fit, _ = fits.request_fit(ctx, "bench", FitParams.parse(params), "bench")
             done = _until(lambda fid=fit["fit_id"]: (f := fits.get_fit(ctx, fid))["status"]
                           in ("succeeded", "failed") and f, 120, "the fit")
             total = time.time() - asked

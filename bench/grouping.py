@@ -32,6 +32,7 @@ from service.config import Settings  # noqa: E402
 from service.context import Context  # noqa: E402
 from service.core import FittedMetric, group_records  # noqa: E402
 from service.usecases import metrics, versions  # noqa: E402
+from service.usecases.params import version_number  # noqa: E402
 from tests.datasets import load_open, make_batches  # noqa: E402
 
 K = 5
@@ -61,7 +62,8 @@ def main(quick: bool) -> None:
     try:
         metrics.put_metric(ctx, "bench", feats)
         fit_once(ctx, "bench", feats, make_batches(X, y, 6, np.random.default_rng(0)))
-        fitted = FittedMetric.from_dict(versions.get_version(ctx, "bench", 1)["metric"])
+        first = versions.get_version(ctx, "bench", version_number(1))
+        fitted = FittedMetric.from_dict(first["metric"])
         client = create_app(context=ctx).test_client()
         headers = {"Authorization": "Bearer bench"}
         rng = np.random.default_rng(1)

@@ -9,6 +9,7 @@ from __future__ import annotations
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass
+from functools import cached_property
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
@@ -16,7 +17,7 @@ if TYPE_CHECKING:
     import rq
 
     from service.config import Settings
-    from service.store import Storage
+    from service.usecases.ports import FitQueue, Stores
 
 
 class VersionCache:
@@ -54,11 +55,22 @@ class VersionCache:
 
 @dataclass
 class Context:
+    """``storage`` and ``jobs`` are what the use cases use, typed by the protocols of
+    ``service/usecases/ports.py``; ``redis`` and ``queue`` are for the entry points
+    and the adapters (the web tier's outage checks, the RQ worker)."""
+
     settings: Settings
     redis: redis.Redis
-    storage: Storage
+    storage: Stores
     queue: rq.Queue
     cache: VersionCache
+
+    @cached_property
+    def jobs(self) -> FitQueue:
+        """The fit queue in our words (``service.jobqueue.RQFitQueue`` on ``queue``)."""
+        from service.jobqueue import RQFitQueue
+
+        return RQFitQueue(self)
 
     @classmethod
     def build(cls, settings: Settings, connection: redis.Redis | None = None,

@@ -197,3 +197,35 @@ def workers(ctx: Context) -> list[WorkerView]:
         out.append(WorkerView(w.name, state, beat, w.queue_names(),
                               match.group(1) if match else None))
     return sorted(out, key=lambda v: v.name)
+
+
+class RQFitQueue:
+    """The fit queue as the use cases see it (``service.usecases.ports.FitQueue``):
+    the functions above, bound to one context (``ctx.jobs``)."""
+
+    def __init__(self, ctx: Context) -> None:
+        self._ctx = ctx
+
+    def job_id_for(self, fit_id: str, run: int) -> str:
+        return job_id_for(self._ctx, fit_id, run)
+
+    def enqueuer(self, fit_id: str, job_id: str) -> Callable[[Pipeline], None]:
+        return enqueuer(self._ctx, fit_id, job_id)
+
+    def job_state(self, job_id: str) -> tuple[JobState, str | None]:
+        return job_state(self._ctx, job_id)
+
+    def stranded(self, job_id: str, grace: float) -> bool:
+        return stranded(self._ctx, job_id, grace)
+
+    def forget(self, job_id: str) -> None:
+        forget(self._ctx, job_id)
+
+    def heal_stalled(self) -> None:
+        heal_stalled(self._ctx)
+
+    def queue_counts(self) -> dict[str, Any]:
+        return queue_counts(self._ctx)
+
+    def workers(self) -> list[WorkerView]:
+        return workers(self._ctx)

@@ -2,38 +2,74 @@
 
 Only the envelope is checked here (which keys, their JSON types, enums, ranges). The
 numeric matrix inside a batch or grouping request is validated as a whole by numpy in
-``service.tables`` — never record by record.
+``service.tables`` — never record by record. A value with a rule of its own (a fit's
+parameters, ``k``, a version number, a reason, a metric name, a page's ``limit``) is
+read by that rule's parse function in ``service.usecases.params`` (a :class:`Ruled`
+field), which the use cases then trust: each rule is spelt once and run once.
 """
 
 from __future__ import annotations
 
 import json
-import math
 import re
+from collections.abc import Callable
+from functools import partial
 from typing import Any
 
 from flask import request
-from marshmallow import Schema, ValidationError, fields, validate, validates_schema
+from marshmallow import Schema, ValidationError, fields, post_load, validate, validates_schema
 
 from service.config import MAX_FEATURES
-from service.errors import MalformedRequest
-from service.usecases import fits, pages
-from service.usecases.metrics import MAX_DESCRIPTION, MISSING_POLICIES
-from service.usecases.versions import MAX_REASON
+from service.errors import InvalidInput, MalformedRequest
+from service.usecases import pages, params
 
 from .bodies import parse_json
 
-# one source of truth: the use cases' lists and limits (the methods come from the
-# core's learners)
-FIT_METHODS = fits.METHODS
-ACTIVATE_POLICIES = fits.ACTIVATE
-FIT_STATUSES = fits.STATUSES
+# a rule's field below its own: "alphas[1]" (an item) or "categories.island" (a key)
+_BELOW = re.compile(r"[^.\[]+(?:\[(\d+)\]|\.(.+))")
 
 
-def _int_field(name: str) -> fields.Integer:
-    lo, hi, optional = fits.INT_RANGES[name]
-    return fields.Integer(strict=True, validate=validate.Range(min=lo, max=hi),
-                          allow_none=optional)
+class Ruled(fields.Field):
+    """A value read by its rule (a parse function of ``service.usecases.params``): the
+    rule's message, under the envelope's field name (``alphas[1]`` and
+    ``categories.island`` stay below it).
+    Null is handed to the rule too (it says whether null means something).
+    ``query=True`` first reads a query string's digits as a whole number
+    (``max_digits`` of them at most)."""
+
+    def __init__(self, rule: Callable[[Any], Any], *, query: bool = False,
+                 max_digits: int = 10, **kwargs: Any) -> None:
+        super().__init__(**kwargs)
+        self.rule = rule
+        self.query = query
+        self.max_digits = max_digits
+
+    def deserialize(self, value: Any, attr: str | None = None, data: Any = None,
+                    **kwargs: Any) -> Any:
+        if value is None:
+            return self._read(None)
+        return super().deserialize(value, attr, data, **kwargs)
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if (self.query and isinstance(value, str) and value.isascii() and value.isdigit()
+                and len(value) <= self.max_digits):  # ("²".isdigit(), but int() refuses it)
+            value = int(value)
+        return self._read(value)
+
+    def _read(self, value: Any) -> Any:
+        try:
+            return self.rule(value)
+        except InvalidInput as exc:
+            below: dict[int | str, list[str]] = {}
+            plain: list[str] = []
+            for error in exc.errors or [{"field": "", "message": exc.detail}]:
+                at = _BELOW.fullmatch(error["field"])
+                if at:
+                    key = int(at[1]) if at[1] is not None else at[2]
+                    below.setdefault(key, []).append(error["message"])
+                else:
+                    plain.append(error["message"])
+            raise ValidationError(below or plain) from exc
 
 
 class JSONArray(fields.Field):
@@ -43,19 +79,6 @@ class JSONArray(fields.Field):
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> list:
         if not isinstance(value, list):
-            raise self.make_error("invalid")
-        return value
-
-
-class KField(fields.Field):
-    """``k``: a whole number ≥ 1, or ``"auto"`` (null means the same as "auto")."""
-
-    default_error_messages = {"invalid": 'Must be a whole number of at least 1, or "auto".'}
-
-    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if value == "auto":
-            return "auto"
-        if isinstance(value, bool) or not isinstance(value, int) or value < 1:
             raise self.make_error("invalid")
         return value
 
@@ -74,19 +97,6 @@ class BoundedList(fields.List):
         return super()._deserialize(value, attr, data, **kwargs)
 
 
-class PositiveNumber(fields.Field):
-    """A finite JSON number > 0 (no strings, no booleans)."""
-
-    default_error_messages = {"invalid": "Must be a finite number greater than 0."}
-
-    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> float:
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise self.make_error("invalid")
-        if not math.isfinite(value) or value <= 0:
-            raise self.make_error("invalid")
-        return float(value)
-
-
 class _Strict(Schema):
     """Unknown keys are an error (marshmallow's default, stated here on purpose)."""
 
@@ -95,20 +105,10 @@ class _Strict(Schema):
 
 
 class MetricSchema(_Strict):
-    features = BoundedList(
-        fields.String(validate=validate.Length(min=1, max=128)),
-        MAX_FEATURES,
-        required=True,
-        validate=validate.Length(min=1),
-    )
-    description = fields.String(load_default="", validate=validate.Length(max=MAX_DESCRIPTION))
-    categories = fields.Dict(
-        keys=fields.String(validate=validate.Length(min=1, max=128)),
-        values=BoundedList(fields.String(validate=validate.Length(min=1, max=128)),
-                           MAX_FEATURES, validate=validate.Length(min=1)),
-        load_default=dict)
-    missing_values = fields.String(load_default="refuse",
-                                   validate=validate.OneOf(MISSING_POLICIES))
+    features = Ruled(params.feature_names, required=True)
+    description = Ruled(params.description, load_default="")
+    categories = Ruled(params.level_map, load_default=dict)
+    missing_values = Ruled(params.missing_policy, load_default="refuse")
     ignore_extra_columns = fields.Boolean(load_default=False)
 
 
@@ -138,44 +138,35 @@ class BatchSchema(_TableSchema):
     groups = JSONArray(required=True, validate=validate.Length(min=1))
 
 
+def _nullable_version(value: Any) -> params.VersionNumber | None:
+    return None if value is None else params.version_number(value)
+
+
 class GroupingSchema(_TableSchema):
-    k = KField(load_default=None, allow_none=True)
-    version = fields.Integer(strict=True, validate=validate.Range(min=1), allow_none=True)
-
-
-def _activate_policy(value: str) -> None:
-    if value not in ACTIVATE_POLICIES:
-        raise ValidationError(fits.activate_message(value))
+    k = Ruled(params.group_count)
+    version = Ruled(_nullable_version)
 
 
 class FitSchema(_Strict):
-    """Fit parameters; the ranges are those of ``service.usecases.fits.normalize_params``."""
+    """Fit parameters, each read by its rule (``service.usecases.params.FIT_FIELDS``);
+    loads as a :class:`~service.usecases.params.FitParams`."""
 
-    method = fields.String(load_default="auto", validate=validate.OneOf(FIT_METHODS))
-    activate = fields.String(load_default=fits.DEFAULTS["activate"], validate=_activate_policy)
-    alphas = fields.List(
-        PositiveNumber(),
-        validate=validate.Length(min=1, max=fits.MAX_ALPHAS),
-        allow_none=True,
-    )
-    n_folds = _int_field("n_folds")
-    max_rank = _int_field("max_rank")
-    k_max = _int_field("k_max")
-    seed = _int_field("seed")
+    method = Ruled(params.FIT_FIELDS["method"])
+    activate = Ruled(params.FIT_FIELDS["activate"])
+    alphas = Ruled(params.FIT_FIELDS["alphas"])
+    n_folds = Ruled(params.FIT_FIELDS["n_folds"])
+    max_rank = Ruled(params.FIT_FIELDS["max_rank"])
+    k_max = Ruled(params.FIT_FIELDS["k_max"])
+    seed = Ruled(params.FIT_FIELDS["seed"])
+
+    @post_load
+    def _params(self, data: dict[str, Any], **kwargs: Any) -> params.FitParams:
+        return params.FitParams(**data)
 
 
 class ActivationSchema(_Strict):
-    version = fields.Integer(strict=True, required=True, validate=validate.Range(min=1))
-    reason = fields.String(load_default="", validate=validate.Length(max=MAX_REASON))
-
-
-class QueryKField(KField):
-    """``k`` in a query string: digits, or ``auto``."""
-
-    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if isinstance(value, str) and value.isdigit() and len(value) <= 6:
-            value = int(value)
-        return super()._deserialize(value, attr, data, **kwargs)
+    version = Ruled(params.version_number, required=True)
+    reason = Ruled(params.reason, load_default=params.Reason(""))
 
 
 _COLUMN = validate.Length(min=1, max=128)
@@ -210,24 +201,25 @@ class BatchQuerySchema(_Strict):
 class GroupingQuerySchema(_Strict):
     ignore_extra_columns = fields.Boolean(load_default=None)
     id_column = fields.String(validate=_COLUMN)
-    k = QueryKField()
-    version = fields.Integer(validate=validate.Range(min=1, max=2**31))
+    k = Ruled(params.group_count, query=True, max_digits=6)
+    version = Ruled(params.version_number, query=True)
 
 
 class PageQuerySchema(_Strict):
-    """``limit`` and ``cursor`` of every list (``service.usecases.pages``)."""
+    """``limit`` and ``cursor`` of every list (their rules: ``service.usecases.pages``;
+    a cursor is read by the list it belongs to)."""
 
-    limit = fields.Integer(validate=validate.Range(min=1, max=pages.MAX_LIMIT))
-    cursor = fields.String(validate=validate.Length(min=1, max=pages.MAX_CURSOR))
+    limit = Ruled(pages.check_limit, query=True, load_default=pages.DEFAULT_LIMIT)
+    cursor = fields.String()
 
 
 class FitQuerySchema(PageQuerySchema):
-    metric = fields.String(validate=validate.Length(min=1, max=64))
-    status = fields.String(validate=validate.OneOf(FIT_STATUSES))
+    metric = Ruled(partial(params.metric_name, field="metric"))
+    status = Ruled(params.fit_status)
 
 
 class DriftQuerySchema(_Strict):
-    version = fields.Integer(strict=False, validate=validate.Range(min=1))
+    version = Ruled(params.version_number, query=True, max_digits=18)
     since = fields.String(validate=validate.Length(min=1, max=64))
 
 

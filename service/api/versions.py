@@ -5,6 +5,7 @@ from __future__ import annotations
 from flask import Blueprint, Response
 
 from service.usecases import versions as uc
+from service.usecases.params import version_number
 
 from .auth import principal
 from .deps import context, reply
@@ -22,12 +23,12 @@ def list_versions(name: str) -> Response:
 
 @bp.get("/metrics/<name>/versions/<int:n>")
 def get_version(name: str, n: int) -> Response:
-    return reply(uc.get_version(context(), name, n))
+    return reply(uc.get_version(context(), name, version_number(n)))
 
 
 @bp.get("/metrics/<name>/versions/<int:n>/explanation")
 def explain_version(name: str, n: int) -> Response:
-    return reply(uc.explain_version(context(), name, n))
+    return reply(uc.explain_version(context(), name, version_number(n)))
 
 
 @bp.put("/metrics/<name>/active")

@@ -1,7 +1,7 @@
 """Every Redis key of likewise, under one configurable prefix (the only place names live).
 
-Key layout (``P`` = the deployment's key prefix; metric names match
-``[a-z0-9_-]{1,64}`` so they never contain ``:``)::
+Key layout (``P`` = the deployment's key prefix; metric names follow the rule of
+``service/usecases/params.py``, so they never contain ``:``)::
 
     P:metrics                       set    metric names
     P:metric:{name}                 hash   features (JSON), description, created_at,

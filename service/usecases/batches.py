@@ -29,7 +29,7 @@ BATCH_ID_LEN = 16
 def content_hash(X: np.ndarray, labels: list[Any]) -> str:
     """sha256 over the float64 little-endian matrix (feature order) and the labels' JSON."""
     h = hashlib.sha256()
-    h.update(memoryview(np.ascontiguousarray(X, dtype="<f8")))  # hashed in place, no copy
+    h.update(np.ascontiguousarray(X, dtype="<f8").data)  # hashed in place, no copy
     h.update(json.dumps(labels, separators=(",", ":")).encode())
     return h.hexdigest()
 
@@ -119,11 +119,10 @@ def _summary(meta: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
-def list_batches(ctx: Context, name: str, limit: int | None = None,
+def list_batches(ctx: Context, name: str, limit: int = pages.DEFAULT_LIMIT,
                  cursor: str | None = None) -> dict[str, Any]:
     """A page of batch summaries, oldest first (by ingest order)."""
     require_metric(ctx, name)
-    limit = pages.check_limit(limit)
     after = pages.decode(cursor, f"batches:{name}", pages.whole)
     rows = ctx.storage.batches.metas_after(name, after, limit + 1)
     page = pages.page("batches", rows, limit, f"batches:{name}", lambda r: r[0])

@@ -46,7 +46,7 @@ def _svg(draw: Callable[[Figure], None], width: float, height: float) -> str:
              "xtick.color": MUTED, "ytick.color": MUTED, "axes.spines.top": False,
              "axes.spines.right": False, "figure.facecolor": PAPER,
              "axes.facecolor": PAPER, "savefig.facecolor": PAPER}
-    with matplotlib.rc_context(style):
+    with matplotlib.rc_context(style):  # type: ignore[arg-type]  # keys are rc names
         fig = Figure(figsize=(width, height), layout="constrained")
         draw(fig)
         buf = io.StringIO()
@@ -98,10 +98,10 @@ def margins_chart(hist: dict[str, Any]) -> str:
 
     def draw(fig: Figure) -> None:
         ax = fig.add_subplot()
-        shown = [ax.bar(lefts, hist["reference"], width=width, align="edge", color=EUCLID,
-                        alpha=0.35, label="training batches held out in cross-validation "
-                        "(reference)" if held_out else "training batches, in sample "
-                        "(reference)")]
+        shown: list[Any] = [ax.bar(
+            lefts, hist["reference"], width=width, align="edge", color=EUCLID, alpha=0.35,
+            label="training batches held out in cross-validation (reference)" if held_out
+            else "training batches, in sample (reference)")]
         if held_out:
             shown += ax.step(*steps(hist["in_sample"]), where="post", color=MUTED,
                              linewidth=1.1, linestyle="--", label="training batches, in sample")

@@ -182,7 +182,8 @@ def report(ctx: Context, name: str, version: int | None = None, since: Any = Non
             "until": iso_utc(now), "hours": hours, "requests": requests,
             "reference_records": ref.summary.moments.count,
             "reference_heldout_batches": ref.heldout.batches
-            if scores["margins"]["reference"] == "held_out" else None,
+            if ref.heldout is not None and scores["margins"]["reference"] == "held_out"
+            else None,
             **scores,
             "thresholds": THRESHOLDS}
 

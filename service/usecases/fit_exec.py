@@ -127,10 +127,7 @@ def _decide(
     return False, f"activate=when_better: {same}: version {active} stays active"
 
 
-def execute_fit(
-    ctx: Context, fit_id: str, progress_cb: Callable[[str, float], None] | None = None,
-    job_id: str | None = None,
-) -> dict[str, Any]:
+def execute_fit(ctx: Context, fit_id: str, job_id: str | None = None) -> dict[str, Any]:
     """Run fit ``fit_id`` to completion as attempt ``job_id`` (None: whichever job the
     record names). Invalid data fails the fit (no retry); unexpected errors propagate
     so the queue can retry the job."""
@@ -141,11 +138,10 @@ def execute_fit(
     if fit.job_id != job_id:  # a job the fit has moved on from: nothing to do
         return _result(fit, fit_id)
     with _Lease(ctx, fit_id, job_id):
-        return _attempt(ctx, fit, job_id, progress_cb)
+        return _attempt(ctx, fit, job_id)
 
 
-def _attempt(ctx: Context, fit: Fit, job_id: str,
-             progress_cb: Callable[[str, float], None] | None) -> dict[str, Any]:
+def _attempt(ctx: Context, fit: Fit, job_id: str) -> dict[str, Any]:
     st, fit_id = ctx.storage, fit.fit_id
     ours = _ours(job_id)
     name, p = fit.metric, fit.params
@@ -153,8 +149,6 @@ def _attempt(ctx: Context, fit: Fit, job_id: str,
     def progress(stage: str, fraction: float) -> None:
         fraction = float(min(max(fraction, 0.0), 1.0))
         st.fits.set_progress(fit_id, stage, fraction)
-        if progress_cb is not None:
-            progress_cb(stage, fraction)
 
     metric = st.metrics.get(name)
     if metric is None or metric["uid"] != fit.metric_uid:

@@ -12,26 +12,23 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from service.core import CoreError, FittedMetric, RecordOverflowError, group_records
-from service.errors import Conflict, InvalidInput, NotFound, from_core
+from service.errors import InvalidInput, NotFound, from_core
 from service.tables import Table
 
 from . import drift
 from .metrics import require_metric
-from .versions import check_version_number
+from .params import GroupCount, VersionNumber
+from .versions import chosen_version
 
 if TYPE_CHECKING:
     from service.context import Context
 
 
-def _check_k(k: Any, limit: int) -> int | None:
-    if k is None or k == "auto":
-        return None
-    if isinstance(k, bool) or not isinstance(k, int) or k < 1:
-        raise InvalidInput.field("k", 'a whole number ≥ 1 or "auto"')
-    if k > limit:
+def _within_limit(k: GroupCount | None, limit: int) -> None:
+    """The deployment's cap on ``k`` (a setting, so not part of ``k``'s own rule)."""
+    if k is not None and k > limit:
         # exact and heuristic k-means both cost O(k·n) per pass: cap what one request asks
         raise InvalidInput.field("k", f"at most {limit} groups per request (LIKEWISE_MAX_GROUPS)")
-    return k
 
 
 def load_version_metric(ctx: Context, metric: dict[str, Any], n: int) -> tuple[
@@ -58,23 +55,19 @@ def group(
     ctx: Context,
     name: str,
     table: Table,
-    k: int | str | None = None,
-    version: int | None = None,
+    k: GroupCount | None = None,
+    version: VersionNumber | None = None,
     *,
     ignore_extra: bool | None = None,
     id_column: str | None = None,
 ) -> dict[str, Any]:
     """Group the table's records; ``id_column`` is echoed back as ``ids`` (and may be
-    a column the metric does not use)."""
+    a column the metric does not use). ``k`` None: the service chooses it; ``version``
+    None: the active one."""
     metric = require_metric(ctx, name)
-    k_value = _check_k(k, ctx.settings.max_groups)
-    if version is None:
-        version = ctx.storage.versions.active(name)
-        if version is None:
-            raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
-    else:
-        check_version_number(version)
-    fitted, features, inputs = load_version_metric(ctx, metric, version)
+    _within_limit(k, ctx.settings.max_groups)
+    n = chosen_version(ctx, name, version)
+    fitted, features, inputs = load_version_metric(ctx, metric, n)
     if ignore_extra is None:
         ignore_extra = metric["inputs"]["ignore_extra_columns"]
     ids = table.column_values(id_column) if id_column is not None else None
@@ -83,7 +76,7 @@ def group(
                      fill=fitted.mean if inputs.get("missing_values") == "impute_mean" else None,
                      categories=inputs.get("categories"))
     try:
-        g = group_records(fitted, m.X, k=k_value)
+        g = group_records(fitted, m.X, k=k)
     except RecordOverflowError as exc:
         # finite numbers (each passed the table checks) can still overflow once rescaled
         field = table.row_field(exc.row)
@@ -91,10 +84,10 @@ def group(
         raise InvalidInput.field(field, message, f"{field}: {message}") from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
-    drift.record(ctx, metric, version, fitted, m.X, g, imputed=m.imputed)
+    drift.record(ctx, metric, n, fitted, m.X, g, imputed=m.imputed)
     margins = g.margins.astype(float)
     answer = {
-        "version": version,
+        "version": n,
         "k": int(g.k),
         "k_chosen": bool(g.k_chosen),
         "labels": g.labels.astype(int).tolist(),

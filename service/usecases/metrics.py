@@ -13,7 +13,6 @@
 
 from __future__ import annotations
 
-import re
 import secrets
 from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
@@ -23,80 +22,44 @@ from service.store import FeaturesLocked
 from service.tables import LEVEL_SEPARATOR, encoded_names
 
 from . import pages
+from .params import metric_name
 
 if TYPE_CHECKING:
     from service.context import Context
 
-NAME_RE = re.compile(r"[a-z0-9_-]{1,64}")
-FEATURE_RE = re.compile(r"[^\x00-\x1f]{1,128}")
-MAX_DESCRIPTION = 2000
-MISSING_POLICIES = ("refuse", "impute_mean")
-
-
-def check_name(name: Any) -> str:
-    """A metric name: lowercase letters, digits, ``-`` and ``_``, at most 64 characters."""
-    if not isinstance(name, str) or not NAME_RE.fullmatch(name):
-        raise InvalidInput.field(
-            "name", "use 1 to 64 lowercase letters, digits, '-' or '_'",
-            f"invalid metric name {name!r}")
-    return name
 
 
 def require_metric(ctx: Context, name: str) -> dict[str, Any]:
-    """The stored metric record (with ``uid``) or 404."""
-    check_name(name)
+    """The stored metric record (with ``uid``) or 404; a name from the URL path is read
+    here (a :class:`MetricName` already was)."""
+    name = metric_name(name)
     metric = ctx.storage.metrics.get(name)
     if metric is None:
         raise NotFound(f"metric {name!r} does not exist")
     return metric
 
 
-def _check_features(ctx: Context, features: Any) -> list[str]:
-    if not isinstance(features, list) or not features:
-        raise InvalidInput.field("features", "must be a non-empty list of names")
+def _within_limits(ctx: Context, features: list[str],
+                   categories: dict[str, list[str]]) -> dict[str, list[str]]:
+    """The deployment's cap on columns, and the categories against the features (each
+    value's own rule ran where it was read: ``service.usecases.params``)."""
     limit = ctx.settings.max_batch_features
     if len(features) > limit:
         raise InvalidInput.field("features", f"at most {limit} features")
-    for i, f in enumerate(features):
-        if not isinstance(f, str) or not FEATURE_RE.fullmatch(f) or f != f.strip():
-            raise InvalidInput.field(
-                f"features[{i}]", "names are 1-128 printable characters, no surrounding spaces")
-    if len(set(features)) != len(features):
-        raise InvalidInput.field("features", "names must be unique")
-    return list(features)
-
-
-def _check_inputs(ctx: Context, features: list[str], categories: Any, missing: Any,
-                  ignore_extra: Any) -> dict[str, Any]:
-    categories = categories or {}
-    if not isinstance(categories, dict):
-        raise InvalidInput.field("categories", "an object of feature: [level, ...]")
-    for name, levels in categories.items():
-        where = f"categories.{name}"
+    for name in categories:
         if name not in features:
-            raise InvalidInput.field(where, "not one of the metric's features")
-        if (not isinstance(levels, list) or not levels
-                or not all(isinstance(v, str) and v for v in levels)):
-            raise InvalidInput.field(where, "a non-empty list of level names")
-        if len(set(levels)) != len(levels):
-            raise InvalidInput.field(where, "level names must be unique")
+            raise InvalidInput.field(f"categories.{name}", "not one of the metric's features")
     encoded = encoded_names(features, categories)
     if len(set(encoded)) != len(encoded):
         raise InvalidInput.field(
             "categories", f"a level column ('feature{LEVEL_SEPARATOR}level') has the name "
                           "of another feature")
     width = len(encoded)
-    if width > ctx.settings.max_batch_features:
+    if width > limit:
         raise InvalidInput.field(
             "categories", f"the features with their levels make {width} columns "
-                          f"(at most {ctx.settings.max_batch_features})")
-    missing = missing or "refuse"
-    if missing not in MISSING_POLICIES:
-        raise InvalidInput.field("missing_values", "one of " + ", ".join(MISSING_POLICIES))
-    if not isinstance(ignore_extra or False, bool):
-        raise InvalidInput.field("ignore_extra_columns", "true or false")
-    return {"categories": {f: list(categories[f]) for f in features if f in categories},
-            "missing_values": missing, "ignore_extra_columns": bool(ignore_extra)}
+                          f"(at most {limit})")
+    return {f: list(categories[f]) for f in features if f in categories}
 
 
 def _public(ctx: Context, metric: dict[str, Any], counts: dict[str, Any] | None = None
@@ -121,17 +84,15 @@ def put_metric(
     categories: dict[str, list[str]] | None = None, missing_values: str = "refuse",
     ignore_extra_columns: bool = False,
 ) -> tuple[dict[str, Any], bool]:
-    """Create a metric or update it; True when created.
+    """Create a metric or update it; True when created. The values are those the rules
+    of ``service.usecases.params`` read (``feature_names``, ``description``,
+    ``level_map``, ``missing_policy``); the name is read here.
 
     409 if the features or categories change while the metric has batches.
     """
-    check_name(name)
-    features = _check_features(ctx, features)
-    inputs = _check_inputs(ctx, features, categories, missing_values, ignore_extra_columns)
-    if description is None:
-        description = ""
-    if not isinstance(description, str) or len(description) > MAX_DESCRIPTION:
-        raise InvalidInput.field("description", f"a string of at most {MAX_DESCRIPTION} characters")
+    name = metric_name(name)
+    inputs = {"categories": _within_limits(ctx, features, categories or {}),
+              "missing_values": missing_values, "ignore_extra_columns": ignore_extra_columns}
     try:
         record, outcome = ctx.storage.metrics.put(name, features, description,
                                                   secrets.token_hex(8), inputs)
@@ -141,10 +102,9 @@ def put_metric(
     return _public(ctx, record), outcome == "created"
 
 
-def list_metrics(ctx: Context, limit: int | None = None, cursor: str | None = None,
+def list_metrics(ctx: Context, limit: int = pages.DEFAULT_LIMIT, cursor: str | None = None,
                  visible: Callable[[str], bool] | None = None) -> dict[str, Any]:
     """A page of metrics by name (those ``visible`` says the caller may see)."""
-    limit = pages.check_limit(limit)
     after = pages.decode(cursor, "metrics", lambda v: isinstance(v, str))
     names = [n for n in ctx.storage.metrics.names()
              if (after is None or n > after) and (visible is None or visible(n))]
@@ -159,6 +119,6 @@ def get_metric(ctx: Context, name: str) -> dict[str, Any]:
 
 
 def delete_metric(ctx: Context, name: str) -> None:
-    check_name(name)
+    name = metric_name(name)
     if not ctx.storage.metrics.delete(name):
         raise NotFound(f"metric {name!r} does not exist")

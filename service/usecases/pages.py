@@ -24,8 +24,7 @@ MAX_CURSOR = 512  # characters
 
 
 def check_limit(limit: Any) -> int:
-    if limit is None:
-        return DEFAULT_LIMIT
+    """``limit``'s rule (the HTTP schema reads the query with it; use cases take the int)."""
     if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= MAX_LIMIT:
         raise InvalidInput.field("limit", f"a whole number from 1 to {MAX_LIMIT}")
     return limit
@@ -57,7 +56,7 @@ def whole(v: Any) -> bool:
     return isinstance(v, int) and not isinstance(v, bool) and v >= 0
 
 
-def page(key: str, items: list[dict[str, Any]], limit: int, kind: str,
+def page(key: str, items: list[Any], limit: int, kind: str,
          position: Any) -> dict[str, Any]:
     """The answer: ``items`` (at most ``limit``; one more means there is a next page)
     under ``key``, and the cursor after the last one shown (None at the end)."""

@@ -6,7 +6,6 @@ from collections.abc import Callable
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
-from service import jobqueue
 from service.clock import iso_utc
 from service.store import UNAVAILABLE
 
@@ -18,22 +17,23 @@ def queue_overview(ctx: Context, visible: Callable[[str], bool] | None = None
                    ) -> dict[str, Any]:
     """Counts are deployment-wide (the queue is shared); a worker's current fit and its
     metric are shown only where ``visible(metric)`` allows (None: every metric)."""
-    views = jobqueue.workers(ctx)
+    views = ctx.jobs.workers()
     current = [w.current_fit for w in views if w.current_fit]
     fits = dict(zip(current, ctx.storage.fits.get_many(current), strict=True)) if current else {}
     workers = []
     for w in views:
         fit = fits.get(w.current_fit) if w.current_fit else None
-        shown = fit is not None and (visible is None or visible(fit.metric))
+        metric = fit.metric if fit is not None else None
+        shown = metric is not None and (visible is None or visible(metric))
         workers.append({
             "name": w.name,
             "state": w.state.value,
             "last_heartbeat": iso_utc(w.last_heartbeat) if w.last_heartbeat else None,
             "queues": w.queues,
             "current_fit": w.current_fit if shown else None,
-            "current_metric": fit.metric if shown else None,
+            "current_metric": metric if shown else None,
         })
-    return {"queues": [jobqueue.queue_counts(ctx)], "workers": workers}
+    return {"queues": [ctx.jobs.queue_counts()], "workers": workers}
 
 
 def readiness(ctx: Context) -> tuple[bool, dict[str, Any]]:
@@ -43,7 +43,7 @@ def readiness(ctx: Context) -> tuple[bool, dict[str, Any]]:
         return False, {"redis": False, "workers_seen": 0}
     now = datetime.now(timezone.utc)
     try:
-        seen = sum(1 for w in jobqueue.workers(ctx) if w.last_heartbeat is not None and (
+        seen = sum(1 for w in ctx.jobs.workers() if w.last_heartbeat is not None and (
             now - w.last_heartbeat).total_seconds() <= ctx.settings.worker_seen_seconds)
     except UNAVAILABLE:
         return False, {"redis": False, "workers_seen": 0}

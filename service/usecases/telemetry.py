@@ -5,7 +5,6 @@ from __future__ import annotations
 from itertools import accumulate
 from typing import TYPE_CHECKING, Any
 
-from service import jobqueue
 from service.lifecycle import FitStatus
 from service.store.tallies import FIT_SECONDS_BUCKETS, FitTally
 
@@ -31,7 +30,7 @@ def snapshot(ctx: Context) -> dict[str, Any]:
         fits[outcome] = {"ended": tally.ended, "seconds": tally.seconds,
                          "buckets": list(zip(bounds, accumulate(tally.buckets), strict=True))}
     activations = {by: tallies.activations.get(by, 0) for by in ACTIVATED_BY}
-    counts = jobqueue.queue_counts(ctx)
+    counts = ctx.jobs.queue_counts()
     return {"fits": fits, "activations": activations, "drift": drift.latest_verdicts(ctx),
             "queue": {
         "depth": {"waiting": counts["waiting"], "running": counts["fitting"]},

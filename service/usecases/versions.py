@@ -8,39 +8,34 @@ import numpy as np
 
 from service.clock import utcnow
 from service.core import FittedMetric
-from service.errors import Conflict, InvalidInput, NotFound
+from service.errors import Conflict, NotFound
 from service.store import MissingVersion
 
 from . import pages
 from .metrics import require_metric
+from .params import MAX_REASON, Reason, VersionNumber
 
 if TYPE_CHECKING:
     from service.context import Context
 
-MAX_REASON = 1000
+__all__ = ["MAX_REASON", "activate", "chosen_version", "explain_version", "get_version",
+           "history", "list_versions"]
 
 
-def check_version_number(n: Any, field: str = "version") -> int:
-    if isinstance(n, bool) or not isinstance(n, int) or n < 1:
-        raise InvalidInput.field(field, "a version number (whole number ≥ 1)")
-    return n
-
-
-def chosen_version(ctx: Context, name: str, version: Any) -> int:
-    """``version`` checked, or else the active version (409 when none is)."""
+def chosen_version(ctx: Context, name: str, version: int | None) -> int:
+    """``version``, or else the active version (409 when none is)."""
     if version is not None:
-        return check_version_number(version)
+        return version
     active = ctx.storage.versions.active(name)
     if active is None:
         raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
     return active
 
 
-def list_versions(ctx: Context, name: str, limit: int | None = None,
+def list_versions(ctx: Context, name: str, limit: int = pages.DEFAULT_LIMIT,
                   cursor: str | None = None) -> dict[str, Any]:
     """A page of version summaries by number."""
     require_metric(ctx, name)
-    limit = pages.check_limit(limit)
     after = pages.decode(cursor, f"versions:{name}", pages.whole)
     active = ctx.storage.versions.active(name)
     listed = [{**s, "active": s["version"] == active}
@@ -48,11 +43,10 @@ def list_versions(ctx: Context, name: str, limit: int | None = None,
     return pages.page("versions", listed, limit, f"versions:{name}", lambda v: v["version"])
 
 
-def get_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
+def get_version(ctx: Context, name: str, n: VersionNumber) -> dict[str, Any]:
     """Summary plus report, training batches (ids and content hashes), fit id, parent
     and the fitted metric (features, scales, mean, components, matrix …)."""
     require_metric(ctx, name)
-    check_version_number(n)
     doc = ctx.storage.versions.get(name, n)
     if doc is None:
         raise NotFound(f"metric {name!r} has no version {n}")
@@ -82,12 +76,11 @@ def _fold_scores(report: dict[str, Any]) -> list[dict[str, Any]]:
     return out
 
 
-def explain_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
+def explain_version(ctx: Context, name: str, n: VersionNumber) -> dict[str, Any]:
     """A version read by feature name: per-feature weight in original units and share
     of the metric, the strongest directions with their loadings, and held-out ARI per
     fold for the version's configuration and for Euclidean (docs/method.md)."""
     require_metric(ctx, name)
-    check_version_number(n)
     doc = ctx.storage.versions.get(name, n, ("summary", "report", "metric"))
     if doc is None:
         raise NotFound(f"metric {name!r} has no version {n}")
@@ -113,14 +106,10 @@ def explain_version(ctx: Context, name: str, n: int) -> dict[str, Any]:
     }
 
 
-def activate(ctx: Context, name: str, version: int, reason: str, who: str) -> dict[str, Any]:
+def activate(ctx: Context, name: str, version: VersionNumber, reason: Reason,
+             who: str) -> dict[str, Any]:
     """Make any stored version the active one; recorded in the history."""
     require_metric(ctx, name)
-    check_version_number(version)
-    if reason is None:
-        reason = ""
-    if not isinstance(reason, str) or len(reason) > MAX_REASON:
-        raise InvalidInput.field("reason", f"a string of at most {MAX_REASON} characters")
     entry = {"at": utcnow(), "who": who, "reason": reason, "fit_id": None}
     try:
         previous = ctx.storage.versions.activate(name, version, entry)
@@ -129,11 +118,10 @@ def activate(ctx: Context, name: str, version: int, reason: str, who: str) -> di
     return {"name": name, "active_version": version, "previous_version": previous}
 
 
-def history(ctx: Context, name: str, limit: int | None = None,
+def history(ctx: Context, name: str, limit: int = pages.DEFAULT_LIMIT,
             cursor: str | None = None) -> dict[str, Any]:
     """A page of activations, oldest first (the history only grows)."""
     require_metric(ctx, name)
-    limit = pages.check_limit(limit)
     start = pages.decode(cursor, f"history:{name}", pages.whole) or 0
     keys = ("from", "to", "at", "who", "reason", "fit_id")
     rows = [(start + i, {k: e.get(k) for k in keys})

@@ -26,7 +26,6 @@ import logging
 import threading
 from typing import TYPE_CHECKING
 
-from service import jobqueue
 from service.jobqueue import JobState
 from service.lifecycle import Fit, FitStatus
 from service.store import UNAVAILABLE
@@ -61,10 +60,10 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
         return fit
     if fit.status is FitStatus.RUNNING and ctx.storage.fits.lease_holder(fit.fit_id) is None:
         return _hand_over(ctx, fit)
-    if fit.status is FitStatus.WAITING and jobqueue.stranded(
-            ctx, fit.job_id, ctx.settings.stranded_seconds):
+    if fit.status is FitStatus.WAITING and ctx.jobs.stranded(
+            fit.job_id, ctx.settings.stranded_seconds):
         return _reissue(ctx, fit)
-    state, error = jobqueue.job_state(ctx, fit.job_id)
+    state, error = ctx.jobs.job_state(fit.job_id)
     if _move(fit, state, error) is None:
         return fit
     seen = (fit.status, fit.job_id, fit.attempts)
@@ -77,15 +76,15 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
 
 def _reissue(ctx: Context, fit: Fit) -> Fit:
     seen = (fit.status, fit.job_id, fit.attempts)
-    job_id = jobqueue.job_id_for(ctx, fit.fit_id, fit.runs + 1)
+    job_id = ctx.jobs.job_id_for(fit.fit_id, fit.runs + 1)
     changed = ctx.storage.fits.change(
         fit.fit_id, lambda f: f.reissue(job_id)
         if (f.status, f.job_id, f.attempts) == seen else None,
-        enqueue=jobqueue.enqueuer(ctx, fit.fit_id, job_id))
+        enqueue=ctx.jobs.enqueuer(fit.fit_id, job_id))
     if changed is not None:
         log.warning("fit %s: its queue job %s was stranded; queued again as %s",
                     fit.fit_id, fit.job_id, job_id)
-        jobqueue.forget(ctx, fit.job_id)
+        ctx.jobs.forget(fit.job_id)
     return changed or ctx.storage.fits.get(fit.fit_id) or fit
 
 
@@ -99,19 +98,19 @@ def _hand_over(ctx: Context, fit: Fit) -> Fit:
             fit.fit_id, lambda f: f.fail(f"{message} ({f.attempts} attempts)")
             if (f.status, f.job_id, f.attempts) == seen else None)
     else:
-        job_id = jobqueue.job_id_for(ctx, fit.fit_id, fit.runs + 1)
+        job_id = ctx.jobs.job_id_for(fit.fit_id, fit.runs + 1)
         changed = ctx.storage.fits.change(
             fit.fit_id, lambda f: f.hand_over(f"{message}; it waits for another attempt", job_id)
             if (f.status, f.job_id, f.attempts) == seen else None,
-            enqueue=jobqueue.enqueuer(ctx, fit.fit_id, job_id))
+            enqueue=ctx.jobs.enqueuer(fit.fit_id, job_id))
     if changed is not None:
-        jobqueue.forget(ctx, fit.job_id)
+        ctx.jobs.forget(fit.job_id)
     return changed or ctx.storage.fits.get(fit.fit_id) or fit
 
 
 def sweep(ctx: Context) -> int:
     """One pass over every live fit of this deployment; returns how many changed."""
-    jobqueue.heal_stalled(ctx)
+    ctx.jobs.heal_stalled()
     ids = ctx.storage.fits.live_ids()
     changed = 0
     for fit_id, fit in zip(ids, ctx.storage.fits.get_many(ids), strict=True):

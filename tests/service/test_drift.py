@@ -15,6 +15,7 @@ from service.context import Context
 from service.errors import Conflict, InvalidInput, NotFound
 from service.usecases import drift, fits, groupings, metrics
 from service.usecases.backlog import BACKLOG
+from service.usecases.params import FitParams, group_count, version_number
 
 from ._data import as_table, setup_metric
 
@@ -22,7 +23,7 @@ SHIFTED = "x6"  # wine's flavanoids column
 
 
 def _fit_all(ctx: Context, run_worker_burst, names: list[str]) -> None:
-    ids = [fits.request_fit(ctx, n, {}, "admin")[0]["fit_id"] for n in names]
+    ids = [fits.request_fit(ctx, n, FitParams.parse({}), "admin")[0]["fit_id"] for n in names]
     run_worker_burst(ctx)
     for f in ids:
         out = fits.get_fit(ctx, f)
@@ -32,7 +33,7 @@ def _fit_all(ctx: Context, run_worker_burst, names: list[str]) -> None:
 def _group_in_requests(ctx: Context, name: str, feats: list[str], X: np.ndarray,
                        size: int = 40) -> None:
     for start in range(0, len(X), size):
-        groupings.group(ctx, name, as_table(feats, X[start:start + size]), k=3)
+        groupings.group(ctx, name, as_table(feats, X[start:start + size]), k=group_count(3))
 
 
 def test_steady_records_stay_steady_and_a_shifted_feature_is_flagged_by_name(
@@ -84,13 +85,13 @@ def test_references_live_with_their_versions_and_errors_name_the_field(
             drift.report(ctx, "m", since=bad)
         assert err.value.errors[0]["field"] == "since"
     with pytest.raises(NotFound):
-        drift.report(ctx, "m", version=7)
-    with pytest.raises(InvalidInput):
-        drift.report(ctx, "m", version=0)
+        drift.report(ctx, "m", version=version_number(7))
+    with pytest.raises(InvalidInput):  # the rule the drift query's schema runs
+        version_number(0)
     # a version without a reference (fitted before drift watch): nothing recorded, 409
     ctx.redis.delete(keys.drift_reference("m", 1))
     ctx.cache.clear()
-    groupings.group(ctx, "m", as_table(feats, data[0][0]), k=2)
+    groupings.group(ctx, "m", as_table(feats, data[0][0]), k=group_count(2))
     assert BACKLOG.flush()  # the summary would be written after the answer
     assert not list(ctx.redis.scan_iter(match=keys.metric("m", "drift", "*")))
     with pytest.raises(Conflict):
@@ -98,7 +99,8 @@ def test_references_live_with_their_versions_and_errors_name_the_field(
     assert drift.latest_verdicts(ctx)["m"]["verdict"] is None
     # deleting the metric deletes its references; buckets expire on their own
     _fit_all(ctx, run_worker_burst, ["m"])
-    groupings.group(ctx, "m", as_table(feats, data[0][0]), k=2, version=2)
+    groupings.group(ctx, "m", as_table(feats, data[0][0]), k=group_count(2),
+                    version=version_number(2))
     assert ctx.redis.exists(keys.drift_reference("m", 2))
     uid = ctx.storage.metrics.get("m")["uid"]
     metrics.delete_metric(ctx, "m")

@@ -15,6 +15,7 @@ import numpy as np
 from service.context import Context
 from service.store.codecs import pack_json, unpack_json
 from service.usecases import batches, drift, fits, groupings, metrics
+from service.usecases.params import FitParams
 from tests.datasets import load_open, split_pool
 
 from ._data import as_table
@@ -35,7 +36,7 @@ def _setup(ctx: Context, run_worker_burst, names: list[str]):
         metrics.put_metric(ctx, name, feats)
         for Xb, yb in data:
             batches.add_batch(ctx, name, as_table(feats, Xb, [int(v) for v in yb]))
-    ids = [fits.request_fit(ctx, n, {}, "admin")[0]["fit_id"] for n in names]
+    ids = [fits.request_fit(ctx, n, FitParams.parse({}), "admin")[0]["fit_id"] for n in names]
     run_worker_burst(ctx)
     for f in ids:
         assert fits.get_fit(ctx, f)["status"] == "succeeded"

@@ -21,6 +21,7 @@ from service.context import Context
 from service.core import MetricSelector
 from service.usecases import batches, fits, metrics, queues, versions, warden
 from service.usecases.batches import load_training_data
+from service.usecases.params import FitParams, fit_status, version_number
 
 from ._data import as_table, setup_metric
 
@@ -34,19 +35,19 @@ def _ctx_with(ctx: Context, **changes) -> Context:
 def _expected_decision(ctx: Context, name: str, params: dict, active: int) -> bool:
     """Recompute the when_better rule outside the service: the new configuration's held-out
     ARI against the active version's configuration re-scored on the same folds."""
-    p = fits.normalize_params(params)
+    p = FitParams.parse(params).as_dict()
     data = load_training_data(ctx, name)
     sel = MetricSelector(method=p["method"], alphas=p["alphas"], n_folds=p["n_folds"],
                          max_rank=p["max_rank"], k_max=p["k_max"], random_state=p["seed"])
     sel.fit([(d["X"], np.asarray(d["labels"])) for d in data], [d["stats"] for d in data])
-    old = versions.get_version(ctx, name, active)
+    old = versions.get_version(ctx, name, version_number(active))
     old_ari = sel.evaluate(old["method"], old["alpha"])["score"]["ari"]
     return sel.report_["score"]["ari"] >= old_ari
 
 
 def test_fit_succeeds_and_version_1_is_active(ctx: Context, run_worker_burst) -> None:
     _, _, ids = setup_metric(ctx, "m", dataset="wine", n=4)
-    fit, created = fits.request_fit(ctx, "m", {}, "etl")
+    fit, created = fits.request_fit(ctx, "m", FitParams.parse({}), "etl")
     assert created and fit["status"] == "waiting" and fit["version"] is None
     job_id = ctx.storage.fits.get(fit["fit_id"]).job_id
     run_worker_burst(ctx)
@@ -61,7 +62,7 @@ def test_fit_succeeds_and_version_1_is_active(ctx: Context, run_worker_burst) ->
     assert meta == {"fit_id": fit["fit_id"], "key_prefix": ctx.settings.key_prefix}
     m = metrics.get_metric(ctx, "m")
     assert (m["active_version"], m["versions"]) == (1, 1)
-    v = versions.get_version(ctx, "m", 1)
+    v = versions.get_version(ctx, "m", version_number(1))
     assert v["active"] and v["parent"] is None and v["fit_id"] == fit["fit_id"]
     stored = {b["batch_id"]: b["sha256"] for b in batches.list_batches(ctx, "m")["batches"]}
     assert {b["batch_id"]: b["sha256"] for b in v["batches"]} == stored
@@ -83,7 +84,7 @@ def test_activation_policies(ctx: Context, run_worker_burst) -> None:
     setup_metric(ctx, "m", dataset="wine", n=4)
 
     def fit(params: dict) -> dict:
-        f, _ = fits.request_fit(ctx, "m", params, "admin")
+        f, _ = fits.request_fit(ctx, "m", FitParams.parse(params), "admin")
         run_worker_burst(ctx)
         out = fits.get_fit(ctx, f["fit_id"])
         assert out["status"] == "succeeded", out
@@ -91,7 +92,7 @@ def test_activation_policies(ctx: Context, run_worker_burst) -> None:
 
     first = fit({})
     assert first["version"] == 1 and first["decision"]["activated"]
-    learned = versions.get_version(ctx, "m", 1)
+    learned = versions.get_version(ctx, "m", version_number(1))
     assert learned["method"] != "euclidean"  # on wine a learned metric wins the CV
 
     worse = {"method": "euclidean"}
@@ -100,7 +101,7 @@ def test_activation_policies(ctx: Context, run_worker_burst) -> None:
     assert second["decision"]["activated"] is expected is False
     assert "stays active" in second["decision"]["reason"]
     assert metrics.get_metric(ctx, "m")["active_version"] == 1
-    assert versions.get_version(ctx, "m", 2)["parent"] == 1
+    assert versions.get_version(ctx, "m", version_number(2))["parent"] == 1
 
     never = fit({"activate": "by_hand", "seed": 1})
     assert never["decision"]["activated"] is False
@@ -124,27 +125,29 @@ def test_activation_policies(ctx: Context, run_worker_burst) -> None:
 def test_identical_queued_fit_is_returned_not_queued_again(ctx: Context,
                                                            run_worker_burst) -> None:
     setup_metric(ctx, "m", n=3)
-    a, created_a = fits.request_fit(ctx, "m", {"method": "diagonal"}, "admin")
-    b, created_b = fits.request_fit(ctx, "m", {"method": "diagonal", "n_folds": 5}, "etl")
+    a, created_a = fits.request_fit(ctx, "m", FitParams.parse({"method": "diagonal"}), "admin")
+    b, created_b = fits.request_fit(
+        ctx, "m", FitParams.parse({"method": "diagonal", "n_folds": 5}), "etl")
     assert created_a and not created_b and a["fit_id"] == b["fit_id"]
-    c, created_c = fits.request_fit(ctx, "m", {"method": "diagonal", "seed": 3}, "admin")
+    c, created_c = fits.request_fit(
+        ctx, "m", FitParams.parse({"method": "diagonal", "seed": 3}), "admin")
     assert created_c and c["fit_id"] != a["fit_id"]
     assert ctx.queue.count == 2
     run_worker_burst(ctx)
     assert {f["status"] for f in fits.list_fits(ctx, "m")["fits"]} == {"succeeded"}
-    d, created_d = fits.request_fit(ctx, "m", {"method": "diagonal"}, "admin")
+    d, created_d = fits.request_fit(ctx, "m", FitParams.parse({"method": "diagonal"}), "admin")
     assert created_d and d["fit_id"] != a["fit_id"]
 
 
 def test_failed_fit_is_retried_on_request(ctx: Context, run_worker_burst) -> None:
     feats, data, ids = setup_metric(ctx, "m", n=2)
-    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    fit, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     batches.delete_batch(ctx, "m", ids[1])  # the fit will find a single batch
     run_worker_burst(ctx)
     failed = fits.get_fit(ctx, fit["fit_id"])
     assert failed["status"] == "failed" and "at least 2" in failed["error"]
     assert failed["version"] is None and metrics.get_metric(ctx, "m")["versions"] == 0
-    assert fits.list_fits(ctx, status="failed")["fits"] == [failed]
+    assert fits.list_fits(ctx, status=fit_status("failed"))["fits"] == [failed]
     with pytest.raises(fits.Conflict):
         fits.retry_fit(ctx, fit["fit_id"], "admin")  # still one batch
     X, y = data[1]
@@ -161,7 +164,7 @@ def test_failed_fit_is_retried_on_request(ctx: Context, run_worker_burst) -> Non
 
 def test_fit_of_a_deleted_metric_leaves_nothing(ctx: Context, run_worker_burst) -> None:
     setup_metric(ctx, "m", n=2)
-    fits.request_fit(ctx, "m", {}, "admin")
+    fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     metrics.delete_metric(ctx, "m")
     run_worker_burst(ctx)
     assert list(ctx.redis.scan_iter(match=ctx.settings.key_prefix + ":metric:*")) == []
@@ -179,7 +182,7 @@ def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypat
         return original(self, *args, **kwargs)
 
     monkeypatch.setattr(MetricSelector, "fit", delete_then_fit)
-    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    fit, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     job_id = ctx.storage.fits.get(fit["fit_id"]).job_id
     run_worker_burst(ctx)
     assert Job.fetch(job_id, connection=ctx.redis).get_status() == "finished"
@@ -188,14 +191,14 @@ def test_metric_deleted_during_the_fit(ctx: Context, run_worker_burst, monkeypat
     assert ctx.storage.versions.numbers("m") == [] and ctx.storage.fits.get(fit["fit_id"]) is None
     monkeypatch.setattr(MetricSelector, "fit", original)
     setup_metric(ctx, "m", n=2)
-    again, _ = fits.request_fit(ctx, "m", {}, "admin")
+    again, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     run_worker_burst(ctx)
     assert fits.get_fit(ctx, again["fit_id"])["version"] == 1
 
 
 def test_lost_queue_job_is_reported_failed(ctx: Context, run_worker_burst) -> None:
     setup_metric(ctx, "m", n=2)
-    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    fit, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     Job.fetch(ctx.storage.fits.get(fit["fit_id"]).job_id, connection=ctx.redis).delete()
     # reads never write: the fit shows queued until the warden looks at it
     assert fits.get_fit(ctx, fit["fit_id"])["status"] == "waiting"
@@ -203,7 +206,7 @@ def test_lost_queue_job_is_reported_failed(ctx: Context, run_worker_burst) -> No
     lost = fits.get_fit(ctx, fit["fit_id"])
     assert lost["status"] == "failed" and "no longer exists" in lost["error"]
     # the dedupe slot is free again, and the fit can be retried
-    other, created = fits.request_fit(ctx, "m", {}, "admin")
+    other, created = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     assert created and other["fit_id"] != fit["fit_id"]
     fits.retry_fit(ctx, fit["fit_id"], "admin")
     run_worker_burst(ctx)
@@ -219,7 +222,7 @@ def test_a_stranded_job_is_issued_again(ctx: Context, run_worker_burst, taken: b
     from rq import Queue, Worker
 
     setup_metric(ctx, "m", n=2)
-    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    fit, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     old_job = ctx.storage.fits.get(fit["fit_id"]).job_id
     job, _ = Queue.dequeue_any([ctx.queue], timeout=None, connection=ctx.redis)
     assert job.id == old_job and ctx.queue.count == 0
@@ -245,7 +248,7 @@ def test_timeout_fails_the_fit(ctx: Context, run_worker_burst, monkeypatch) -> N
     short = _ctx_with(ctx, fit_timeout=1, fit_retries=0)
     setup_metric(short, "m", n=2)
     monkeypatch.setattr(MetricSelector, "fit", lambda self, *a, **k: time.sleep(30))
-    fit, _ = fits.request_fit(short, "m", {}, "admin")
+    fit, _ = fits.request_fit(short, "m", FitParams.parse({}), "admin")
     started = time.monotonic()
     run_worker_burst(short)
     assert time.monotonic() - started < 25
@@ -272,7 +275,7 @@ def test_killed_work_horse_is_retried_or_failed(ctx: Context, run_worker_burst, 
         return original(self, *args, **kwargs)
 
     monkeypatch.setattr(MetricSelector, "fit", die_once)
-    fit, _ = fits.request_fit(c, "m", {}, "admin")
+    fit, _ = fits.request_fit(c, "m", FitParams.parse({}), "admin")
     run_worker_burst(c)
     out = fits.get_fit(c, fit["fit_id"])
     if retries:
@@ -298,7 +301,7 @@ def test_worker_killed_mid_fit(ctx: Context, run_worker_burst, retries: int) -> 
     worker completes, or fails it when no attempt is left."""
     c = _ctx_with(ctx, fit_retries=retries, lease_seconds=1)
     setup_metric(c, "m", n=2)
-    fit, _ = fits.request_fit(c, "m", {}, "admin")
+    fit, _ = fits.request_fit(c, "m", FitParams.parse({}), "admin")
     s = c.settings
     env = {**os.environ, "PYTHONPATH": str(ROOT), "LIKEWISE_REDIS_URL": s.redis_url,
            "LIKEWISE_KEY_PREFIX": s.key_prefix, "LIKEWISE_QUEUE": s.queue_name,
@@ -335,7 +338,7 @@ def test_the_queue_view_hides_a_fit_of_a_metric_the_caller_may_not_touch(ctx: Co
     from rq import Queue, Worker
 
     setup_metric(ctx, "m", n=2)
-    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    fit, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     job, _ = Queue.dequeue_any([ctx.queue], timeout=None, connection=ctx.redis)
     worker = Worker([ctx.queue], connection=ctx.redis, name=f"{ctx.settings.key_prefix}-busy")
     worker.register_birth()

@@ -13,6 +13,7 @@ from rq import Worker
 
 from service.context import Context
 from service.usecases import fits, queues
+from service.usecases.params import FitParams
 
 from ._data import setup_metric
 
@@ -25,9 +26,9 @@ def test_overview_counts_waiting_and_done(ctx: Context, run_worker_burst) -> Non
                                 "failed": 0, "done": 0, "oldest_waiting_seconds": None}]
     setup_metric(ctx, "m", n=2)
     before = time.time()
-    fits.request_fit(ctx, "m", {"method": "euclidean"}, "admin")
+    fits.request_fit(ctx, "m", FitParams.parse({"method": "euclidean"}), "admin")
     enqueued = time.time()
-    fits.request_fit(ctx, "m", {"method": "diagonal"}, "admin")
+    fits.request_fit(ctx, "m", FitParams.parse({"method": "diagonal"}), "admin")
     asked = time.time()
     q = queues.queue_overview(ctx)["queues"][0]
     answered = time.time()

@@ -17,6 +17,8 @@ from service.lifecycle import Fit, FitStatus
 from service.store import ActiveChanged, DuplicateBatch, MissingMetric, StaleAttempt, Storage
 from service.usecases import batches, metrics, versions
 from service.usecases.batches import load_training_data
+from service.usecases.params import fit_status, version_number
+from service.usecases.params import reason as parse_reason
 
 from ._data import as_table, open_batches, setup_metric, table_of
 
@@ -188,7 +190,7 @@ def test_both_table_forms_give_the_same_batch(ctx: Context) -> None:
 def test_activation_of_a_missing_version_changes_nothing(ctx: Context) -> None:
     metrics.put_metric(ctx, "m", ["a"])
     with pytest.raises(NotFound):
-        versions.activate(ctx, "m", 3, "roll back", "admin")
+        versions.activate(ctx, "m", version_number(3), parse_reason("roll back"), "admin")
     assert ctx.storage.versions.active("m") is None
     assert versions.history(ctx, "m") == {"history": [], "next_cursor": None}
 
@@ -251,7 +253,8 @@ def test_fit_records_stored_with_the_former_waiting_status_read_as_waiting(
     shown = fit_uc.get_fit(ctx, fit.fit_id)
     assert (shown["status"], shown["stage"]) == ("waiting", "waiting")
     assert shown["params"]["activate"] == "when_better"
-    assert [f["fit_id"] for f in fit_uc.list_fits(ctx, status="waiting")["fits"]] == [fit.fit_id]
+    waiting = fit_uc.list_fits(ctx, status=fit_status("waiting"))["fits"]
+    assert [f["fit_id"] for f in waiting] == [fit.fit_id]
     assert ctx.storage.fits.get(fit.fit_id).live
     # the dedupe check reads the raw status too: the old record still holds its slot
     again = dataclasses.replace(fit, fit_id="c" * 20)

@@ -8,6 +8,16 @@ from service.context import Context
 from service.errors import Conflict, InvalidInput, NotFound, PayloadTooLarge, ServiceError
 from service.tables import from_json
 from service.usecases import batches, fits, groupings, metrics, versions
+from service.usecases.params import (
+    FitParams,
+    description,
+    feature_names,
+    fit_status,
+    group_count,
+    metric_name,
+    version_number,
+)
+from service.usecases.params import reason as parse_reason
 
 from ._data import as_table, setup_metric, table_of
 
@@ -48,15 +58,14 @@ def test_metric_name_rule(ctx: Context, name) -> None:
     ([], "features"), ("a", "features"), (["a", "a"], "features"),
     (["a", 3], "features[1]"), ([" a"], "features[0]"), (["a\nb"], "features[0]"),
 ])
-def test_metric_features_are_validated(ctx: Context, features, field) -> None:
-    _raises(InvalidInput, 422, field, metrics.put_metric, ctx, "m", features)
-    assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
+def test_metric_features_are_validated(features, field) -> None:
+    _raises(InvalidInput, 422, field, feature_names, features)  # the schema's rule
 
 
 def test_too_many_features_and_long_description(ctx: Context) -> None:
     too_many = [f"f{i}" for i in range(ctx.settings.max_batch_features + 1)]
     _raises(InvalidInput, 422, "features", metrics.put_metric, ctx, "m", too_many)
-    _raises(InvalidInput, 422, "description", metrics.put_metric, ctx, "m", ["a"], "x" * 2001)
+    _raises(InvalidInput, 422, "description", description, "x" * 2001)
     assert metrics.list_metrics(ctx) == {"metrics": [], "next_cursor": None}
 
 
@@ -76,8 +85,9 @@ def test_missing_metric_is_404_everywhere(ctx: Context) -> None:
         (metrics.get_metric, ()), (metrics.delete_metric, ()),
         (_post_batch, (table, [0, 1])), (batches.list_batches, ()),
         (batches.get_batch, ("0" * 16,)), (batches.delete_batch, ("0" * 16,)),
-        (fits.request_fit, ({}, "admin")), (versions.list_versions, ()),
-        (versions.get_version, (1,)), (versions.activate, (1, "r", "admin")),
+        (fits.request_fit, (FitParams(), "admin")), (versions.list_versions, ()),
+        (versions.get_version, (version_number(1),)),
+        (versions.activate, (version_number(1), parse_reason("r"), "admin")),
         (versions.history, ()), (groupings.group, (table_of(table),)),
     ]:
         _raises(NotFound, 404, None, fn, ctx, "nope", *args)
@@ -87,7 +97,7 @@ def test_missing_metric_is_404_everywhere(ctx: Context) -> None:
 
 def test_delete_metric_removes_every_key(ctx: Context) -> None:
     setup_metric(ctx, "m", n=2)
-    fits.request_fit(ctx, "m", {}, "admin")
+    fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     metrics.delete_metric(ctx, "m")
     assert list(ctx.redis.scan_iter(match=ctx.settings.key_prefix + ":metric:*")) == []
     assert ctx.storage.fits.ids(metric_names=["m"]) == [] and ctx.storage.fits.live_ids() == []
@@ -160,21 +170,27 @@ def test_unknown_batch_ids_are_404(ctx: Context) -> None:
 # ---- fits ----------------------------------------------------------------------------
 @pytest.mark.parametrize("params,field", [
     ({"method": "best"}, "method"), ({"activate": "maybe"}, "activate"),
-    ({"alphas": []}, "alphas"), ({"alphas": [0.1, -1]}, "alphas"),
-    ({"alphas": [True]}, "alphas"), ({"alphas": "0.1"}, "alphas"),
+    ({"alphas": []}, "alphas"), ({"alphas": [0.1, -1]}, "alphas[1]"),
+    ({"alphas": [True]}, "alphas[0]"), ({"alphas": "0.1"}, "alphas"),
     ({"n_folds": 1}, "n_folds"), ({"n_folds": 2.5}, "n_folds"),
     ({"max_rank": 0}, "max_rank"), ({"k_max": 1}, "k_max"), ({"seed": -1}, "seed"),
     ({"colour": "red"}, "colour"),
 ])
-def test_bad_fit_params_are_422_and_queue_nothing(ctx: Context, params, field) -> None:
-    setup_metric(ctx, "m", n=2)
-    _raises(InvalidInput, 422, field, fits.request_fit, ctx, "m", params, "admin")
-    _nothing_stored(ctx, n_batches=2)
+def test_bad_fit_params_are_422(params, field) -> None:
+    # the rules the fit schema runs (a request_fit only ever sees FitParams)
+    _raises(InvalidInput, 422, field, FitParams.parse, params)
+
+
+def test_fit_params_are_canonical() -> None:
+    p = FitParams.parse({"alphas": [3, 1, 1.0], "seed": None, "max_rank": None})
+    assert p == FitParams(alphas=(1.0, 3.0), seed=0)  # null: the default, where allowed
+    assert p.as_dict() == {"method": "auto", "activate": "when_better", "alphas": [1.0, 3.0],
+                           "n_folds": 5, "max_rank": None, "k_max": 10, "seed": 0}
 
 
 def test_fit_needs_two_batches(ctx: Context) -> None:
     setup_metric(ctx, "m", n=1)
-    _raises(Conflict, 409, None, fits.request_fit, ctx, "m", {}, "admin")
+    _raises(Conflict, 409, None, fits.request_fit, ctx, "m", FitParams(), "admin")
     _nothing_stored(ctx, n_batches=1)
 
 
@@ -182,13 +198,14 @@ def test_fit_lookups(ctx: Context) -> None:
     for bad in ["0" * 20, "nope", None]:
         _raises(NotFound, 404, None, fits.get_fit, ctx, bad)
         _raises(NotFound, 404, None, fits.retry_fit, ctx, bad, "admin")
-    _raises(InvalidInput, 422, "status", fits.list_fits, ctx, None, "done")
+    _raises(InvalidInput, 422, "status", fit_status, "done")
     setup_metric(ctx, "m", n=2)
-    fit, created = fits.request_fit(ctx, "m", {"method": "euclidean"}, "etl")
+    fit, created = fits.request_fit(ctx, "m", FitParams.parse({"method": "euclidean"}), "etl")
     assert created and fit["status"] == "waiting" and fit["requested_by"] == "etl"
     _raises(Conflict, 409, None, fits.retry_fit, ctx, fit["fit_id"], "admin")
-    assert fits.list_fits(ctx, status="waiting")["fits"] == [fit]
-    assert fits.list_fits(ctx, "m", "failed") == {"fits": [], "next_cursor": None}
+    assert fits.list_fits(ctx, status=fit_status("waiting"))["fits"] == [fit]
+    assert fits.list_fits(ctx, metric_name("m"), fit_status("failed")) == {
+        "fits": [], "next_cursor": None}
     assert ctx.queue.count == 1
 
 
@@ -196,16 +213,17 @@ def test_fit_lookups(ctx: Context) -> None:
 def test_versions_and_groupings_before_any_fit(ctx: Context) -> None:
     feats, data, _ = setup_metric(ctx, "m", n=2)
     assert versions.list_versions(ctx, "m") == {"versions": [], "next_cursor": None}
-    _raises(NotFound, 404, None, versions.get_version, ctx, "m", 1)
-    for bad in [0, -1, "1", True, None]:
-        _raises(InvalidInput, 422, "version", versions.get_version, ctx, "m", bad)
-        _raises(InvalidInput, 422, "version", versions.activate, ctx, "m", bad, "r", "admin")
-    _raises(InvalidInput, 422, "reason", versions.activate, ctx, "m", 1, 5, "admin")
-    _raises(NotFound, 404, None, versions.activate, ctx, "m", 1, "r", "admin")
+    one = version_number(1)
+    _raises(NotFound, 404, None, versions.get_version, ctx, "m", one)
+    for bad in [0, -1, "1", True, None]:  # the rules the schemas and views run
+        _raises(InvalidInput, 422, "version", version_number, bad)
+    for bad in [5, None, "x" * 1001]:
+        _raises(InvalidInput, 422, "reason", parse_reason, bad)
+    _raises(NotFound, 404, None, versions.activate, ctx, "m", one, parse_reason("r"), "admin")
     table = as_table(feats, data[0][0])
     _raises(Conflict, 409, None, groupings.group, ctx, "m", table)
-    _raises(Conflict, 409, None, groupings.group, ctx, "m", table, "auto")
-    _raises(NotFound, 404, None, groupings.group, ctx, "m", table, 2, 1)
+    _raises(Conflict, 409, None, groupings.group, ctx, "m", table, group_count("auto"))
+    _raises(NotFound, 404, None, groupings.group, ctx, "m", table, group_count(2), one)
     assert versions.history(ctx, "m") == {"history": [], "next_cursor": None}
     assert metrics.get_metric(ctx, "m")["active_version"] is None
 

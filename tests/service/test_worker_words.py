@@ -17,6 +17,7 @@ import pytest
 from service import logs
 from service.context import Context
 from service.usecases import fits
+from service.usecases.params import FitParams
 from tests.service._data import setup_metric
 from workers.logwords import WORDS, QueueWords
 
@@ -35,7 +36,7 @@ def _env(ctx: Context, **extra: str) -> dict[str, str]:
 
 def test_a_worker_run_logs_in_our_words_only(ctx: Context) -> None:
     setup_metric(ctx, "m", n=3)
-    fit, _ = fits.request_fit(ctx, "m", {}, "admin")
+    fit, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
     name = f"{ctx.settings.key_prefix}-words"
     proc = subprocess.run(
         [sys.executable, "-m", "service.cli", "worker", "--until-empty", "--name", name],
