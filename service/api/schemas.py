@@ -220,7 +220,7 @@ class FitQuerySchema(PageQuerySchema):
 
 class DriftQuerySchema(_Strict):
     version = Ruled(params.version_number, query=True, max_digits=18)
-    since = fields.String(validate=validate.Length(min=1, max=64))
+    since = Ruled(params.moment)
 
 
 # a \uD800-\uDFFF escape in the raw text: json.loads pairs the valid ones up, but keeps

@@ -38,7 +38,7 @@ from service.core.drift import (
     empty_summary,
     summarise,
 )
-from service.errors import Conflict, InvalidInput, NotFound
+from service.errors import Conflict, NotFound
 from service.store.codecs import pack_json, unpack_json
 from service.tables import encoded_names
 
@@ -113,21 +113,6 @@ def _write(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMet
 
 
 # ---- reading -------------------------------------------------------------------------
-def _check_since(since: Any, now: datetime) -> datetime | None:
-    if since is None:
-        return None
-    try:
-        at = datetime.fromisoformat(since) if isinstance(since, str) else None
-    except ValueError:
-        at = None
-    if at is None:
-        raise InvalidInput.field("since", "an ISO 8601 time, e.g. 2024-05-01T08:00:00Z")
-    at = at if at.tzinfo is not None else at.replace(tzinfo=timezone.utc)
-    if at > now:
-        raise InvalidInput.field("since", "a time in the past")
-    return at
-
-
 def _live(ctx: Context, metric: dict[str, Any], n: int, ref: Reference, d: int,
           first: int, last: int) -> tuple[Summary, int, int, int]:
     """Merged buckets of hours ``first..last``: summary, requests, hours with data,
@@ -146,10 +131,10 @@ def _live(ctx: Context, metric: dict[str, Any], n: int, ref: Reference, d: int,
             sum(b.imputed for b in buckets))
 
 
-def report(ctx: Context, name: str, version: int | None = None, since: Any = None
-           ) -> dict[str, Any]:
+def report(ctx: Context, name: str, version: int | None = None,
+           since: datetime | None = None) -> dict[str, Any]:
     """Drift of the records grouped with ``version`` (default: the active one) since
-    ``since`` (ISO 8601; default and earliest: ``drift_hours`` ago; buckets are
+    ``since`` (``params.moment``; default and earliest: ``drift_hours`` ago; buckets are
     hourly, so it counts from the start of its hour). This process's own summaries
     still in its backlog are written first; another process's land within moments."""
     from .groupings import load_version_metric
@@ -157,7 +142,7 @@ def report(ctx: Context, name: str, version: int | None = None, since: Any = Non
     BACKLOG.flush()
     metric = require_metric(ctx, name)
     now = _now()
-    at = _check_since(since, now)
+    at = since
     version = chosen_version(ctx, name, version)
     # 404 for a missing version; scored per matrix column (a level of a categorical
     # feature is a column of its own)

@@ -21,6 +21,7 @@ import math
 import re
 from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass
+from datetime import datetime, timezone
 from typing import Any
 
 from service.config import MAX_FEATURES
@@ -88,6 +89,21 @@ def group_count(value: Any, field: str = "k") -> GroupCount | None:
     if not _whole(value) or value < 1:
         raise InvalidInput.field(field, 'a whole number ≥ 1 or "auto"')
     return GroupCount(value)
+
+
+def moment(value: Any, field: str = "since") -> datetime:
+    """An ISO 8601 time in the past (UTC when it names no zone), at most 64 characters."""
+    try:
+        at = datetime.fromisoformat(value) if isinstance(value, str) and len(value) <= 64 \
+            else None
+    except ValueError:
+        at = None
+    if at is None:
+        raise InvalidInput.field(field, "an ISO 8601 time, e.g. 2024-05-01T08:00:00Z")
+    at = at if at.tzinfo is not None else at.replace(tzinfo=timezone.utc)
+    if at > datetime.now(timezone.utc):
+        raise InvalidInput.field(field, "a time in the past")
+    return at
 
 
 def reason(value: Any, field: str = "reason") -> Reason:

@@ -15,7 +15,7 @@ from service.context import Context
 from service.errors import Conflict, InvalidInput, NotFound
 from service.usecases import drift, fits, groupings, metrics
 from service.usecases.backlog import BACKLOG
-from service.usecases.params import FitParams, group_count, version_number
+from service.usecases.params import FitParams, group_count, moment, version_number
 
 from ._data import as_table, setup_metric
 
@@ -68,7 +68,7 @@ def test_steady_records_stay_steady_and_a_shifted_feature_is_flagged_by_name(
         "moved": {"version": 1, "verdict": "drifted", "records": 120, "flagged": [SHIFTED]},
     }
     # the same report with an explicit version and a since within the hour
-    again = drift.report(ctx, "moved", version=1, since=out["until"])
+    again = drift.report(ctx, "moved", version=1, since=moment(out["until"]))
     assert again["records"] == 120 and again["flagged"] == [SHIFTED]
 
 
@@ -80,9 +80,9 @@ def test_references_live_with_their_versions_and_errors_name_the_field(
     _fit_all(ctx, run_worker_burst, ["m"])
     keys = ctx.storage.keys
     assert ctx.redis.exists(keys.drift_reference("m", 1))
-    for bad in ["yesterday", 3, "2999-01-01T00:00:00Z"]:
-        with pytest.raises(InvalidInput) as err:
-            drift.report(ctx, "m", since=bad)
+    for bad in ["yesterday", 3, "2999-01-01T00:00:00Z", "2024-05-01T08:00:00Z" + " " * 60]:
+        with pytest.raises(InvalidInput) as err:  # the rule the drift query's schema runs
+            moment(bad)
         assert err.value.errors[0]["field"] == "since"
     with pytest.raises(NotFound):
         drift.report(ctx, "m", version=version_number(7))
