@@ -66,6 +66,36 @@ def enqueuer(ctx: Context, fit_id: str, job_id: str) -> Callable[[Pipeline], Non
     return enqueue
 
 
+RUN_FUNC = "workers.jobs.run_grouping"
+RUN_FAILURE_CALLBACK = "workers.jobs.on_run_failure"
+
+
+def run_job_id_for(ctx: Context, run_id: str, run: int) -> str:
+    """The job id of run ``run`` of the queue for a grouping run (a new job after a
+    worker died is a new one)."""
+    slug = re.sub(r"[^A-Za-z0-9_-]", "_", ctx.settings.key_prefix)
+    return f"{slug}-grun-{run_id}-{run}"
+
+
+def run_enqueuer(ctx: Context, run_id: str, job_id: str) -> Callable[[Pipeline], None]:
+    """A callback that enqueues a grouping run's job on a storage pipeline (same EXEC),
+    on the fits' queue: every ``likewise worker`` serves both. No queue retry: the
+    warden hands a run whose worker died to a new job."""
+    from rq import Callback
+
+    s = ctx.settings
+
+    def enqueue(pipe: Pipeline) -> None:
+        ctx.queue.enqueue_call(
+            RUN_FUNC, args=(run_id,), job_id=job_id, timeout=s.fit_timeout,
+            result_ttl=s.run_result_hours * 3600, failure_ttl=FAILURE_TTL,
+            on_failure=Callback(RUN_FAILURE_CALLBACK),
+            meta={"key_prefix": s.key_prefix, "run_id": run_id},
+            description=f"likewise grouping run {run_id}", pipeline=pipe)
+
+    return enqueue
+
+
 def job_state(ctx: Context, job_id: str) -> tuple[JobState, str | None]:
     """What became of a job, and its last error line when it failed."""
     from rq.exceptions import NoSuchJobError

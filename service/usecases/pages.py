@@ -23,11 +23,13 @@ MAX_LIMIT = 500
 MAX_CURSOR = 512  # characters
 
 
-def check_limit(limit: Any) -> int:
+def check_limit(limit: Any, default: int = DEFAULT_LIMIT, most: int = MAX_LIMIT) -> int:
+    """``limit`` checked (``default`` when absent); a list of its own may allow up to
+    ``most`` items a page."""
     if limit is None:
-        return DEFAULT_LIMIT
-    if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= MAX_LIMIT:
-        raise InvalidInput.field("limit", f"a whole number from 1 to {MAX_LIMIT}")
+        return default
+    if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= most:
+        raise InvalidInput.field("limit", f"a whole number from 1 to {most}")
     return limit
 
 

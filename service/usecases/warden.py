@@ -16,6 +16,8 @@ The warden runs in every worker process (``workers.worker``, every
 - a fit whose job failed or was stopped fails with the job's error;
 - a running fit whose job waits for a retry goes back to waiting.
 
+Grouping runs follow the same rules (:func:`service.usecases.grouping_runs.check_run`).
+
 Every write is fenced on the job id the fit record names, so a fit that moved on
 (retried by a person, finished meanwhile) is left alone.
 """
@@ -30,6 +32,8 @@ from service import jobqueue
 from service.jobqueue import JobState
 from service.lifecycle import Fit, FitStatus
 from service.store import UNAVAILABLE
+
+from . import grouping_runs
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -110,7 +114,8 @@ def _hand_over(ctx: Context, fit: Fit) -> Fit:
 
 
 def sweep(ctx: Context) -> int:
-    """One pass over every live fit of this deployment; returns how many changed."""
+    """One pass over every live fit and grouping run of this deployment; returns how
+    many changed."""
     jobqueue.heal_stalled(ctx)
     ids = ctx.storage.fits.live_ids()
     changed = 0
@@ -120,7 +125,7 @@ def sweep(ctx: Context) -> int:
             continue
         if check_fit(ctx, fit) != fit:
             changed += 1
-    return changed
+    return changed + grouping_runs.sweep(ctx)  # grouping runs: the same rules, their own
 
 
 class Warden(threading.Thread):
