@@ -38,6 +38,7 @@ bench: $(STAMP)
 	$(BIN)/python bench/fit_budget.py
 	$(BIN)/python bench/store_codecs.py
 	$(BIN)/python bench/drift_overhead.py
+	$(BIN)/python bench/grouping_runs.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

@@ -68,3 +68,9 @@ def test_grouping_bench_runs_quick() -> None:
 def test_throughput_bench_runs_quick() -> None:
     out = _run("throughput.py", "--quick")
     assert "reference: group_records" in out and "target: 4 clients" in out
+
+
+def test_grouping_runs_bench_runs_small() -> None:
+    out = _run("grouping_runs.py", "--records", "3000")
+    assert out.count(" arrow ") == 1 and out.count(" parquet ") == 1
+    assert "same labels as in process: yes" in out and "target:" in out
