@@ -66,12 +66,14 @@ def start_run(ctx: Context, name: str, table: Table, k: int | str | None = None,
     n = X.shape[0]
     if p.k is not None and p.k > n:
         raise InvalidInput.field("k", f"at most {n}, the number of records")
-    with np.errstate(over="ignore", invalid="ignore"):
-        row = overflowing_row(p.fitted.transform(X))
-    if row is not None:
-        raise overflow_error(table, row)
     size = CHUNK_ROWS
-    chunks = [pack_matrix(X[i:i + size]) for i in range(0, n, size)]
+    chunks = []
+    for i in range(0, n, size):  # one chunk mapped at a time: memory stays bounded
+        with np.errstate(over="ignore", invalid="ignore"):
+            row = overflowing_row(p.fitted.transform(X[i:i + size]))
+        if row is not None:
+            raise overflow_error(table, i + row)
+        chunks.append(pack_matrix(X[i:i + size]))
     id_chunks = None if p.ids is None else [
         pack_json(p.ids[i:i + size]) for i in range(0, n, size)]
     run_id = secrets.token_hex(10)

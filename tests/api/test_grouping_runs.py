@@ -165,6 +165,9 @@ def test_arrow_and_parquet_bodies_and_arrow_pages(
     ({"columns": IRIS_FEATURES, "rows": [[1, 2, 3, 4]], "version": 9}, "", 404, None),
     ({"columns": IRIS_FEATURES, "rows": [[1, 2, 3, 4]]}, "?id_column=nope", 422, "id_column"),
     ({"columns": IRIS_FEATURES, "rows": [[1e308, 2, 3, 4]], "k": 1}, "", 422, "rows[0]"),
+    # in the second chunk (of 64 here): the row is named by its place in the table
+    ({"columns": IRIS_FEATURES, "rows": [[1, 2, 3, 4]] * 70 + [[1, 2, 1e308, 4]], "k": 1},
+     "", 422, "rows[70]"),
 ])
 def test_a_bad_request_stores_nothing(api: SpecClient, fitted: dict[str, Any], unchanged,
                                       body: dict, query: str, status: int,
