@@ -37,6 +37,7 @@ from . import drift, pages
 from .backlog import BACKLOG
 from .fit_exec import Lease
 from .groupings import json_margins, load_version_metric, overflow_error, prepare
+from .metrics import check_name
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -90,6 +91,7 @@ def start_run(ctx: Context, name: str, table: Table, k: int | str | None = None,
 
 
 def _load(ctx: Context, name: str, run_id: str) -> Run:
+    check_name(name)
     run = ctx.storage.runs.get(run_id) if RUN_ID_RE.fullmatch(run_id or "") else None
     if run is None or run.metric != name:
         raise NotFound(f"metric {name!r} has no grouping run {run_id!r} (results are kept "
