@@ -124,14 +124,14 @@ def result_columns(ctx: Context, name: str, run_id: str, limit: int | None = Non
     size = run.chunk_rows
     first, last = start // size, (end - 1) // size
     blobs = ctx.storage.runs.results(run, range(first, last + 1))
-    if any(out is None for out, _ in blobs):
+    if any(out is None or (run.has_ids and id_blob is None) for out, id_blob in blobs):
         raise NotFound(f"the results of grouping run {run_id} have expired")
     values = np.concatenate([unpack_matrix(out) for out, _ in blobs])
     lo, hi = start - first * size, end - first * size
     values = values[lo:hi]
     ids = None
     if run.has_ids:
-        ids = [v for _, blob in blobs for v in unpack_json(blob or pack_json([]))][lo:hi]
+        ids = [v for _, blob in blobs if blob is not None for v in unpack_json(blob)][lo:hi]
     return {"start": start, "labels": values[:, 0].astype(np.int64),
             "distances": values[:, 1], "margins": values[:, 2], "ids": ids,
             "next_cursor": pages.encode(kind, end) if end < run.n_records else None}

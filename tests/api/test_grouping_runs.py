@@ -303,3 +303,17 @@ def test_a_run_with_no_attempts_left_fails_and_drops_its_records(
     assert run["status"] == "failed" and "attempts" in run["error"] and run["expires_at"]
     assert ctx.redis.exists(ctx.storage.keys.run_input(run_id, 0)) == 0
     assert_problem(api.get(f"{location}/results"), 409)
+
+
+def test_ids_of_mixed_types_come_back_as_posted_and_as_text_in_arrow(
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], run_worker_burst, iris
+) -> None:
+    _, records = iris
+    mixed = [{**r, "id": i if i % 2 else f"r{i}"} for i, r in enumerate(records[:10])]
+    location = _start(api, {"records": mixed, "k": 2})
+    _done(api, ctx, run_worker_burst, location)
+    got, _ = _all_pages(api, location, limit=10)
+    assert got["ids"] == [r["id"] for r in mixed]
+    resp = api.get(f"{location}/results", headers={"Accept": ARROW})
+    ids = pa_ipc.open_stream(resp.data).read_all().column("id").to_pylist()
+    assert ids == [str(r["id"]) for r in mixed]
