@@ -10,7 +10,8 @@ same table — feeds the drift watch once, and writes result chunks; the input c
 are deleted when the run ends and everything else expires
 ``Settings.run_result_hours`` later. ``check_run`` is the warden's rule for runs: a
 run whose worker died (its lease lapsed) gets a new job while attempts are left
-(``Settings.fit_retries``), as fits do.
+(``Settings.fit_retries``), as fits do; so does one whose job failed unexpectedly
+(``job_failed``, the queue's failure callback).
 """
 
 from __future__ import annotations
@@ -219,9 +220,40 @@ def _attempt(ctx: Context, run: Run, job_id: str) -> Run | None:
     return done
 
 
-def fail_job(ctx: Context, run_id: str, job_id: str, message: str) -> None:
-    """The queue says the job of this attempt failed (an error, or its time ran out)."""
-    _fail(ctx, run_id, job_id, message)
+def job_failed(ctx: Context, run_id: str, job_id: str, message: str) -> None:
+    """The queue says the job of this attempt failed (an unexpected error, its time ran
+    out, its work horse was killed): another job takes over while attempts are left
+    (``Settings.fit_retries``, as for fits), else the run fails. A job that failed
+    before its attempt began fails the run."""
+    run = ctx.storage.runs.get(run_id)
+    if run is None or not run.live or run.job_id != job_id:
+        return
+    if run.status is RunStatus.WAITING:
+        _fail(ctx, run_id, job_id, message)
+        return
+    _retry_or_fail(ctx, run, message)
+
+
+def _retry_or_fail(ctx: Context, run: Run, message: str) -> Run:
+    """A grouping attempt ended without a result: a new job, or failed when its
+    attempts are spent (fenced on what the caller saw)."""
+    store = ctx.storage.runs
+    seen = (run.status, run.job_id, run.attempts)
+
+    def same(r: Run) -> bool:
+        return (r.status, r.job_id, r.attempts) == seen
+
+    if run.attempts > ctx.settings.fit_retries:
+        at, seconds = _keep(ctx)
+        changed = store.change(run.run_id, lambda r: r.fail(
+            f"{message} ({r.attempts} attempts)", at) if same(r) else None,
+            keep_seconds=seconds)
+    else:
+        job_id = jobqueue.run_job_id_for(ctx, run.run_id, run.runs + 1)
+        changed = store.change(run.run_id, lambda r: r.hand_over(
+            f"{message}; it waits for another attempt", job_id) if same(r) else None,
+            enqueue=jobqueue.run_enqueuer(ctx, run.run_id, job_id))
+    return changed or store.get(run.run_id) or run
 
 
 # ---- the warden's side ---------------------------------------------------------------
@@ -249,19 +281,10 @@ def check_run(ctx: Context, run: Run) -> Run:
 
     at, seconds = _keep(ctx)
     if run.status is RunStatus.GROUPING and store.lease_holder(run.run_id) is None:
-        message = "the worker grouping this run stopped"
-        if run.attempts > ctx.settings.fit_retries:
-            changed = store.change(run.run_id, lambda r: r.fail(
-                f"{message} ({r.attempts} attempts)", at) if same(r) else None,
-                keep_seconds=seconds)
-        else:
-            job_id = jobqueue.run_job_id_for(ctx, run.run_id, run.runs + 1)
-            changed = store.change(run.run_id, lambda r: r.hand_over(
-                f"{message}; it waits for another attempt", job_id) if same(r) else None,
-                enqueue=jobqueue.run_enqueuer(ctx, run.run_id, job_id))
-        if changed is not None:
+        changed = _retry_or_fail(ctx, run, "the worker grouping this run stopped")
+        if changed != run:
             jobqueue.forget(ctx, run.job_id)
-        return changed or store.get(run.run_id) or run
+        return changed
     if run.status is RunStatus.WAITING and jobqueue.stranded(
             ctx, run.job_id, ctx.settings.stranded_seconds):
         job_id = jobqueue.run_job_id_for(ctx, run.run_id, run.runs + 1)
@@ -271,6 +294,10 @@ def check_run(ctx: Context, run: Run) -> Run:
             jobqueue.forget(ctx, run.job_id)
         return changed or store.get(run.run_id) or run
     state, error = jobqueue.job_state(ctx, run.job_id)
+    if state is JobState.FAILED and run.status is RunStatus.GROUPING:
+        # the attempt began and its job failed without a word (its work horse was
+        # killed: out of memory, its time ran out): another attempt, as for fits
+        return _retry_or_fail(ctx, run, (error or "").strip("; ") or "the grouping job failed")
     if _job_move(run, state, error, at) is None:
         return run
     changed = store.change(run.run_id, lambda r: _job_move(r, state, error, at)

@@ -9,6 +9,12 @@ small here (``CHUNK_ROWS``) so a run of 150 records spans several of them.
 from __future__ import annotations
 
 import io
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -26,6 +32,7 @@ from tests.datasets import load_open
 from .helpers import IRIS_FEATURES, as_records, assert_problem
 from .spec import SpecClient
 
+ROOT = Path(__file__).resolve().parents[2]
 RUNS = "/v1/metrics/iris/grouping-runs"
 ARROW = "application/vnd.apache.arrow.stream"
 PARQUET = "application/vnd.apache.parquet"
@@ -84,7 +91,7 @@ def _start(api: SpecClient, body: dict[str, Any]) -> str:
 def _done(api: SpecClient, ctx: Context, run_worker_burst, location: str) -> dict[str, Any]:
     run_worker_burst(ctx, max_jobs=5)
     run = api.get(location).get_json()
-    assert run["status"] == "done", run
+    assert run["status"] == "done", (run["error"], run)
     return run
 
 
@@ -317,3 +324,97 @@ def test_ids_of_mixed_types_come_back_as_posted_and_as_text_in_arrow(
     resp = api.get(f"{location}/results", headers={"Accept": ARROW})
     ids = pa_ipc.open_stream(resp.data).read_all().column("id").to_pylist()
     assert ids == [str(r["id"]) for r in mixed]
+
+
+def test_a_killed_work_horse_hands_the_run_to_a_new_job(
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], run_worker_burst, monkeypatch, iris
+) -> None:
+    """The forked work horse dies by SIGKILL in its first grouping only; the queue
+    fails its job, the warden's sweep (at the end of the burst here, every
+    ``warden_seconds`` in a long-running worker) gives the run a new job, and the next
+    worker groups it."""
+    _, records = iris
+    marker = ctx.storage.key("test", "horse-killed")
+    original = grouping_runs.group_records
+
+    def die_once(*args: Any, **kwargs: Any) -> Any:
+        if ctx.redis.incr(marker) == 1:
+            os.kill(os.getpid(), signal.SIGKILL)
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(grouping_runs, "group_records", die_once)
+    location = _start(api, {"records": records, "k": 3})
+    run_worker_burst(ctx, max_jobs=5)
+    waiting = api.get(location).get_json()
+    assert waiting["status"] == "waiting" and "terminated" in waiting["error"], waiting
+    run = _done(api, ctx, run_worker_burst, location)
+    assert run["attempts"] == 2 and int(ctx.redis.get(marker)) == 2
+
+
+WORKER_SCRIPT = """
+import os, signal, sys
+from service.config import Settings
+from service.usecases import grouping_runs
+from workers.worker import run_worker
+grouping_runs.group_records = lambda *a, **k: os.kill(os.getpid(), signal.SIGKILL)
+run_worker(Settings.from_env(), burst=True, name=sys.argv[1], simple=True)
+"""
+
+
+def test_a_worker_killed_mid_run_is_healed_by_the_warden(
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], run_worker_burst, iris
+) -> None:
+    """A worker process dies by SIGKILL while grouping. Its lease lapses
+    (``lease_seconds``); the warden's sweep gives the run a new job, which another
+    worker completes with the answer a grouping gives."""
+    _, records = iris
+    c = Context.build(ctx.settings.replace(lease_seconds=1), connection=ctx.redis)
+    location = _start(api, {"records": records, "k": 3})
+    run_id = location.rsplit("/", 1)[1]
+    s = c.settings
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "LIKEWISE_REDIS_URL": s.redis_url,
+           "LIKEWISE_KEY_PREFIX": s.key_prefix, "LIKEWISE_QUEUE": s.queue_name,
+           "LIKEWISE_LEASE_SECONDS": "1"}
+    proc = subprocess.run([sys.executable, "-c", WORKER_SCRIPT, f"{s.key_prefix}-dying"],
+                          env=env, cwd=ROOT, timeout=120, capture_output=True)
+    assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()[-2000:]
+    assert api.get(location).get_json()["status"] == "grouping"  # reads never write
+    first_job = c.storage.runs.get(run_id).job_id
+    deadline = time.monotonic() + 10  # the lease lapses within its TTL (bounded wait)
+    while c.storage.runs.lease_holder(run_id) is not None:
+        assert time.monotonic() < deadline, "the dead attempt's lease did not lapse"
+        time.sleep(0.1)
+    assert warden.sweep(c) == 1
+    assert c.storage.runs.get(run_id).job_id != first_job
+    run = _done(api, ctx, run_worker_burst, location)
+    assert run["attempts"] == 2
+    sync = api.post("/v1/metrics/iris/groupings?id_column=id",
+                    json={"records": records, "k": 3}).get_json()
+    got, _ = _all_pages(api, location, limit=500)
+    assert got["labels"] == sync["labels"] and got["ids"] == sync["ids"]
+
+
+def test_an_unexpected_error_is_retried_then_fails_the_run(
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], run_worker_burst, monkeypatch, iris
+) -> None:
+    """An exception in the job (not bad data: that was refused at the POST) gives the
+    run another attempt through the queue's failure callback, up to ``fit_retries``."""
+    _, records = iris
+    marker = ctx.storage.key("test", "raised")
+    original = grouping_runs.group_records
+
+    def raise_once(*args: Any, **kwargs: Any) -> Any:
+        if ctx.redis.incr(marker) == 1:
+            raise RuntimeError("the disk was full")
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(grouping_runs, "group_records", raise_once)
+    first = _start(api, {"records": records, "k": 3})
+    assert _done(api, ctx, run_worker_burst, first)["attempts"] == 2  # one burst
+    monkeypatch.setattr(grouping_runs, "group_records",
+                        lambda *a, **k: (_ for _ in ()).throw(RuntimeError("still full")))
+    second = _start(api, {"records": records, "k": 3})
+    run_worker_burst(ctx, max_jobs=5)
+    run = api.get(second).get_json()
+    assert run["status"] == "failed" and "still full" in run["error"], run
+    assert run["attempts"] == ctx.settings.fit_retries + 1
