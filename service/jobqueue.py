@@ -1,6 +1,7 @@
 """The fit queue behind our own words: the only module of the service that speaks RQ.
 
-A fit's job carries only the fit id. What the rest of the service needs from the
+A fit's job carries only the fit id; a grouping run's job (on the same queue, so
+every worker serves both) only the run id. What the rest of the service needs from the
 queue is here: enqueue a job inside a storage transaction, ask what became of a job
 (:class:`JobState`, in the product's terms), let the queue notice attempts whose
 worker stopped heartbeating (:func:`heal_stalled`), and show operators the queue and
