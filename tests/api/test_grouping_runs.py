@@ -193,6 +193,8 @@ def test_non_finite_and_oversized_tabular_bodies(
         assert_problem(api.post(f"{RUNS}?k=3", data=_stream(_arrow(bad)), content_type=ARROW),
                        422, "petal_length")
         assert_problem(api.post(RUNS, data=b"x", content_type="text/plain"), 415)
+        assert_problem(api.post(f"{RUNS}?k=3", data=b"not arrow", content_type=ARROW), 400)
+        assert_problem(api.post(RUNS, data=b"{", content_type="application/json"), 400)
     small = create_small_app(ctx)
     with unchanged():
         assert_problem(small.post(f"{RUNS}?k=3", data=_stream(_arrow(X)), content_type=ARROW),
