@@ -39,6 +39,7 @@ bench: $(STAMP)
 	$(BIN)/python bench/store_codecs.py
 	$(BIN)/python bench/drift_overhead.py
 	$(BIN)/python bench/drift_reference.py
+	$(BIN)/python bench/grouping_runs.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

@@ -13,11 +13,19 @@ See the README's "From Python" section.
 from .batch_stats import stats_from_dask, stats_from_frame
 from .bodies import ARROW, FORMATS, JSON, BodyFormat, Table, to_table
 from .client import ENDED, NO_RETRY, Answer, Client, RetryPolicy, new_key
-from .errors import ClientError, FieldError, FitTimeout, ProblemError, Unreachable
+from .errors import (
+    ClientError,
+    FieldError,
+    FitTimeout,
+    GroupingRunTimeout,
+    ProblemError,
+    Unreachable,
+)
 
 __all__ = [
     "ARROW", "JSON", "stats_from_dask", "stats_from_frame",
     "ENDED", "FORMATS", "NO_RETRY", "Answer", "BodyFormat", "Client", "ClientError",
-    "FieldError", "FitTimeout", "ProblemError", "RetryPolicy", "Table", "Unreachable",
+    "FieldError", "FitTimeout", "GroupingRunTimeout", "ProblemError", "RetryPolicy", "Table",
+    "Unreachable",
     "new_key", "to_table",
 ]

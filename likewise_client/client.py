@@ -4,7 +4,7 @@ Retries: a connection error, a timeout, a dropped connection, a 503 or a 429 is 
 again (up to ``RetryPolicy.attempts`` tries in all) after an exponentially growing,
 fully jittered wait (tenacity's ``wait_random_exponential``), at least the service's
 ``Retry-After`` and at most ``RetryPolicy.max_wait``. Every create — ``put_metric``,
-``post_batch``, ``start_fit``, ``retry_fit``, ``activate`` — sends an
+``post_batch``, ``start_fit``, ``retry_fit``, ``activate``, ``start_grouping_run`` — sends an
 ``Idempotency-Key`` generated once per call and sent again on every retry: if the first
 try did reach the service, the retry gets the first answer back (``Answer-Replayed:
 true``) and nothing is stored twice.
@@ -32,9 +32,11 @@ from tenacity import (
 )
 
 from . import batch_stats, bodies
-from .errors import FitTimeout, ProblemError, Unreachable
+from .errors import FitTimeout, GroupingRunTimeout, ProblemError, Unreachable
 
 ENDED = frozenset({"succeeded", "failed"})  # a fit in one of these will not change again
+RUN_ENDED = frozenset({"done", "failed"})  # a grouping run's final states
+NEXT_CURSOR = "Next-Cursor"  # where an Arrow page of results says its next cursor
 IDEMPOTENCY_HEADER = "Idempotency-Key"
 REPLAY_HEADER = "Answer-Replayed"
 Json = dict[str, Any]
@@ -92,6 +94,8 @@ def _parse(resp: httpx.Response) -> Any:
             return resp.json()
         except ValueError:
             pass
+    if kind == bodies.ARROW:
+        return resp.content
     return resp.text
 
 
@@ -294,18 +298,8 @@ class Client:
             with fit_progress_bar(fit_id) as show:
                 return self.wait_for_fit(fit_id, timeout, on_progress=show,
                                          interval=interval, progress_bar=False)
-        interval = min(10.0, max(0.05, interval))
-        deadline = time.monotonic() + timeout
-        while True:
-            fit = self.get_fit(fit_id)
-            if on_progress is not None:
-                on_progress(fit)
-            if fit["status"] in ENDED:
-                return fit
-            left = deadline - time.monotonic()
-            if left <= 0:
-                raise FitTimeout(fit, timeout)
-            time.sleep(min(interval, left))
+        return _poll(lambda: self.get_fit(fit_id), ENDED, timeout, interval, on_progress,
+                     FitTimeout)
 
     # ------------------------------------------------------------------ versions
     def list_versions(self, metric: str) -> list[Json]:
@@ -376,6 +370,76 @@ class Client:
                              "margin": pd.array(answer["margins"], dtype="Float64")},
                             index=frame.index)
 
+    # ------------------------------------------------------------------ grouping runs
+    def start_grouping_run(self, metric: str, data: Any, k: int | str | None = "auto", *,
+                           version: int | None = None, features: Sequence[str] | None = None,
+                           id_column: str | None = None, content_type: str = bodies.ARROW,
+                           idempotency_key: str | None = None) -> Json:
+        """Start grouping a large table (a DataFrame, an Arrow table, records, or an
+        array with ``features`` as its columns) on the workers; returns the run
+        (``run_id``, ``status`` …). ``id_column`` names a column of ``data`` whose
+        values come back with the results; ``features`` (default: the metric's when an
+        id column is given) are the columns sent besides it. Arrow on the wire."""
+        members: Json = {"k": k}
+        if version is not None:
+            members["version"] = int(version)
+        if id_column is not None:
+            col = data[id_column]
+            members["ids"] = (id_column, col.to_pylist() if hasattr(col, "to_pylist")
+                              else list(col.tolist() if hasattr(col, "tolist") else col))
+            if features is None:
+                features = self.get_metric(metric)["features"]
+        raw, params = bodies.encode(bodies.to_table(data, features), members, content_type)
+        return self._create("POST", f"/v1/metrics/{metric}/grouping-runs", content=raw,
+                            content_type=content_type, params=params or None,
+                            idempotency_key=idempotency_key)
+
+    def get_grouping_run(self, metric: str, run_id: str) -> Json:
+        return self._call("GET", f"/v1/metrics/{metric}/grouping-runs/{run_id}")
+
+    def delete_grouping_run(self, metric: str, run_id: str) -> None:
+        self._call("DELETE", f"/v1/metrics/{metric}/grouping-runs/{run_id}")
+
+    def wait_for_grouping_run(self, metric: str, run_id: str, timeout: float = 3600.0, *,
+                              interval: float = 0.5,
+                              on_progress: Callable[[Json], None] | None = None) -> Json:
+        """Poll the run until it is done or failed and return it; raise
+        :class:`GroupingRunTimeout` after ``timeout`` seconds. ``interval`` is kept
+        within [0.05, 10] seconds."""
+        return _poll(lambda: self.get_grouping_run(metric, run_id), RUN_ENDED, timeout,
+                     interval, on_progress, GroupingRunTimeout)
+
+    def grouping_run_pages(self, metric: str, run_id: str, *,
+                           limit: int | None = None) -> Iterator[Json]:
+        """Every page of a done run's results (``start``, ``labels``, ``distances``,
+        ``margins``, ``ids`` when asked for), in record order."""
+        path = f"/v1/metrics/{metric}/grouping-runs/{run_id}/results"
+        query: Json = {} if limit is None else {"limit": int(limit)}
+        while True:
+            page = self._call("GET", path, params=query)
+            yield page
+            if not page.get("next_cursor"):
+                return
+            query["cursor"] = page["next_cursor"]
+
+    def grouping_run_table(self, metric: str, run_id: str, *, limit: int = 65536) -> Any:
+        """A done run's results as one pyarrow Table (columns ``record``, ``label``,
+        ``distance``, ``margin``, ``id``), read page by page as Arrow streams."""
+        import pyarrow as pa
+
+        path = f"/v1/metrics/{metric}/grouping-runs/{run_id}/results"
+        query: Json = {"limit": int(limit)}
+        tables = []
+        while True:
+            answer = self.request("GET", path, params=query, headers={"Accept": bodies.ARROW})
+            if answer.status >= 400:
+                raise _problem(answer, "GET", path)
+            tables.append(pa.ipc.open_stream(answer.body).read_all())
+            cursor = answer.headers.get(NEXT_CURSOR)
+            if not cursor:
+                return pa.concat_tables(tables)
+            query["cursor"] = cursor
+
     # ------------------------------------------------------------------ operations
     def queues(self) -> Json:
         """Queue counts (waiting, fitting, failed, done, oldest wait) and workers."""
@@ -417,6 +481,25 @@ def fit_progress_bar(fit_id: str) -> Iterator[Callable[[Json], None]]:
             bar.set_postfix_str(f"{fit['status']} {fit.get('stage') or ''}".strip())
 
         yield show
+
+
+def _poll(get: Callable[[], Json], ended: frozenset[str], timeout: float, interval: float,
+          on_progress: Callable[[Json], None] | None,
+          too_late: Callable[[Json, float], Exception]) -> Json:
+    """``get()`` every ``interval`` (kept within [0.05, 10] s) until its ``status`` is
+    one of ``ended``; ``too_late(last, timeout)`` is raised after ``timeout`` seconds."""
+    interval = min(10.0, max(0.05, interval))
+    deadline = time.monotonic() + timeout
+    while True:
+        current = get()
+        if on_progress is not None:
+            on_progress(current)
+        if current["status"] in ended:
+            return current
+        left = deadline - time.monotonic()
+        if left <= 0:
+            raise too_late(current, timeout)
+        time.sleep(min(interval, left))
 
 
 def _problem(answer: Answer, method: str, path: str) -> ProblemError:

@@ -55,3 +55,12 @@ class FitTimeout(ClientError):
         self.fit = fit
         super().__init__(f"fit {fit.get('fit_id')} is still {fit.get('status')} after "
                          f"{timeout:g}s (progress {float(fit.get('progress') or 0):.0%})")
+
+
+class GroupingRunTimeout(ClientError):
+    """``wait_for_grouping_run`` ran out of time before the run ended."""
+
+    def __init__(self, run: dict[str, Any], timeout: float) -> None:
+        self.run = run
+        super().__init__(f"grouping run {run.get('run_id')} is still {run.get('status')} "
+                         f"after {timeout:g}s (progress {float(run.get('progress') or 0):.0%})")

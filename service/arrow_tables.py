@@ -129,3 +129,19 @@ def _text(col: pa.Array) -> list[Any]:
         return pc.cast(col, pa.string()).to_pylist()
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
         return [None if v is None else str(v) for v in col.to_pylist()]
+
+
+def stream(columns: dict[str, Any]) -> bytes:
+    """Columns (name → numpy array or list) as one Arrow IPC stream; a list of mixed
+    types (ids as posted: strings, numbers, booleans) goes as text."""
+    arrays = {}
+    for name, values in columns.items():
+        try:
+            arrays[name] = pa.array(values)
+        except (pa.ArrowInvalid, pa.ArrowTypeError):
+            arrays[name] = pa.array([None if v is None else str(v) for v in values])
+    table = pa.table(arrays)
+    sink = pa.BufferOutputStream()
+    with pa_ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    return sink.getvalue().to_pybytes()

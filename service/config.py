@@ -32,6 +32,10 @@ LIKEWISE_IDEMPOTENCY_HOURS  idempotency_hours (answers kept) 24
 LIKEWISE_LOG_FORMAT         (service/logs.py) ``json``|``text`` ``json``, ``text`` on a terminal
 LIKEWISE_LOG_LEVEL          (service/logs.py) log level    ``INFO``
 LIKEWISE_DRIFT_HOURS        drift_hours (hourly buckets kept) 72
+LIKEWISE_MAX_RUN_RECORDS    max_run_records (a grouping run) 2000000
+LIKEWISE_MAX_RUN_BYTES      max_run_bytes (raw float64)    512 MiB
+LIKEWISE_MAX_RUN_REQUEST_BYTES max_run_request_bytes       1 GiB
+LIKEWISE_RUN_RESULT_HOURS   run_result_hours (results kept) 24
 =========================== ============================== ===========================
 
 The two log variables are read by the entry points' logging setup
@@ -104,6 +108,11 @@ class Settings:
     stranded_seconds: int = 60
     idempotency_hours: int = 24
     drift_hours: int = 72
+    # grouping runs (POST …/grouping-runs): large tables grouped by the workers
+    max_run_records: int = 2_000_000
+    max_run_bytes: int = 512 * MIB
+    max_run_request_bytes: int = 1024 * MIB
+    run_result_hours: int = 24
 
     def __post_init__(self) -> None:
         if not self.key_prefix or any(c in self.key_prefix for c in " \t\r\n"):
@@ -113,7 +122,9 @@ class Settings:
         for name in ("fit_timeout", "max_batch_records", "max_batch_features", "max_groups",
                      "max_batch_bytes", "max_request_bytes", "workers", "web_workers",
                      "warden_seconds",
-                     "lease_seconds", "idempotency_hours", "drift_hours"):
+                     "lease_seconds", "idempotency_hours", "drift_hours",
+                     "max_run_records", "max_run_bytes", "max_run_request_bytes",
+                     "run_result_hours"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")
         if self.max_batch_features > MAX_FEATURES:

@@ -1,6 +1,7 @@
 """The fit queue behind our own words: the only module of the service that speaks RQ.
 
-A fit's job carries only the fit id. What the rest of the service needs from the
+A fit's job carries only the fit id; a grouping run's job (on the same queue, so
+every worker serves both) only the run id. What the rest of the service needs from the
 queue is here: enqueue a job inside a storage transaction, ask what became of a job
 (:class:`JobState`, in the product's terms), let the queue notice attempts whose
 worker stopped heartbeating (:func:`heal_stalled`), and show operators the queue and
@@ -62,6 +63,36 @@ def enqueuer(ctx: Context, fit_id: str, job_id: str) -> Callable[[Pipeline], Non
             on_failure=Callback(FAILURE_CALLBACK),
             meta={"key_prefix": s.key_prefix, "fit_id": fit_id},
             description=f"likewise fit {fit_id}", pipeline=pipe)
+
+    return enqueue
+
+
+RUN_FUNC = "workers.jobs.run_grouping"
+RUN_FAILURE_CALLBACK = "workers.jobs.on_run_failure"
+
+
+def run_job_id_for(ctx: Context, run_id: str, run: int) -> str:
+    """The job id of run ``run`` of the queue for a grouping run (a new job after a
+    worker died is a new one)."""
+    slug = re.sub(r"[^A-Za-z0-9_-]", "_", ctx.settings.key_prefix)
+    return f"{slug}-grun-{run_id}-{run}"
+
+
+def run_enqueuer(ctx: Context, run_id: str, job_id: str) -> Callable[[Pipeline], None]:
+    """A callback that enqueues a grouping run's job on a storage pipeline (same EXEC),
+    on the fits' queue: every ``likewise worker`` serves both. No queue retry: the
+    warden hands a run whose worker died to a new job."""
+    from rq import Callback
+
+    s = ctx.settings
+
+    def enqueue(pipe: Pipeline) -> None:
+        ctx.queue.enqueue_call(
+            RUN_FUNC, args=(run_id,), job_id=job_id, timeout=s.fit_timeout,
+            result_ttl=s.run_result_hours * 3600, failure_ttl=FAILURE_TTL,
+            on_failure=Callback(RUN_FAILURE_CALLBACK),
+            meta={"key_prefix": s.key_prefix, "run_id": run_id},
+            description=f"likewise grouping run {run_id}", pipeline=pipe)
 
     return enqueue
 
@@ -211,6 +242,12 @@ class RQFitQueue:
 
     def enqueuer(self, fit_id: str, job_id: str) -> Callable[[Pipeline], None]:
         return enqueuer(self._ctx, fit_id, job_id)
+
+    def run_job_id_for(self, run_id: str, run: int) -> str:
+        return run_job_id_for(self._ctx, run_id, run)
+
+    def run_enqueuer(self, run_id: str, job_id: str) -> Callable[[Pipeline], None]:
+        return run_enqueuer(self._ctx, run_id, job_id)
 
     def job_state(self, job_id: str) -> tuple[JobState, str | None]:
         return job_state(self._ctx, job_id)

@@ -73,3 +73,10 @@ def test_throughput_bench_runs_quick() -> None:
 def test_drift_reference_bench_runs_quick() -> None:
     out = _run("drift_reference.py", "--quick", "--batches", "6")
     assert "PSI held" in out and out.count("wine ") == 1 and "target:" in out
+
+
+def test_grouping_runs_bench_runs_small() -> None:
+    out = _run("grouping_runs.py", "--records", "3000")
+    firsts = [line.split()[0] for line in out.splitlines() if line.strip()]
+    assert firsts.count("arrow") == 1 and firsts.count("parquet") == 1  # a row each
+    assert "same labels as in process: yes" in out and "target:" in out

@@ -31,6 +31,8 @@ RULES: list[tuple[str, set[str]]] = [
                                  "service.store", "service.usecases"}),
     ("service/lifecycle.py", {"flask", "marshmallow", "redis", "rq", "service.api",
                               "service.store", "service.usecases"}),
+    ("service/run_lifecycle.py", {"flask", "marshmallow", "redis", "rq", "service.api",
+                                  "service.store", "service.usecases"}),
     ("service/api", {"rq", "redis", "service.jobqueue", "service.store.keys",
                      "service.core"}),
     ("likewise_client", {"service", "workers", "flask", "redis", "rq", "marshmallow"}),

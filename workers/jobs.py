@@ -6,7 +6,9 @@ data fails the fit without a retry; any other exception (including the job timeo
 propagates, and RQ retries the job while it has retries left. ``on_fit_failure`` —
 RQ's failure callback, called on every failed attempt before RQ decides on a retry,
 and also when RQ finds a job abandoned by a dead worker (SIGKILL, lost machine) —
-records each failure in the fit record.
+records each failure in the fit record. ``run_grouping(run_id)`` groups a grouping
+run (:func:`service.usecases.grouping_runs.execute_run`); ``on_run_failure`` hands
+it to a new job, or fails it, when its job raised or its work horse died.
 """
 
 from __future__ import annotations
@@ -74,3 +76,31 @@ def on_fit_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
         return None
 
     ctx.storage.fits.change(fit_id, move)
+
+
+def run_grouping(run_id: str) -> dict[str, Any]:
+    """Group the records of grouping run ``run_id`` (the RQ entry point)."""
+    from rq import get_current_job
+
+    from service.usecases.grouping_runs import execute_run
+
+    job = get_current_job()
+    if job is None:
+        raise RuntimeError("run_grouping must run inside an RQ job")
+    return execute_run(_context(job), run_id, job.id)
+
+
+def on_run_failure(job: Job, connection: Redis, exc_type: Any, exc_value: Any,
+                   tb: Any = None) -> None:
+    """RQ failure callback of a grouping run's job: another job or a failed run
+    (:func:`~service.usecases.grouping_runs.job_failed`). A job abandoned by a dead
+    worker is left to the warden, which hands the run over once its lease lapses."""
+    from rq.exceptions import AbandonedJobError
+
+    from service.usecases.grouping_runs import job_failed
+
+    run_id = job.meta.get("run_id")
+    if not run_id or exc_type is AbandonedJobError or isinstance(exc_value, AbandonedJobError):
+        return
+    job_failed(_context(job, connection), run_id, job.id,
+             f"{getattr(exc_type, '__name__', 'Error')}: {exc_value}")

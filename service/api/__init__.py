@@ -36,6 +36,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
         console,
         drift,
         fits,
+        grouping_runs,
         groupings,
         health,
         metrics,
@@ -64,7 +65,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
 
     v1 = Blueprint("v1", __name__, url_prefix="/v1")
     v1.before_request(require_token)
-    for module in (metrics, batches, fits, versions, groupings, drift):
+    for module in (metrics, batches, fits, versions, groupings, grouping_runs, drift):
         v1.register_blueprint(module.bp)
     v1.register_blueprint(health.v1_bp)
     app.register_blueprint(v1)

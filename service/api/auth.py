@@ -34,6 +34,10 @@ SCOPE_OF: dict[str, str] = {
     "v1.versions.activate": "release",
     "v1.versions.history": "view",
     "v1.groupings.group": "view",
+    "v1.grouping_runs.start_run": "view",  # a grouping, only larger: the same scope
+    "v1.grouping_runs.get_run": "view",
+    "v1.grouping_runs.results": "view",
+    "v1.grouping_runs.delete_run": "view",
     "v1.drift.drift_report": "view",
     "v1.queues.queues": "view",
     # the console's data parts (service/api/console.py); its frame and assets are open

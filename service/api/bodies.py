@@ -2,7 +2,8 @@
 
 - Every body has a size limit: ``LIKEWISE_MAX_REQUEST_BYTES`` for batches and
   groupings, :data:`SMALL_BODY` for the small envelopes (metric definitions, fit
-  requests, activations), so validation cost follows what a route allows, not
+  requests, activations) and ``LIKEWISE_MAX_RUN_REQUEST_BYTES`` for a grouping run's
+  table, so validation cost follows what a route allows, not
   what a caller sends.
 - A chunked body (no ``Content-Length``) is read up to the limit plus one byte in
   :func:`bound_body`: over the limit it is a 413, like a body that declares its
@@ -30,11 +31,18 @@ SMALL_ENDPOINTS = frozenset({
     "v1.metrics.put_metric", "v1.versions.activate", "v1.fits.request_fit",
     "v1.fits.retry_fit",
 })
+# endpoints that take a large table: LIKEWISE_MAX_RUN_REQUEST_BYTES instead
+LARGE_ENDPOINTS = frozenset({"v1.grouping_runs.start_run"})
 
 
 def bound_body() -> None:
     """``before_request``: the route's body limit; chunked bodies read within it."""
     limit = request.max_content_length
+    if request.endpoint in LARGE_ENDPOINTS:
+        from .deps import context
+
+        limit = context().settings.max_run_request_bytes
+        request.max_content_length = limit
     if request.endpoint in SMALL_ENDPOINTS:
         limit = SMALL_BODY if limit is None else min(limit, SMALL_BODY)
         request.max_content_length = limit

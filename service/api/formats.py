@@ -9,7 +9,8 @@
 - Options common to every format ride in the query string (``ignore_extra_columns``,
   ``allow_duplicate``, ``id_column``).
 
-Any other content type is a 415. Size caps are those of the JSON forms.
+Any other content type is a 415. Size caps are those of the JSON forms (a grouping
+run passes its own, larger ones).
 """
 
 from __future__ import annotations
@@ -37,17 +38,19 @@ def _caps() -> tuple[int, int]:
 
 
 def read_table(kind: str, query_schema: Schema, *, tabular_only: tuple[str, ...] = (),
-               also_accepted: tuple[str, ...] = ()) -> tuple[Table, dict[str, Any]]:
+               also_accepted: tuple[str, ...] = (),
+               caps: tuple[int, int] | None = None) -> tuple[Table, dict[str, Any]]:
     """The request's table and its options (the JSON envelope's fields, then the query's)
     for a ``kind`` of body: ``"batch"`` or ``"grouping"``.
 
     ``tabular_only`` names query options that only the tabular formats take (a JSON
     body carries them in its envelope). ``also_accepted`` lists other content types the
-    endpoint reads elsewhere, for the 415's message.
+    endpoint reads elsewhere, for the 415's message. ``caps`` (records, raw float64
+    bytes) replace the batch caps (a grouping run's are larger).
     """
     query = query_args(query_schema)
     media = request.mimetype
-    max_records, max_bytes = _caps()
+    max_records, max_bytes = caps or _caps()
     if request.is_json:
         for name in tabular_only:
             if name in query:

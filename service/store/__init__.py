@@ -6,6 +6,7 @@
 - ``idempotency.py`` — stored answers to retried requests;
 - ``tallies.py`` — deployment-wide counters for ``/metrics`` (fits ended, activations);
 - ``drift.py`` — hourly drift summaries of grouped records (never the records);
+- ``runs.py`` — grouping runs: their chunked records, result chunks and leases;
 - ``errors.py`` — what persistence refuses, in its own terms (``StoreError``).
 
 Writes that belong together run in one MULTI/EXEC (or one Lua script); read-check-write
@@ -37,6 +38,7 @@ from .fits import FitStore
 from .idempotency import IdempotencyStore
 from .keys import Keys
 from .metrics import MetricStore
+from .runs import RunStore
 from .tallies import TallyStore
 from .versions import VersionStore
 
@@ -58,6 +60,7 @@ class Storage:
         self.versions = VersionStore(redis, self.keys, self.fits)
         self.idempotency = IdempotencyStore(redis, self.keys)
         self.drift = DriftStore(redis, self.keys)
+        self.runs = RunStore(redis, self.keys)
 
     def answers(self) -> bool:
         """Whether the data store answers a ping now."""

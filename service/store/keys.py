@@ -33,6 +33,17 @@ Key layout (``P`` = the deployment's key prefix; metric names follow the rule of
     P:fit:{fit_id}                  hash   fit record fields (JSON values)
     P:fit:{fit_id}:lease            string job id of the attempt running it (expires unless renewed)
     P:live-fits                     set    ids of waiting and running fits (what the warden checks)
+    P:grun:{run_id}                 hash   grouping run record fields (JSON values);
+                                           expires LIKEWISE_RUN_RESULT_HOURS after it ends
+    P:grun:{run_id}:in:{i}          string records i·65536… of a waiting run (pack_matrix);
+                                           deleted when the run ends
+    P:grun:{run_id}:ids:{i}         string the id column of chunk i (pack_json), if any;
+                                           expires with the record
+    P:grun:{run_id}:out:{i}         string results of chunk i: label, distance, margin
+                                           per record (pack_matrix); expires with the record
+    P:grun:{run_id}:lease           string job id of the attempt grouping it (expires unless
+                                           renewed)
+    P:live-gruns                    set    ids of waiting and grouping runs (the warden checks)
     P:idem:{digest}                 string a stored answer to an Idempotency-Key (expires)
     P:batchseq                      string ingest order of batches (INCR)
     P:tallies                       hash   deployment-wide counters read by /metrics:
@@ -118,6 +129,25 @@ class Keys:
 
     def live_fits(self) -> str:
         return self.join("live-fits")
+
+    # ---- grouping runs (large tables grouped by workers) ------------------------------
+    def run(self, run_id: str) -> str:
+        return self.join("grun", run_id)
+
+    def run_input(self, run_id: str, chunk: int) -> str:
+        return self.join("grun", run_id, "in", chunk)
+
+    def run_ids(self, run_id: str, chunk: int) -> str:
+        return self.join("grun", run_id, "ids", chunk)
+
+    def run_output(self, run_id: str, chunk: int) -> str:
+        return self.join("grun", run_id, "out", chunk)
+
+    def run_lease(self, run_id: str) -> str:
+        return self.join("grun", run_id, "lease")
+
+    def live_runs(self) -> str:
+        return self.join("live-gruns")
 
     # ---- retried requests ------------------------------------------------------------
     def idempotency(self, digest: str) -> str:

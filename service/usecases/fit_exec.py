@@ -28,6 +28,8 @@ from .drift import reference_blob
 if TYPE_CHECKING:
     from service.context import Context
 
+    from .ports import LeaseStore
+
 _COMMIT_ATTEMPTS = 10
 
 
@@ -51,7 +53,7 @@ def fail_attempt(ctx: Context, fit_id: str, job_id: str | None, message: str) ->
     return failed or ctx.storage.fits.get(fit_id)
 
 
-class _Lease:
+class Lease:
     """The attempt's lease on its fit, renewed by a thread while the fit runs.
 
     Taken before the fit becomes running, so a running fit without a lease is an
@@ -59,14 +61,17 @@ class _Lease:
     the fit to a new job once the lease lapses (``Settings.lease_seconds``).
     """
 
-    def __init__(self, ctx: Context, fit_id: str, job_id: str) -> None:
-        self.fits, self.fit_id, self.job_id = ctx.storage.fits, fit_id, job_id
+    def __init__(self, ctx: Context, fit_id: str, job_id: str,
+                 store: LeaseStore | None = None) -> None:
+        # ``store``: another store with the same lease methods (a grouping run's)
+        self.fits: LeaseStore = store or ctx.storage.fits
+        self.fit_id, self.job_id = fit_id, job_id
         self.ttl_ms = ctx.settings.lease_seconds * 1000
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._renew, name="likewise-lease",
                                         daemon=True)
 
-    def __enter__(self) -> _Lease:
+    def __enter__(self) -> Lease:
         self.fits.take_lease(self.fit_id, self.job_id, self.ttl_ms)
         self._thread.start()
         return self
@@ -137,7 +142,7 @@ def execute_fit(ctx: Context, fit_id: str, job_id: str | None = None) -> dict[st
     job_id = job_id or fit.job_id
     if fit.job_id != job_id:  # a job the fit has moved on from: nothing to do
         return _result(fit, fit_id)
-    with _Lease(ctx, fit_id, job_id):
+    with Lease(ctx, fit_id, job_id):
         return _attempt(ctx, fit, job_id)
 
 

@@ -7,13 +7,14 @@ call, so the cache follows activations without invalidation.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from service.core import CoreError, FittedMetric, RecordOverflowError, group_records
 from service.errors import InvalidInput, NotFound, from_core
-from service.tables import Table
+from service.tables import Matrix, Table
 
 from . import drift
 from .metrics import require_metric
@@ -51,6 +52,52 @@ def load_version_metric(ctx: Context, metric: dict[str, Any], n: int) -> tuple[
     return loaded
 
 
+@dataclass(frozen=True)
+class Prepared:
+    """A grouping request checked against its version: what grouping needs."""
+
+    metric: dict[str, Any]
+    k: GroupCount | None
+    version: int
+    fitted: FittedMetric
+    matrix: Matrix
+    ids: list[Any] | None
+
+
+def prepare(ctx: Context, name: str, table: Table, k: GroupCount | None = None,
+            version: VersionNumber | None = None, *, ignore_extra: bool | None = None,
+            id_column: str | None = None) -> Prepared:
+    """Check a grouping's options and table against the version it names (the active
+    one by default) and read the matrix in that version's columns. ``k`` None: the
+    service chooses it."""
+    metric = require_metric(ctx, name)
+    _within_limit(k, ctx.settings.max_groups)
+    n = chosen_version(ctx, name, version)
+    fitted, features, inputs = load_version_metric(ctx, metric, n)
+    if ignore_extra is None:
+        ignore_extra = metric["inputs"]["ignore_extra_columns"]
+    ids = table.column_values(id_column) if id_column is not None else None
+    m = table.matrix(features, ignore_extra=ignore_extra,
+                     allowed=(id_column,) if id_column else (),
+                     fill=fitted.mean if inputs.get("missing_values") == "impute_mean" else None,
+                     categories=inputs.get("categories"))
+    return Prepared(metric, k, n, fitted, m, ids)
+
+
+def overflow_error(table: Table, row: int) -> InvalidInput:
+    """Finite numbers (each passed the table checks) can still overflow once rescaled."""
+    field = table.row_field(row)
+    message = "values too large: their distances under this metric overflow float64"
+    return InvalidInput.field(field, message, f"{field}: {message}")
+
+
+def json_margins(margins: np.ndarray) -> list[float | None]:
+    """One group has no runner-up centre: its margin is undefined (null), not Infinity."""
+    margins = np.asarray(margins, dtype=float)
+    return margins.tolist() if np.isfinite(margins).all() \
+        else [v if np.isfinite(v) else None for v in margins.tolist()]
+
+
 def group(
     ctx: Context,
     name: str,
@@ -64,42 +111,27 @@ def group(
     """Group the table's records; ``id_column`` is echoed back as ``ids`` (and may be
     a column the metric does not use). ``k`` None: the service chooses it; ``version``
     None: the active one."""
-    metric = require_metric(ctx, name)
-    _within_limit(k, ctx.settings.max_groups)
-    n = chosen_version(ctx, name, version)
-    fitted, features, inputs = load_version_metric(ctx, metric, n)
-    if ignore_extra is None:
-        ignore_extra = metric["inputs"]["ignore_extra_columns"]
-    ids = table.column_values(id_column) if id_column is not None else None
-    m = table.matrix(features, ignore_extra=ignore_extra,
-                     allowed=(id_column,) if id_column else (),
-                     fill=fitted.mean if inputs.get("missing_values") == "impute_mean" else None,
-                     categories=inputs.get("categories"))
+    p = prepare(ctx, name, table, k, version, ignore_extra=ignore_extra, id_column=id_column)
+    m = p.matrix
     try:
-        g = group_records(fitted, m.X, k=k)
+        g = group_records(p.fitted, m.X, k=p.k)
     except RecordOverflowError as exc:
-        # finite numbers (each passed the table checks) can still overflow once rescaled
-        field = table.row_field(exc.row)
-        message = "values too large: their distances under this metric overflow float64"
-        raise InvalidInput.field(field, message, f"{field}: {message}") from exc
+        raise overflow_error(table, exc.row) from exc
     except CoreError as exc:
         raise from_core(exc, default_field="k") from exc
-    drift.record(ctx, metric, n, fitted, m.X, g, imputed=m.imputed)
-    margins = g.margins.astype(float)
+    drift.record(ctx, p.metric, p.version, p.fitted, m.X, g, imputed=m.imputed)
     answer = {
-        "version": n,
+        "version": p.version,
         "k": int(g.k),
         "k_chosen": bool(g.k_chosen),
         "labels": g.labels.astype(int).tolist(),
         "distances": g.distances.astype(float).tolist(),
-        # one group has no runner-up centre: its margin is undefined (null), not Infinity
-        "margins": margins.tolist() if np.isfinite(margins).all()
-        else [v if np.isfinite(v) else None for v in margins.tolist()],
+        "margins": json_margins(g.margins),
         "sizes": g.sizes.astype(int).tolist(),
         "imputed": m.imputed,
     }
     if m.imputed:
         answer["imputed_by_feature"] = m.imputed_by_feature
-    if ids is not None:
-        answer["ids"] = ids
+    if p.ids is not None:
+        answer["ids"] = p.ids
     return answer

@@ -23,10 +23,11 @@ MAX_LIMIT = 500
 MAX_CURSOR = 512  # characters
 
 
-def check_limit(limit: Any) -> int:
-    """``limit``'s rule (the HTTP schema reads the query with it; use cases take the int)."""
-    if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= MAX_LIMIT:
-        raise InvalidInput.field("limit", f"a whole number from 1 to {MAX_LIMIT}")
+def check_limit(limit: Any, most: int = MAX_LIMIT) -> int:
+    """``limit``'s rule (the HTTP schema reads the query with it; use cases take the
+    int); a list of its own may allow up to ``most`` items a page."""
+    if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= most:
+        raise InvalidInput.field("limit", f"a whole number from 1 to {most}")
     return limit
 
 

@@ -16,6 +16,8 @@ The warden runs in every worker process (``workers.worker``, every
 - a fit whose job failed or was stopped fails with the job's error;
 - a running fit whose job waits for a retry goes back to waiting.
 
+Grouping runs follow the same rules (:func:`service.usecases.grouping_runs.check_run`).
+
 Every write is fenced on the job id the fit record names, so a fit that moved on
 (retried by a person, finished meanwhile) is left alone.
 """
@@ -29,6 +31,8 @@ from typing import TYPE_CHECKING
 from service.jobqueue import JobState
 from service.lifecycle import Fit, FitStatus
 from service.store import UNAVAILABLE
+
+from . import grouping_runs
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -109,7 +113,8 @@ def _hand_over(ctx: Context, fit: Fit) -> Fit:
 
 
 def sweep(ctx: Context) -> int:
-    """One pass over every live fit of this deployment; returns how many changed."""
+    """One pass over every live fit and grouping run of this deployment; returns how
+    many changed."""
     ctx.jobs.heal_stalled()
     ids = ctx.storage.fits.live_ids()
     changed = 0
@@ -119,7 +124,7 @@ def sweep(ctx: Context) -> int:
             continue
         if check_fit(ctx, fit) != fit:
             changed += 1
-    return changed
+    return changed + grouping_runs.sweep(ctx)  # grouping runs: the same rules, their own
 
 
 class Warden(threading.Thread):

@@ -106,7 +106,8 @@ def test_prometheus_exposition(api: SpecClient) -> None:
 # ------------------------------------------------------------------ auth, every route
 def _concrete(path: str) -> str:
     values = {"{name}": "iris", "{batch_id}": "0123456789abcdef",
-              "{fit_id}": "0123456789abcdef0123", "{n}": "1"}
+              "{fit_id}": "0123456789abcdef0123", "{n}": "1",
+              "{run_id}": "0123456789abcdef0123"}
     for key, value in values.items():
         path = path.replace(key, value)
     return path
@@ -225,6 +226,7 @@ VALID_ENVELOPES = {
     ("/v1/metrics/{name}/fits", "post"): {},
     ("/v1/metrics/{name}/active", "put"): {"version": 1},
     ("/v1/metrics/{name}/groupings", "post"): {"records": [{"a": 1}]},
+    ("/v1/metrics/{name}/grouping-runs", "post"): {"records": [{"a": 1}]},
 }
 NAMED_OPERATIONS = [op for op in V1_OPERATIONS if "{name}" in op[0]]
 BODY_OPERATIONS = sorted(VALID_ENVELOPES)
@@ -251,7 +253,8 @@ def test_every_route_with_a_metric_name_rejects_an_invalid_one(
 def test_every_body_over_the_request_limit_is_413(
     ctx: Context, metric: str, unchanged, path: str, method: str
 ) -> None:
-    small = Context.build(ctx.settings.replace(max_request_bytes=256), connection=ctx.redis)
+    small = Context.build(ctx.settings.replace(max_request_bytes=256, max_run_request_bytes=256),
+                          connection=ctx.redis)
     api = SpecClient(create_app(context=small), ADMIN_TOKEN)
     body = {**VALID_ENVELOPES[(path, method)], "padding": "x" * 300}
     with unchanged():

@@ -21,6 +21,7 @@ from .spec import SpecClient, openapi_path
 
 SCOPE_TOKENS = {scope: f"token-for-{scope}" for scope in SCOPES}
 FILE_TOKEN = "token-from-the-file"
+NO_RUN = "0" * 20  # a grouping run id nobody holds
 
 
 @pytest.fixture
@@ -65,6 +66,13 @@ def _requests(fit_id: str, batch_id: str) -> dict[str, tuple[str, str, Any]]:
         "v1.versions.history": ("GET", "/v1/metrics/iris/history", None),
         "v1.groupings.group": ("POST", "/v1/metrics/iris/groupings",
                                {"records": records_body(X, y)["records"], "k": 3}),
+        "v1.grouping_runs.start_run": ("POST", "/v1/metrics/iris/grouping-runs",
+                                       {"records": records_body(X, y)["records"], "k": 3}),
+        "v1.grouping_runs.get_run": ("GET", f"/v1/metrics/iris/grouping-runs/{NO_RUN}", None),
+        "v1.grouping_runs.results": ("GET", f"/v1/metrics/iris/grouping-runs/{NO_RUN}/results",
+                                     None),
+        "v1.grouping_runs.delete_run": ("DELETE", f"/v1/metrics/iris/grouping-runs/{NO_RUN}",
+                                        None),
         "v1.drift.drift_report": ("GET", "/v1/metrics/iris/drift", None),
         "v1.queues.queues": ("GET", "/v1/queues", None),
         "console.parts.overview": ("GET", "/console/parts/overview", None),

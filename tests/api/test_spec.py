@@ -56,7 +56,7 @@ def test_spec_enums_follow_the_code() -> None:
     must say the same (adding a learner to the core must show up here)."""
     from service.core import METHODS
     from service.core.drift import VERDICTS
-    from service.usecases import fits
+    from service.usecases import fits, grouping_runs
 
     schemas = load_spec()["components"]["schemas"]
     assert schemas["FitMethod"]["enum"] == ["auto", *METHODS]
@@ -64,6 +64,7 @@ def test_spec_enums_follow_the_code() -> None:
     assert schemas["ActivatePolicy"]["enum"] == list(fits.ACTIVATE)
     assert schemas["FitStatus"]["enum"] == list(fits.STATUSES)
     assert schemas["DriftVerdict"]["enum"] == list(VERDICTS)
+    assert schemas["GroupingRunStatus"]["enum"] == list(grouping_runs.STATUSES)
 
 
 # the queue library's own words for job and worker states and its registries (RQ's

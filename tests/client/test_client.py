@@ -74,6 +74,8 @@ OPERATIONS = {
     "groupRecords": "group", "queueOverview": "queues", "healthz": "health",
     "readyz": "ready", "prometheusMetrics": "prometheus", "openapiJson": "openapi",
     "openapiYaml": "openapi_yaml", "explainVersion": "explain",
+    "startGroupingRun": "start_grouping_run", "getGroupingRun": "get_grouping_run",
+    "deleteGroupingRun": "delete_grouping_run", "getGroupingRunResults": "grouping_run_pages",
 }
 
 
