@@ -1,6 +1,30 @@
-"""JSON answers encoded with orjson (several times faster than the standard library on
-the long float lists a grouping returns). Bodies are still read by
-``service.api.bodies.parse_json``, which refuses duplicate keys."""
+"""JSON on orjson, both ways.
+
+Answers are encoded with orjson (several times faster than the standard library on
+the long float lists a grouping returns). Bodies are decoded with orjson too, through
+:func:`decode_exact`, which hands a body back to the strict standard-library parse
+(``service.api.bodies.parse_json``: duplicate keys refused, naming where) whenever
+orjson's result could differ from it:
+
+- orjson refuses the body (malformed JSON, ``NaN``/``Infinity`` literals, numbers that
+  overflow a double, lone surrogate escapes, a byte-order mark, text that is not
+  UTF-8, nesting over 1,024 levels): the strict parse gives its own answer or error;
+- an integer literal of 19 digits or more: orjson reads integers outside 64 bits as
+  floats, the standard library exactly;
+- the body's brackets and colons are not all accounted for (below).
+
+Duplicate keys without a hook per object: every object and list of the parsed value
+was opened by a ``{`` or ``[`` of its own in the text, and every key of a parsed
+object was followed by a ``:`` of its own, so the text holds at least as many of each
+byte as the value has containers and keys — more colons when a key appeared twice
+(the parse keeps one), or when strings hold these bytes. :func:`_shallow` counts the
+containers and keys of the value's first three levels (the envelope, the lists it
+holds and their items: every table shape), a few C-speed passes. When the text has
+exactly as many ``[``, ``{`` and ``:`` bytes as those counts, no container lies deeper
+(so the strict parser's recursion limit is not in play) and no key was given twice;
+otherwise the strict parse decides. Tested against the standard library in
+``tests/api/test_jsonio.py``.
+"""
 
 from __future__ import annotations
 
@@ -12,12 +36,70 @@ from flask.json.provider import JSONProvider
 
 _OPTIONS = orjson.OPT_NON_STR_KEYS | orjson.OPT_SERIALIZE_NUMPY
 
+UNSURE = object()  # decode_exact's answer when the strict parse must decide
+
+# digits → "0", bytes that may sit inside a number before more digits → "f",
+# the sign → "-", all else → " ": an integer literal of ≥ 19 digits then reads
+# " 000…" or " -000…"; a fraction's or exponent's digits follow an "f"
+_NUMBER_SHAPE = bytes(
+    ord("0") if chr(b).isdigit() and b < 128 else
+    ord("f") if chr(b) in ".eE+" else ord("-") if chr(b) == "-" else ord(" ")
+    for b in range(256))
+_LONG = b"0" * 19
+
 
 def encode(obj: Any) -> bytes:
     try:
         return orjson.dumps(obj, option=_OPTIONS)
     except TypeError:  # what orjson does not take (integers beyond 64 bits): the slow way
         return json.dumps(obj, allow_nan=False).encode()
+
+
+def _shallow(data: dict[str, Any]) -> tuple[int, int, int]:
+    """(lists, objects, keys) among the object ``data``, its values and their items."""
+    lists, objects, keys = 0, 1, len(data)
+    for value in data.values():
+        kind = type(value)
+        if kind is dict:
+            objects += 1
+            keys += len(value)
+            inner = list(value.values())
+        elif kind is list:
+            lists += 1
+            inner = value
+        else:
+            continue
+        kinds = set(map(type, inner))
+        if list in kinds:
+            lists += len(inner) if kinds == {list} else sum(map(list.__instancecheck__, inner))
+        if dict in kinds:
+            found = inner if kinds == {dict} else list(filter(dict.__instancecheck__, inner))
+            objects += len(found)
+            keys += sum(map(len, found))
+    return lists, objects, keys
+
+
+def _long_integer(raw: bytes) -> bool:
+    shape = b" " + raw.translate(_NUMBER_SHAPE)
+    return shape.find(b" " + _LONG) >= 0 or shape.find(b" -" + _LONG) >= 0
+
+
+def decode_exact(raw: bytes) -> Any:
+    """``raw`` parsed by orjson when that provably equals the standard library's
+    ``json.loads`` of an object without a duplicate key; else :data:`UNSURE`."""
+    if not isinstance(raw, bytes):
+        return UNSURE
+    try:
+        data = orjson.loads(raw)
+    except orjson.JSONDecodeError:
+        return UNSURE
+    if type(data) is not dict:
+        return UNSURE
+    lists, objects, keys = _shallow(data)
+    if (raw.count(b"[") != lists or raw.count(b"{") != objects
+            or raw.count(b":") != keys or _long_integer(raw)):
+        return UNSURE
+    return data
 
 
 class FastJSON(JSONProvider):
