@@ -13,17 +13,18 @@ orjson's result could differ from it:
   floats, the standard library exactly;
 - the body's brackets and colons are not all accounted for (below).
 
-Duplicate keys without a hook per object: every object and list of the parsed value
-was opened by a ``{`` or ``[`` of its own in the text, and every key of a parsed
-object was followed by a ``:`` of its own, so the text holds at least as many of each
-byte as the value has containers and keys — more colons when a key appeared twice
-(the parse keeps one), or when strings hold these bytes. :func:`_shallow` counts the
-containers and keys of the value's first three levels (the envelope, the lists it
-holds and their items: every table shape), a few C-speed passes. When the text has
-exactly as many ``[``, ``{`` and ``:`` bytes as those counts, no container lies deeper
-(so the strict parser's recursion limit is not in play) and no key was given twice;
-otherwise the strict parse decides. Tested against the standard library in
-``tests/api/test_jsonio.py``.
+Duplicate keys without a hook per object: every list of the parsed value was opened
+by a ``[`` of its own in the text, and every key of a parsed object was followed by a
+``:`` of its own, so the text holds at least as many of each byte as the value has
+lists and keys — more colons when a key appeared twice (the parse keeps one), or when
+strings hold these bytes. :func:`_shallow` counts the lists and keys of the value's
+first three levels (the envelope, the lists and objects it holds and their items:
+every table shape), a few C-speed passes. When the text has exactly as many ``:`` as
+those keys, no key was given twice anywhere; with as many ``[`` as those lists too,
+every container with content lies within those levels (an object found nowhere has
+no key, so is empty), and the value is at most four levels deep: the strict parser's
+recursion limit is not in play. Otherwise the strict parse decides. Tested against the
+standard library in ``tests/api/test_jsonio.py``.
 """
 
 from __future__ import annotations
@@ -38,14 +39,14 @@ _OPTIONS = orjson.OPT_NON_STR_KEYS | orjson.OPT_SERIALIZE_NUMPY
 
 UNSURE = object()  # decode_exact's answer when the strict parse must decide
 
-# digits → "0", bytes that may sit inside a number before more digits → "f",
-# the sign → "-", all else → " ": an integer literal of ≥ 19 digits then reads
-# " 000…" or " -000…"; a fraction's or exponent's digits follow an "f"
+# digits → "0", the bytes that may come before more digits inside a number → "f", all
+# else (the sign too) → " ": an integer literal of 19 digits or more then reads
+# " 000…"; a fraction's digits follow an "f" (an exponent's may read " 000…" after a
+# minus sign: a false alarm, the strict parse then decides)
 _NUMBER_SHAPE = bytes(
-    ord("0") if chr(b).isdigit() and b < 128 else
-    ord("f") if chr(b) in ".eE+" else ord("-") if chr(b) == "-" else ord(" ")
+    ord("0") if 48 <= b <= 57 else ord("f") if chr(b) in ".eE+" else ord(" ")
     for b in range(256))
-_LONG = b"0" * 19
+_LONG = b" " + b"0" * 19
 
 
 def encode(obj: Any) -> bytes:
@@ -55,13 +56,12 @@ def encode(obj: Any) -> bytes:
         return json.dumps(obj, allow_nan=False).encode()
 
 
-def _shallow(data: dict[str, Any]) -> tuple[int, int, int]:
-    """(lists, objects, keys) among the object ``data``, its values and their items."""
-    lists, objects, keys = 0, 1, len(data)
+def _shallow(data: dict[str, Any]) -> tuple[int, int]:
+    """(lists, keys) among the object ``data``, its values and their items."""
+    lists, keys = 0, len(data)
     for value in data.values():
         kind = type(value)
         if kind is dict:
-            objects += 1
             keys += len(value)
             inner = list(value.values())
         elif kind is list:
@@ -74,14 +74,14 @@ def _shallow(data: dict[str, Any]) -> tuple[int, int, int]:
             lists += len(inner) if kinds == {list} else sum(map(list.__instancecheck__, inner))
         if dict in kinds:
             found = inner if kinds == {dict} else list(filter(dict.__instancecheck__, inner))
-            objects += len(found)
             keys += sum(map(len, found))
-    return lists, objects, keys
+    return lists, keys
 
 
 def _long_integer(raw: bytes) -> bool:
-    shape = b" " + raw.translate(_NUMBER_SHAPE)
-    return shape.find(b" " + _LONG) >= 0 or shape.find(b" -" + _LONG) >= 0
+    """An integer literal of ≥ 19 digits (or the like) in ``raw``, which starts with
+    ``{`` or white space: the value parsed to an object."""
+    return raw.translate(_NUMBER_SHAPE).find(_LONG) >= 0
 
 
 def decode_exact(raw: bytes) -> Any:
@@ -95,9 +95,8 @@ def decode_exact(raw: bytes) -> Any:
         return UNSURE
     if type(data) is not dict:
         return UNSURE
-    lists, objects, keys = _shallow(data)
-    if (raw.count(b"[") != lists or raw.count(b"{") != objects
-            or raw.count(b":") != keys or _long_integer(raw)):
+    lists, keys = _shallow(data)
+    if raw.count(b":") != keys or raw.count(b"[") != lists or _long_integer(raw):
         return UNSURE
     return data
 
