@@ -2,7 +2,8 @@
 
 Loaded versions are cached in-process keyed by (metric, incarnation uid, version);
 versions are immutable, and the active version number is read from Redis on every
-call, so the cache follows activations without invalidation.
+call (with the metric record, in one round trip), so the cache follows activations
+without invalidation.
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ from service.errors import Conflict, InvalidInput, NotFound, from_core
 from service.tables import Table
 
 from . import drift
-from .metrics import require_metric
+from .metrics import check_name
 from .versions import check_version_number
 
 if TYPE_CHECKING:
@@ -32,6 +33,15 @@ def _check_k(k: Any, limit: int) -> int | None:
         # exact and heuristic k-means both cost O(k·n) per pass: cap what one request asks
         raise InvalidInput.field("k", f"at most {limit} groups per request (LIKEWISE_MAX_GROUPS)")
     return k
+
+
+def _metric_and_active(ctx: Context, name: str) -> tuple[dict[str, Any], int | None]:
+    """The metric record (404 if none) and its active version: one Redis round trip."""
+    check_name(name)
+    metric, active = ctx.storage.metrics.get_with_active(name)
+    if metric is None:
+        raise NotFound(f"metric {name!r} does not exist")
+    return metric, active
 
 
 def load_version_metric(ctx: Context, metric: dict[str, Any], n: int) -> tuple[
@@ -66,10 +76,10 @@ def group(
 ) -> dict[str, Any]:
     """Group the table's records; ``id_column`` is echoed back as ``ids`` (and may be
     a column the metric does not use)."""
-    metric = require_metric(ctx, name)
+    metric, active = _metric_and_active(ctx, name)
     k_value = _check_k(k, ctx.settings.max_groups)
     if version is None:
-        version = ctx.storage.versions.active(name)
+        version = active
         if version is None:
             raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
     else:
