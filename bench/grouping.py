@@ -5,7 +5,8 @@ first 20 pixel features that vary), then records drawn from the data set are gro
 through the Flask app in process (real Redis; JSON in and out) and, as the reference,
 by the core's ``group_records`` on the same matrix, in the same run. Targets (issue 9):
 1,000 × 20 ≤ 1.5 × the reference, 100,000 × 20 ≤ 1.2 ×, and ``"k": "auto"`` ≤ 2 × a
-fixed k through the API.
+fixed k through the API. Beside them, the floor no JSON body goes under: the
+reference plus orjson's bare decode of the body (no checks, no table), as a ratio.
 
     .venv/bin/python bench/grouping.py [--quick]
 """
@@ -25,6 +26,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
+import orjson  # noqa: E402
 
 from bench._redis import clean_up, fit_once, redis_url, verdict  # noqa: E402
 from service.api import create_app  # noqa: E402
@@ -79,17 +81,19 @@ def main(quick: bool) -> None:
             ref = _median_time(lambda Xn=Xn: group_records(fitted, Xn, k=K), repeats)
             fixed = _median_time(lambda: api(K), repeats)
             auto = _median_time(lambda: api("auto"), repeats)
-            rows.append((n, ref, fixed, auto))
+            raw = bodies[K].encode()
+            decode = _median_time(lambda raw=raw: orjson.loads(raw), repeats)
+            rows.append((n, ref, fixed, auto, decode))
     finally:
         clean_up(ctx.redis, prefix, server)
     print(f"Grouping {K} groups through the API (JSON in and out) against group_records in "
           f"process, median of {repeats} (load average {os.getloadavg()[0]:.2f})")
     print(f"{'records':>9} {'in process s':>13} {'API k=5 s':>10} {'ratio':>6} "
-          f"{'API auto s':>11} {'auto/k=5':>9}")
-    for n, ref, fixed, auto in rows:
+          f"{'API auto s':>11} {'auto/k=5':>9} {'decode alone s':>15} {'floor':>6}")
+    for n, ref, fixed, auto, decode in rows:
         print(f"{n:>9,} {ref:>13.4f} {fixed:>10.4f} {fixed / ref:>6.2f} {auto:>11.4f} "
-              f"{auto / fixed:>9.2f}")
-    for n, ref, fixed, auto in rows:
+              f"{auto / fixed:>9.2f} {decode:>15.4f} {(ref + decode) / ref:>6.2f}")
+    for n, ref, fixed, auto, _ in rows:
         limit = 1.5 if n <= 1000 else 1.2
         print(f"target: {n:,} × 20 through the API ≤ {limit} × in process: "
               f"{fixed / ref:.2f} — {verdict(fixed / ref <= limit)}; k auto ≤ 2 × fixed k: "
