@@ -5,7 +5,8 @@ first 20 pixel features that vary), then records drawn from the data set are gro
 through the Flask app in process (real Redis; JSON in and out) and, as the reference,
 by the core's ``group_records`` on the same matrix, in the same run. Targets (issue 9):
 1,000 × 20 ≤ 1.5 × the reference, 100,000 × 20 ≤ 1.2 ×, and ``"k": "auto"`` ≤ 2 × a
-fixed k through the API.
+fixed k through the API. Beside them, the floor no JSON body goes under: the
+reference plus orjson's bare decode of the body (no checks, no table), as a ratio.
 
     .venv/bin/python bench/grouping.py [--quick]
 """
@@ -19,12 +20,14 @@ import secrets
 import statistics
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
+import orjson  # noqa: E402
 
 from bench._redis import clean_up, fit_once, redis_url, verdict  # noqa: E402
 from service.api import create_app  # noqa: E402
@@ -38,13 +41,16 @@ from tests.datasets import load_open, make_batches  # noqa: E402
 K = 5
 
 
-def _median_time(fn, repeats: int) -> float:
-    times = []
+def _interleaved(fns: dict[str, Callable[[], object]], repeats: int) -> dict[str, float]:
+    """Median seconds of each function, the functions taking turns within every repeat
+    so a change of the machine's load hits them all alike."""
+    times: dict[str, list[float]] = {name: [] for name in fns}
     for _ in range(repeats):
-        started = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - started)
-    return statistics.median(times)
+        for name, fn in fns.items():
+            started = time.perf_counter()
+            fn()
+            times[name].append(time.perf_counter() - started)
+    return {name: statistics.median(t) for name, t in times.items()}
 
 
 def main(quick: bool) -> None:
@@ -57,7 +63,7 @@ def main(quick: bool) -> None:
     X = X[:, np.argsort(X.std(axis=0))[::-1][:20]]  # the 20 most varied pixels
     feats = [f"px{j:02d}" for j in range(X.shape[1])]
     sizes = (1000,) if quick else (1000, 100_000)
-    repeats = 2 if quick else 7
+    repeats = {1000: 3 if quick else 41, 100_000: 7}
     rows = []
     try:
         metrics.put_metric(ctx, "bench", feats)
@@ -78,20 +84,22 @@ def main(quick: bool) -> None:
                 assert resp.status_code == 200, resp.get_data(as_text=True)[:300]
 
             api(K)  # warm the version cache
-            ref = _median_time(lambda Xn=Xn: group_records(fitted, Xn, k=K), repeats)
-            fixed = _median_time(lambda: api(K), repeats)
-            auto = _median_time(lambda: api("auto"), repeats)
-            rows.append((n, ref, fixed, auto))
+            raw = bodies[K].encode()
+            t = _interleaved({"ref": lambda Xn=Xn: group_records(fitted, Xn, k=K),
+                              "fixed": lambda: api(K), "auto": lambda: api("auto"),
+                              "decode": lambda raw=raw: orjson.loads(raw)}, repeats[n])
+            rows.append((n, t["ref"], t["fixed"], t["auto"], t["decode"]))
     finally:
         clean_up(ctx.redis, prefix, server)
     print(f"Grouping {K} groups through the API (JSON in and out) against group_records in "
-          f"process, median of {repeats} (load average {os.getloadavg()[0]:.2f})")
+          f"process, median of {', '.join(str(repeats[n]) for n in sizes)} turns (load average "
+          f"{os.getloadavg()[0]:.2f})")
     print(f"{'records':>9} {'in process s':>13} {'API k=5 s':>10} {'ratio':>6} "
-          f"{'API auto s':>11} {'auto/k=5':>9}")
-    for n, ref, fixed, auto in rows:
+          f"{'API auto s':>11} {'auto/k=5':>9} {'decode alone s':>15} {'floor':>6}")
+    for n, ref, fixed, auto, decode in rows:
         print(f"{n:>9,} {ref:>13.4f} {fixed:>10.4f} {fixed / ref:>6.2f} {auto:>11.4f} "
-              f"{auto / fixed:>9.2f}")
-    for n, ref, fixed, auto in rows:
+              f"{auto / fixed:>9.2f} {decode:>15.4f} {(ref + decode) / ref:>6.2f}")
+    for n, ref, fixed, auto, _ in rows:
         limit = 1.5 if n <= 1000 else 1.2
         print(f"target: {n:,} × 20 through the API ≤ {limit} × in process: "
               f"{fixed / ref:.2f} — {verdict(fixed / ref <= limit)}; k auto ≤ 2 × fixed k: "

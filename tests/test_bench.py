@@ -40,7 +40,7 @@ def test_ingest_bench_runs_small() -> None:
     out = _run("ingest.py", "--quick")
     for fmt in ("json", "csv", "arrow", "parquet"):
         assert out.count(f" {fmt} ") == 2  # a line in each table
-    assert "target: Arrow" in out and "Peak memory" in out
+    assert "target: Arrow" in out and "target: JSON ingest" in out and "Peak memory" in out
 
 
 def test_fit_budget_bench_runs_small_sizes() -> None:
@@ -63,6 +63,7 @@ def test_drift_overhead_bench_runs_quick() -> None:
 def test_grouping_bench_runs_quick() -> None:
     out = _run("grouping.py", "--quick")
     assert "in process s" in out and out.count("target:") == 1 and "k auto" in out
+    assert "decode alone" in out
 
 
 def test_throughput_bench_runs_quick() -> None:

@@ -51,6 +51,15 @@ class MetricStore:
             raws = pipe.execute()
         return [_decode(n, raw) if raw else None for n, raw in zip(names, raws, strict=True)]
 
+    def get_with_active(self, name: str) -> tuple[dict[str, Any] | None, int | None]:
+        """A metric (None if it does not exist) and its active version, one round trip."""
+        with self.redis.pipeline(transaction=False) as pipe:
+            pipe.hgetall(self.keys.metric(name))
+            pipe.get(self.keys.active(name))
+            raw, active = pipe.execute()
+        return (_decode(name, raw) if raw else None,
+                int(active) if active is not None else None)
+
     def names(self) -> list[str]:
         return sorted(text(n) for n in self.redis.smembers(self.keys.metric_names()))
 

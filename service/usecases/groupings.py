@@ -13,13 +13,11 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from service.core import CoreError, FittedMetric, RecordOverflowError, group_records
-from service.errors import InvalidInput, NotFound, from_core
+from service.errors import Conflict, InvalidInput, NotFound, from_core
 from service.tables import Matrix, Table
 
 from . import drift
-from .metrics import require_metric
-from .params import GroupCount, VersionNumber
-from .versions import chosen_version
+from .params import GroupCount, VersionNumber, metric_name
 
 if TYPE_CHECKING:
     from service.context import Context
@@ -30,6 +28,15 @@ def _within_limit(k: GroupCount | None, limit: int) -> None:
     if k is not None and k > limit:
         # exact and heuristic k-means both cost O(k·n) per pass: cap what one request asks
         raise InvalidInput.field("k", f"at most {limit} groups per request (LIKEWISE_MAX_GROUPS)")
+
+
+def _metric_and_active(ctx: Context, name: str) -> tuple[dict[str, Any], int | None]:
+    """The metric record (404 if none) and its active version: one Redis round trip."""
+    name = metric_name(name)
+    metric, active = ctx.storage.metrics.get_with_active(name)
+    if metric is None:
+        raise NotFound(f"metric {name!r} does not exist")
+    return metric, active
 
 
 def load_version_metric(ctx: Context, metric: dict[str, Any], n: int) -> tuple[
@@ -70,9 +77,11 @@ def prepare(ctx: Context, name: str, table: Table, k: GroupCount | None = None,
     """Check a grouping's options and table against the version it names (the active
     one by default) and read the matrix in that version's columns. ``k`` None: the
     service chooses it."""
-    metric = require_metric(ctx, name)
+    metric, active = _metric_and_active(ctx, name)
     _within_limit(k, ctx.settings.max_groups)
-    n = chosen_version(ctx, name, version)
+    n = version if version is not None else active
+    if n is None:
+        raise Conflict(f"metric {name!r} has no active version yet; run a fit first")
     fitted, features, inputs = load_version_metric(ctx, metric, n)
     if ignore_extra is None:
         ignore_extra = metric["inputs"]["ignore_extra_columns"]

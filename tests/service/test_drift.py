@@ -101,6 +101,7 @@ def test_references_live_with_their_versions_and_errors_name_the_field(
     _fit_all(ctx, run_worker_burst, ["m"])
     groupings.group(ctx, "m", as_table(feats, data[0][0]), k=group_count(2),
                     version=version_number(2))
+    assert BACKLOG.flush()  # its summary is written before the metric is deleted
     assert ctx.redis.exists(keys.drift_reference("m", 2))
     uid = ctx.storage.metrics.get("m")["uid"]
     metrics.delete_metric(ctx, "m")
