@@ -173,6 +173,7 @@ class WorkerState(str, Enum):
     STARTING = "starting"
     READY = "ready"  # waiting for a fit
     FITTING = "fitting"
+    GROUPING = "grouping"  # running a grouping run's job
     PAUSED = "paused"
 
 
@@ -180,6 +181,7 @@ _WORKER_STATES = {"starting": WorkerState.STARTING, "started": WorkerState.START
                   "idle": WorkerState.READY, "busy": WorkerState.FITTING,
                   "suspended": WorkerState.PAUSED}
 _JOB_ID = re.compile(r".+-fit-([0-9a-f]{20})-\d+")
+_RUN_JOB_ID = re.compile(r".+-grun-[0-9a-f]{20}-\d+")
 
 
 def _aware(dt: datetime) -> datetime:
@@ -224,6 +226,8 @@ def workers(ctx: Context) -> list[WorkerView]:
         state = _WORKER_STATES.get(str(getattr(raw, "value", raw)), WorkerState.STARTING)
         job_id = w.get_current_job_id()
         match = _JOB_ID.fullmatch(job_id) if job_id else None
+        if state is WorkerState.FITTING and job_id and _RUN_JOB_ID.fullmatch(job_id):
+            state = WorkerState.GROUPING
         beat = _aware(w.last_heartbeat) if w.last_heartbeat is not None else None
         out.append(WorkerView(w.name, state, beat, w.queue_names(),
                               match.group(1) if match else None))

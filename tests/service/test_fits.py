@@ -351,3 +351,29 @@ def test_the_queue_view_hides_a_fit_of_a_metric_the_caller_may_not_touch(ctx: Co
         assert hidden["name"] == seen["name"]
     finally:
         worker.register_death()
+
+
+def test_a_worker_on_a_grouping_run_reads_as_grouping(ctx: Context, run_worker_burst) -> None:
+    """A worker that took a grouping run's job (the queue's own dequeue and bookkeeping
+    calls) is shown ``grouping``, with no current fit; iris (scikit-learn's copy)."""
+    from rq import Queue, Worker
+
+    from service.usecases import grouping_runs
+
+    feats, data, _ = setup_metric(ctx, "m", n=2)
+    fit, _ = fits.request_fit(ctx, "m", FitParams.parse({}), "admin")
+    run_worker_burst(ctx)
+    assert fits.get_fit(ctx, fit["fit_id"])["status"] == "succeeded"
+    run = grouping_runs.start_run(ctx, "m", as_table(feats, data[0][0]))
+    job, _ = Queue.dequeue_any([ctx.queue], timeout=None, connection=ctx.redis)
+    assert run["run_id"] in job.id
+    worker = Worker([ctx.queue], connection=ctx.redis, name=f"{ctx.settings.key_prefix}-run")
+    worker.register_birth()
+    try:
+        worker.prepare_execution(job)
+        worker.set_state("busy")
+        [seen] = queues.queue_overview(ctx)["workers"]
+        assert (seen["state"], seen["current_fit"], seen["current_metric"]) == (
+            "grouping", None, None)
+    finally:
+        worker.register_death()
