@@ -12,6 +12,7 @@ from __future__ import annotations
 import ast
 import inspect
 from pathlib import Path
+from typing import Generic, Protocol
 
 import pytest
 
@@ -41,7 +42,9 @@ PAIRS = [*STORES.values(), (ports.FitQueue, jobqueue.RQFitQueue)]
 
 
 def members(protocol: type) -> set[str]:
-    return {n for n in vars(protocol) if not n.startswith("_")}
+    """Public members, those of the protocols it extends included."""
+    return {n for c in protocol.__mro__ if c not in (Protocol, Generic, object)
+            for n in vars(c) if not n.startswith("_")}
 
 
 def _shape(fn: object) -> list[tuple[str, object, object]]:

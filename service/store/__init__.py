@@ -6,7 +6,8 @@
 - ``idempotency.py`` — stored answers to retried requests;
 - ``tallies.py`` — deployment-wide counters for ``/metrics`` (fits ended, activations);
 - ``drift.py`` — hourly drift summaries of grouped records (never the records);
-- ``runs.py`` — grouping runs: their chunked records, result chunks and leases;
+- ``runs.py`` — grouping runs: their chunked records and result chunks;
+- ``leases.py`` — the lease a running fit or grouping run holds (both stores use it);
 - ``errors.py`` — what persistence refuses, in its own terms (``StoreError``).
 
 Writes that belong together run in one MULTI/EXEC (or one Lua script); read-check-write

@@ -17,6 +17,7 @@ from service.lifecycle import Fit, FitStatus, IllegalMove
 from .codecs import dumps, from_json_fields, json_fields, loads, text
 from .errors import MissingMetric
 from .keys import Keys
+from .leases import RELEASE, Leases
 from .tallies import TallyStore
 from .tx import transact
 
@@ -29,15 +30,11 @@ Enqueue = Callable[["Pipeline"], None]
 # delete the dedupe key only while it still points at this fit (atomic inside MULTI)
 _DROP_DEDUPE = ("if redis.call('GET', KEYS[1]) == ARGV[1] then "
                 "return redis.call('DEL', KEYS[1]) end return 0")
-_RENEW = ("if redis.call('GET', KEYS[1]) == ARGV[1] then "
-          "return redis.call('PEXPIRE', KEYS[1], ARGV[2]) end return 0")
-_RELEASE = ("if redis.call('GET', KEYS[1]) == ARGV[1] then "
-            "return redis.call('DEL', KEYS[1]) end return 0")
 _PROGRESS = ("if redis.call('HGET', KEYS[1], 'status') == ARGV[3] then "
              "redis.call('HSET', KEYS[1], 'stage', ARGV[1], 'progress', ARGV[2]) end")
 
 
-class FitStore:
+class FitStore(Leases):
     def __init__(self, redis: redis.Redis, keys: Keys, tallies: TallyStore) -> None:
         self.redis, self.keys, self.tallies = redis, keys, tallies
 
@@ -109,7 +106,7 @@ class FitStore:
             pipe.sadd(k.live_fits(), fit.fit_id)
         else:
             pipe.srem(k.live_fits(), fit.fit_id)
-            pipe.eval(_RELEASE, 1, k.lease(fit.fit_id), fit.job_id)
+            pipe.eval(RELEASE, 1, k.lease(fit.fit_id), fit.job_id)
             if fit.dedupe_key and (previous is None or previous.live):
                 pipe.eval(_DROP_DEDUPE, 1, fit.dedupe_key, fit.fit_id)
             if previous is not None and previous.live:
@@ -169,20 +166,8 @@ class FitStore:
         self.redis.eval(_PROGRESS, 1, self.keys.fit(fit_id), dumps(stage), dumps(progress),
                         dumps(FitStatus.RUNNING.value))
 
-    # ---- leases: a running attempt proves it is alive --------------------------------
-    def take_lease(self, fit_id: str, job_id: str, ttl_ms: int) -> None:
-        self.redis.set(self.keys.lease(fit_id), job_id, px=ttl_ms)
-
-    def renew_lease(self, fit_id: str, job_id: str, ttl_ms: int) -> bool:
-        """Extend this attempt's lease; False if it lapsed or another attempt holds it."""
-        return bool(self.redis.eval(_RENEW, 1, self.keys.lease(fit_id), job_id, ttl_ms))
-
-    def release_lease(self, fit_id: str, job_id: str) -> None:
-        self.redis.eval(_RELEASE, 1, self.keys.lease(fit_id), job_id)
-
-    def lease_holder(self, fit_id: str) -> str | None:
-        """The job id whose attempt holds the fit's lease (None once it lapsed)."""
-        return text(self.redis.get(self.keys.lease(fit_id)))
+    def _lease_key(self, owner: str) -> str:
+        return self.keys.lease(owner)
 
     def forget_live(self, fit_id: str) -> None:
         """Drop an id from the live set (its record is gone)."""

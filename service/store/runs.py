@@ -17,8 +17,9 @@ from service.run_lifecycle import Run, RunStatus
 
 from .codecs import dumps, from_json_fields, json_fields, text
 from .errors import MissingMetric
-from .fits import _RELEASE, _RENEW, Enqueue
+from .fits import Enqueue
 from .keys import Keys
+from .leases import RELEASE, Leases
 from .tx import transact
 
 if TYPE_CHECKING:
@@ -30,7 +31,7 @@ _PROGRESS = ("if redis.call('HGET', KEYS[1], 'status') == ARGV[3] then "
              "redis.call('HSET', KEYS[1], 'stage', ARGV[1], 'progress', ARGV[2]) end")
 
 
-class RunStore:
+class RunStore(Leases):
     def __init__(self, redis: redis.Redis, keys: Keys) -> None:
         self.redis, self.keys = redis, keys
 
@@ -105,7 +106,7 @@ class RunStore:
             pipe.hset(k.run(run_id), mapping=json_fields(new.to_record()))
             if not new.live:
                 pipe.srem(k.live_runs(), run_id)
-                pipe.eval(_RELEASE, 1, k.run_lease(run_id), new.job_id)
+                pipe.eval(RELEASE, 1, k.run_lease(run_id), new.job_id)
                 pipe.delete(*(k.run_input(run_id, i) for i in range(new.n_chunks)))
                 ttl = max(1, int(keep_seconds or 1))
                 pipe.expire(k.run(run_id), ttl)
@@ -144,18 +145,8 @@ class RunStore:
     def forget_live(self, run_id: str) -> None:
         self.redis.srem(self.keys.live_runs(), run_id)
 
-    # ---- leases: a grouping attempt proves it is alive -------------------------------
-    def take_lease(self, run_id: str, job_id: str, ttl_ms: int) -> None:
-        self.redis.set(self.keys.run_lease(run_id), job_id, px=ttl_ms)
-
-    def renew_lease(self, run_id: str, job_id: str, ttl_ms: int) -> bool:
-        return bool(self.redis.eval(_RENEW, 1, self.keys.run_lease(run_id), job_id, ttl_ms))
-
-    def release_lease(self, run_id: str, job_id: str) -> None:
-        self.redis.eval(_RELEASE, 1, self.keys.run_lease(run_id), job_id)
-
-    def lease_holder(self, run_id: str) -> str | None:
-        return text(self.redis.get(self.keys.run_lease(run_id)))
+    def _lease_key(self, owner: str) -> str:
+        return self.keys.run_lease(owner)
 
 
 __all__ = ["RunStore"]
