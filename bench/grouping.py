@@ -6,7 +6,8 @@ through the Flask app in process (real Redis; JSON in and out) and, as the refer
 by the core's ``group_records`` on the same matrix, in the same run. Targets (issue 9):
 1,000 × 20 ≤ 1.5 × the reference, 100,000 × 20 ≤ 1.2 ×, and ``"k": "auto"`` ≤ 2 × a
 fixed k through the API. Beside them, the floor no JSON body goes under: the
-reference plus orjson's bare decode of the body (no checks, no table), as a ratio.
+reference plus the bare decode of the body into a matrix (``jsonio.number_rows``, the
+service's own decoder for number tables: no envelope checks, no table), as a ratio.
 
     .venv/bin/python bench/grouping.py [--quick]
 """
@@ -27,10 +28,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
-import orjson  # noqa: E402
 
 from bench._redis import clean_up, fit_once, redis_url, verdict  # noqa: E402
-from service.api import create_app  # noqa: E402
+from service.api import create_app, jsonio  # noqa: E402
 from service.config import Settings  # noqa: E402
 from service.context import Context  # noqa: E402
 from service.core import FittedMetric, group_records  # noqa: E402
@@ -75,7 +75,8 @@ def main(quick: bool) -> None:
         rng = np.random.default_rng(1)
         for n in sizes:
             Xn = X[rng.integers(0, len(X), n)] + rng.normal(0, 0.01, (n, X.shape[1]))
-            bodies = {k: json.dumps({"columns": feats, "rows": Xn.tolist(), "k": k})
+            # bytes, as a client sends them (a str would be encoded on every call)
+            bodies = {k: json.dumps({"columns": feats, "rows": Xn.tolist(), "k": k}).encode()
                       for k in (K, "auto")}
 
             def api(k, bodies=bodies) -> None:
@@ -84,10 +85,10 @@ def main(quick: bool) -> None:
                 assert resp.status_code == 200, resp.get_data(as_text=True)[:300]
 
             api(K)  # warm the version cache
-            raw = bodies[K].encode()
+            raw = bodies[K]
             t = _interleaved({"ref": lambda Xn=Xn: group_records(fitted, Xn, k=K),
                               "fixed": lambda: api(K), "auto": lambda: api("auto"),
-                              "decode": lambda raw=raw: orjson.loads(raw)}, repeats[n])
+                              "decode": lambda raw=raw: jsonio.number_rows(raw)}, repeats[n])
             rows.append((n, t["ref"], t["fixed"], t["auto"], t["decode"]))
     finally:
         clean_up(ctx.redis, prefix, server)

@@ -393,6 +393,24 @@ def _from_rows(columns: list[Any], rows: list[Any]) -> Table:
     return _cells(rows, "rows", tuple(columns), raw)
 
 
+def from_number_rows(columns: list[Any], X: np.ndarray, max_records: int | None = None,
+                     max_bytes: int | None = None) -> Table:
+    """The table of a ``columns`` + ``rows`` envelope whose rows were read straight into
+    the float64 matrix ``X`` (each row a list of ``len(columns)`` numbers, see
+    ``service.api.jsonio.number_rows``): the checks and errors :func:`from_json` gives
+    that envelope. No raw column values are kept (as a :meth:`Table.portable` table)."""
+    if not isinstance(columns, list) or not columns:
+        raise _bad("columns", "must be a list of column names")
+    check_size(X.shape[0], len(columns), "rows", max_records, max_bytes)
+    _check_names(columns, "columns")
+    if len(set(columns)) != len(columns):
+        raise _bad("columns", "contains duplicate names")
+    finite = np.isfinite(X).all(axis=1)
+    if not finite.all():
+        raise _bad(f"rows[{int(np.argmin(finite))}]", "values must be finite numbers")
+    return Table(tuple(columns), X, None, {}, "rows", _Kept({}))
+
+
 def from_json(body: dict[str, Any], max_records: int | None = None,
               max_bytes: int | None = None) -> Table:
     """The table of a JSON envelope (``records``, or ``columns`` and ``rows``)."""

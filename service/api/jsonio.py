@@ -25,15 +25,24 @@ every container with content lies within those levels (an object found nowhere h
 no key, so is empty), and the value is at most four levels deep: the strict parser's
 recursion limit is not in play. Otherwise the strict parse decides. Tested against the
 standard library in ``tests/api/test_jsonio.py``.
+
+Number tables skip Python objects altogether: :func:`number_rows` reads a
+``columns`` + ``rows`` body whose rows are all numbers with simdjson, straight into a
+float64 matrix (about 4× faster than orjson's lists plus ``np.asarray`` on a
+100,000 × 20 body), and hands anything else to the paths above.
 """
 
 from __future__ import annotations
 
 import gc
 import json
+import re
+import threading
 from typing import Any
 
+import numpy as np
 import orjson
+import simdjson
 from flask.json.provider import JSONProvider
 
 _OPTIONS = orjson.OPT_NON_STR_KEYS | orjson.OPT_SERIALIZE_NUMPY
@@ -115,6 +124,94 @@ def decode_exact(raw: bytes) -> Any:
     if raw.count(b":") != keys or raw.count(b"[") != lists or _long_integer(raw):
         return UNSURE
     return data
+
+
+_OPENS_OBJECT = re.compile(rb"[ \t\n\r]*\{")
+_SCALARS = {str, int, float, bool, type(None)}
+
+
+def number_rows(raw: bytes) -> tuple[dict[str, Any], np.ndarray] | object:
+    """``(envelope, X)`` for a body that is an object with ``columns`` (c names) and
+    ``rows`` (n lists of c numbers each): ``X`` the n × c float64 matrix of the rows,
+    ``envelope`` every other key's value; :data:`UNSURE` for any other body, or when
+    the strict parse could read it differently.
+
+    What makes the answer equal the strict parse's (tested in
+    ``tests/api/test_jsonio.py``): simdjson accepts only RFC 8259 JSON in UTF-8 and
+    fails on numbers outside a double or 64-bit integers (the standard library's
+    extras — ``NaN``, surrogate-escaped bytes — take the strict path); a body without
+    ``\\`` has no escapes, so no lone surrogate; the object's keys are listed as
+    given, so a duplicate shows; the other values must be scalars or lists of
+    scalars (no object whose duplicate keys a conversion could hide). ``rows`` is
+    flattened into doubles only if every leaf is a number; every item of it is a
+    list of c values, and the text holds no ``[`` beyond those lists and the other
+    values' lists, so no item holds a list: each row is c numbers. Integers convert
+    to the nearest double, as ``float()`` does. Parsing is linear in the body.
+    """
+    if type(raw) is not bytes or not _OPENS_OBJECT.match(raw) or b"\\" in raw:
+        return UNSURE
+    try:
+        doc = _parse(raw)
+    except (ValueError, RuntimeError):  # not JSON simdjson takes: the strict parse decides
+        return UNSURE
+    try:
+        return _read_number_rows(raw, doc)
+    finally:
+        del doc  # the thread's parser is reusable once nothing refers to its last document
+
+
+_local = threading.local()
+
+
+def _parse(raw: bytes) -> Any:
+    """simdjson's parse on this thread's parser: a parser keeps the buffers its largest
+    document needed, and allocating them afresh costs about half a parse (measured on
+    40 MB bodies); a fresh parser when the last document is still referenced."""
+    parser = getattr(_local, "parser", None)
+    if parser is not None:
+        try:
+            return parser.parse(raw)
+        except RuntimeError:  # the parser refuses to run while its last document lives
+            pass
+    _local.parser = simdjson.Parser()
+    return _local.parser.parse(raw)
+
+
+def _read_number_rows(raw: bytes, doc: Any) -> tuple[dict[str, Any], np.ndarray] | object:
+    if not isinstance(doc, simdjson.Object):
+        return UNSURE
+    keys = list(doc.keys())
+    if len(set(keys)) != len(keys) or "rows" not in keys or "columns" not in keys:
+        return UNSURE
+    envelope: dict[str, Any] = {}
+    lists = 0
+    for key in keys:
+        if key == "rows":
+            continue
+        value = doc[key]
+        if isinstance(value, simdjson.Array):
+            value = value.as_list()
+            if not set(map(type, value)) <= _SCALARS:
+                return UNSURE
+            lists += 1
+        elif isinstance(value, simdjson.Object):
+            return UNSURE
+        envelope[key] = value
+    rows, columns = doc["rows"], envelope["columns"]
+    if not isinstance(rows, simdjson.Array) or type(columns) is not list:
+        return UNSURE
+    n, c = len(rows), len(columns)
+    if n == 0 or c == 0:
+        return UNSURE
+    try:
+        if set(map(len, rows)) != {c}:  # a number has no len: TypeError
+            return UNSURE
+        flat = np.frombuffer(rows.as_buffer(of_type="d"), dtype=np.float64)
+    except (TypeError, ValueError):  # a leaf that is not a number
+        return UNSURE
+    if flat.size != n * c or raw.count(b"[") != 1 + n + lists:
+        return UNSURE
+    return envelope, flat.reshape(n, c)
 
 
 class FastJSON(JSONProvider):
