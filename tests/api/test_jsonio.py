@@ -14,6 +14,7 @@ import random
 import struct
 from typing import Any
 
+import numpy as np
 import pytest
 
 from service.api import bodies, jsonio
@@ -197,3 +198,170 @@ def test_non_finite_literals_are_refused_as_before(api: SpecClient, metric: str,
         with unchanged():
             assert_problem(api.post("/v1/metrics/iris/batches", data=raw,
                                     content_type="application/json"), 422, "rows[3]")
+
+
+# -- number tables read straight into a matrix (jsonio.number_rows) -----------------
+#
+# Reference: the same body read with the number path switched off, i.e. the strict
+# parse (or orjson where decode_exact proves it equal) and service.tables.from_json.
+# The table's numbers are compared bit for bit, the envelope by type and value, and
+# a refusal by its type, detail and errors.
+
+
+def _read(raw: bytes, kind: str, number_path: bool, monkeypatch: pytest.MonkeyPatch,
+          caps: tuple[int | None, int | None] = (None, None)) -> Any:
+    from marshmallow import ValidationError
+
+    from service.api import offload
+    from service.errors import ServiceError
+
+    with monkeypatch.context() as m:
+        if not number_path:
+            m.setattr(offload, "number_rows", lambda raw: jsonio.UNSURE)
+        try:
+            table, envelope = offload.read_json_table(raw, kind, caps)
+        except ServiceError as exc:
+            return "error", type(exc).__name__, exc.detail, exc.errors
+        except ValidationError as exc:
+            return "invalid", exc.messages
+    missing = None if table.missing is None else table.missing.tolist()
+    return ("ok", table.names, table.numbers.shape, table.numbers.tobytes(), missing,
+            sorted(table.text), table.kind, table.groups, envelope)
+
+
+def _check_table(raw: bytes, monkeypatch: pytest.MonkeyPatch, **kw: Any) -> Any:
+    outcomes = []
+    for kind in ("grouping", "batch"):
+        fast = _read(raw, kind, True, monkeypatch, **kw)
+        strict = _read(raw, kind, False, monkeypatch, **kw)
+        assert _same(fast, strict), (raw[:200], kind, fast, strict)
+        outcomes.append(fast)
+    return outcomes
+
+
+NUMBER_SHAPES = [
+    '{{"columns": ["a", "b"], "rows": [[{n}, 1.5], [2, {n}]], "k": 2}}',
+    '{{"columns": ["a", "b"], "rows": [[{n}, 1.5], [2, {n}]], "groups": [1, 2]}}',
+    '{{"rows": [[{n}]], "columns": ["a"], "k": {n}, "version": {n}}}',
+    '{{"columns": ["a", "b"], "rows": [[{n}, {n}]], "groups": [{n}, 1]}}',
+]
+
+
+@pytest.mark.parametrize("number", NUMBERS)
+def test_number_tables_read_as_the_strict_path_reads_them(
+        number: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    for shape in NUMBER_SHAPES:
+        _check_table(shape.format(n=number).encode(), monkeypatch)
+
+
+def test_number_rows_are_bit_for_bit_the_standard_librarys(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    rng = random.Random(1)
+    cells = []
+    while len(cells) < 6000:
+        x = struct.unpack("<d", struct.pack("<Q", rng.getrandbits(64)))[0]
+        if x == x and abs(x) != float("inf"):
+            cells.append(repr(x))
+        cells.append(f"{rng.uniform(-1e6, 1e6):.{rng.randint(0, 25)}e}")
+        cells.append(str(rng.randint(-2**63, 2**64 - 1)))  # 64-bit: doubles round them
+    rows = ",".join("[" + ",".join(cells[i:i + 4]) + "]" for i in range(0, len(cells) - 3, 4))
+    raw = ('{"columns": ["a", "b", "c", "d"], "rows": [' + rows + '], "k": 3}').encode()
+    parsed = jsonio.number_rows(raw)
+    assert parsed is not jsonio.UNSURE  # the number path was taken
+    strict = json.loads(raw)
+    assert parsed[1].tobytes() == np.array(strict["rows"], dtype=float).tobytes()
+    _check_table(raw, monkeypatch)
+
+
+# bodies the number path must leave to the strict path (each still read as before)
+NOT_NUMBER_TABLES = [
+    b'{"columns": ["a", "b"], "rows": [[1, [2]], [3, 4]]}',  # a list with one number
+    b'{"columns": ["a", "b"], "rows": [[[1, 2], []], [3, 4]]}',  # leaves add up
+    b'{"columns": ["a", "b"], "rows": [[1, 2, 3], [4]]}',  # ragged, same total
+    b'{"columns": ["a", "b"], "rows": [[1, 2], 3, 4]}',
+    b'{"columns": ["a", "b"], "rows": [[1, null], [3, 4]]}',
+    b'{"columns": ["a", "b"], "rows": [[1, true], [3, 4]]}',
+    b'{"columns": ["a", "b"], "rows": [[1, "x"], [3, 4]]}',
+    b'{"columns": ["a", "b"], "rows": [[1, {"x": 1}], [3, 4]]}',
+    b'{"columns": ["a", "b"], "rows": [[1, 2], "ab"]}',
+    b'{"columns": ["a", "b"], "rows": [[1, 2]], "rows": [[3, 4]]}',
+    b'{"columns": ["a", "b"], "columns": ["a", "b"], "rows": [[1, 2]]}',
+    b'{"columns": ["a", "b"], "rows": [[1, 2]], "k": 2, "k": 3}',
+    b'{"columns": ["a", "b"], "rows": [[1, 2]], "k": {"x": 1, "x": 2}}',
+    b'{"columns": ["a", "b"], "rows": [[1, 2]], "groups": [{"x": 1}]}',
+    b'{"columns": ["a", "b"], "rows": [[1, 2]], "groups": [[1]]}',
+    b'{"columns": ["a", "\\u0062"], "rows": [[1, 2]]}',
+    b'{"columns": ["a", "\\ud800"], "rows": [[1, 2]]}',
+    b'{"columns": ["a[0]", "b"], "rows": [[1, 2]]}',  # a "[" inside a string
+    b'{"columns": ["a", "b"], "rows": [[1, NaN]]}',
+    b'{"columns": ["a", "b"], "rows": [[1, 1e999]]}',
+    b'{"columns": ["a", "b"], "rows": [[1, 2]]} x',
+    b'\xef\xbb\xbf{"columns": ["a", "b"], "rows": [[1, 2]]}',
+    '{"columns": ["a", "b"], "rows": [[1, 2]]}'.encode("utf-16"),
+    b'{"columns": ["a", "\xed\xa0\x80"], "rows": [[1, 2]]}',  # a surrogate, UTF-8 encoded
+    b'{"columns": [], "rows": [[1, 2]]}',
+    b'{"columns": ["a", "b"], "rows": []}',
+    b'{"columns": "ab", "rows": [[1, 2]]}',
+    b'{"columns": ["a", "b"], "rows": {"a": 1}}',
+    b'{"records": [{"a": 1}], "columns": ["a"], "rows": [[1]]}',
+    b'[[1, 2]]',
+]
+
+
+@pytest.mark.parametrize("raw", NOT_NUMBER_TABLES)
+def test_other_table_bodies_are_left_to_the_strict_path(
+        raw: bytes, monkeypatch: pytest.MonkeyPatch) -> None:
+    assert jsonio.number_rows(raw) is jsonio.UNSURE
+    _check_table(raw, monkeypatch)
+
+
+NUMBER_TABLE_ERRORS = [
+    (b'{"columns": ["a", "a"], "rows": [[1, 2]]}', "columns"),
+    (b'{"columns": ["a", ""], "rows": [[1, 2]]}', "columns"),
+    (b'{"columns": ["a", 3], "rows": [[1, 2]]}', "columns"),
+    (b'{"columns": ["a", "b"], "rows": [[1, 2]], "k": "many"}', "k"),
+    (b'{"columns": ["a", "b"], "rows": [[1, 2]], "unknown": 1}', "unknown"),
+    (b'{"columns": ["a", "b"], "rows": [[1, 2], [3, 4]], "groups": [1]}', "groups"),
+    (b' \n{"columns": ["a", "b"], "rows": [[1, 2], [3, 4], [5, 6]]}', None),  # caps
+]
+
+
+@pytest.mark.parametrize(("raw", "field"), NUMBER_TABLE_ERRORS)
+def test_number_tables_are_refused_as_before(raw: bytes, field: str | None,
+                                             monkeypatch: pytest.MonkeyPatch) -> None:
+    assert jsonio.number_rows(raw) is not jsonio.UNSURE
+    outcomes = _check_table(raw, monkeypatch, caps=(2, None))
+    assert any(o[0] != "ok" for o in outcomes)
+    if field is None:  # three records over a cap of two
+        assert outcomes[0][:2] == ("error", "PayloadTooLarge")
+
+
+def test_a_document_still_referenced_does_not_block_the_next_parse() -> None:
+    raw = b'{"columns": ["a"], "rows": [[1], [2]]}'
+    held = jsonio._parse(raw)  # the thread's parser's document, kept alive
+    envelope, X = jsonio.number_rows(raw)
+    assert envelope == {"columns": ["a"]} and X.tolist() == [[1.0], [2.0]]
+    assert list(held.keys()) == ["columns", "rows"]
+
+
+def test_a_large_number_table_is_grouped_without_the_helper_process(
+        api: SpecClient, fitted: dict[str, Any], monkeypatch: pytest.MonkeyPatch) -> None:
+    """Over the offload size, a number table never reaches the helper; the grouping
+    equals the one of the same rows in the records form (which the helper parses)."""
+    from service.api import offload
+
+    X, _ = iris_batches(1, seed=8)[0]
+    rows = np.tile(X, (2500, 1))
+    body = {"columns": IRIS_FEATURES, "rows": rows.tolist(), "k": 3}
+    raw = json.dumps(body).encode()
+    assert len(raw) > offload.OFFLOAD_BYTES
+    records = json.dumps({"records": as_records(rows), "k": 3}).encode()
+    expected = api.post("/v1/metrics/iris/groupings", data=records,
+                        content_type="application/json")
+    assert expected.status_code == 200
+    with monkeypatch.context() as m:
+        m.setattr(offload, "_executor", lambda: pytest.fail("the helper was asked"))
+        resp = api.post("/v1/metrics/iris/groupings", data=raw,
+                        content_type="application/json")
+    assert resp.status_code == 200, resp.get_data(as_text=True)
+    assert resp.get_json() == expected.get_json()
