@@ -85,18 +85,24 @@ def test_numbers_parse_as_the_standard_library_parses_them(
         _check(shape.format(n=number).encode(), monkeypatch)
 
 
-def test_fast_path_values_are_bit_for_bit_the_standard_librarys(
-        monkeypatch: pytest.MonkeyPatch) -> None:
-    rng = random.Random(0)
-    cells = []
-    while len(cells) < 4000:
+def _random_number_table(rng: random.Random, n_cells: int, largest: int,
+                         lowest: int | None = None) -> bytes:
+    """Rows of 4 cells: random doubles' shortest forms, decimals of 0–25 digits and
+    integers in [lowest, largest] (lowest: -largest)."""
+    cells: list[str] = []
+    while len(cells) < n_cells:
         x = struct.unpack("<d", struct.pack("<Q", rng.getrandbits(64)))[0]
         if x == x and abs(x) != float("inf"):
             cells.append(repr(x))
         cells.append(f"{rng.uniform(-1e6, 1e6):.{rng.randint(0, 25)}e}")
-        cells.append(str(rng.randint(-10**18 + 1, 10**18 - 1)))  # 18 digits at most
+        cells.append(str(rng.randint(-largest if lowest is None else lowest, largest)))
     rows = ",".join("[" + ",".join(cells[i:i + 4]) + "]" for i in range(0, len(cells) - 3, 4))
-    raw = ('{"columns": ["a", "b", "c", "d"], "rows": [' + rows + "]}").encode()
+    return ('{"columns": ["a", "b", "c", "d"], "rows": [' + rows + '], "k": 3}').encode()
+
+
+def test_fast_path_values_are_bit_for_bit_the_standard_librarys(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    raw = _random_number_table(random.Random(0), 4000, 10**18 - 1)  # 18 digits at most
     assert jsonio.decode_exact(raw) is not jsonio.UNSURE  # the fast path was taken
     _check(raw, monkeypatch)
 
@@ -256,16 +262,8 @@ def test_number_tables_read_as_the_strict_path_reads_them(
 
 def test_number_rows_are_bit_for_bit_the_standard_librarys(
         monkeypatch: pytest.MonkeyPatch) -> None:
-    rng = random.Random(1)
-    cells = []
-    while len(cells) < 6000:
-        x = struct.unpack("<d", struct.pack("<Q", rng.getrandbits(64)))[0]
-        if x == x and abs(x) != float("inf"):
-            cells.append(repr(x))
-        cells.append(f"{rng.uniform(-1e6, 1e6):.{rng.randint(0, 25)}e}")
-        cells.append(str(rng.randint(-2**63, 2**64 - 1)))  # 64-bit: doubles round them
-    rows = ",".join("[" + ",".join(cells[i:i + 4]) + "]" for i in range(0, len(cells) - 3, 4))
-    raw = ('{"columns": ["a", "b", "c", "d"], "rows": [' + rows + '], "k": 3}').encode()
+    # integers within 64 bits, which doubles round (beyond them: the strict path)
+    raw = _random_number_table(random.Random(1), 6000, 2**64 - 1, lowest=-2**63)
     parsed = jsonio.number_rows(raw)
     assert parsed is not jsonio.UNSURE  # the number path was taken
     strict = json.loads(raw)
