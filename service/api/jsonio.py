@@ -146,35 +146,54 @@ def number_rows(raw: bytes) -> tuple[dict[str, Any], np.ndarray] | object:
     flattened into doubles only if every leaf is a number; every item of it is a
     list of c values, and the text holds no ``[`` beyond those lists and the other
     values' lists, so no item holds a list: each row is c numbers. Integers convert
-    to the nearest double, as ``float()`` does. Parsing is linear in the body.
+    to the nearest double, as ``float()`` does. Parsing is linear in the body; bodies
+    over :data:`INLINE_BYTES` are left to the helper process.
     """
     if type(raw) is not bytes or not _OPENS_OBJECT.match(raw) or b"\\" in raw:
         return UNSURE
-    try:
-        doc = _parse(raw)
-    except (ValueError, RuntimeError):  # not JSON simdjson takes: the strict parse decides
+    if len(raw) > INLINE_BYTES:
         return UNSURE
+    parser, kept = _take_parser()
+    values = 0
     try:
-        return _read_number_rows(raw, doc)
-    finally:
-        del doc  # the thread's parser is reusable once nothing refers to its last document
-
-
-_local = threading.local()
-
-
-def _parse(raw: bytes) -> Any:
-    """simdjson's parse on this thread's parser: a parser keeps the buffers its largest
-    document needed, and allocating them afresh costs about half a parse (measured on
-    40 MB bodies); a fresh parser when the last document is still referenced."""
-    parser = getattr(_local, "parser", None)
-    if parser is not None:
         try:
-            return parser.parse(raw)
-        except RuntimeError:  # the parser refuses to run while its last document lives
-            pass
-    _local.parser = simdjson.Parser()
-    return _local.parser.parse(raw)
+            doc = parser.parse(raw)
+        except (ValueError, RuntimeError):  # not JSON simdjson takes: the strict parse decides
+            return UNSURE
+        try:
+            answer = _read_number_rows(raw, doc)
+            if answer is not UNSURE:
+                values = answer[1].size  # type: ignore[index]
+            return answer
+        finally:
+            del doc  # the parser is reusable once nothing refers to its last document
+    finally:
+        if kept:
+            _give_back(parser, values)
+
+
+INLINE_BYTES = 64 * 1024 * 1024  # larger bodies (grouping runs) go to the helper process
+# a parser keeps the buffers its largest document needed (~16 bytes a value): one that
+# read more values than this, or whose body turned out not to be a number table, is
+# dropped instead of kept
+KEEP_VALUES = 8 * 1024 * 1024
+_kept: dict[str, simdjson.Parser] = {}
+_kept_lock = threading.Lock()
+
+
+def _take_parser() -> tuple[simdjson.Parser, bool]:
+    """The process's kept parser (allocating a parser's buffers afresh costs about half
+    a parse on a 40 MB body, measured), or a new one while another thread uses it;
+    True when it is the kept one, to be given back."""
+    if not _kept_lock.acquire(blocking=False):
+        return simdjson.Parser(), False
+    return _kept.pop("parser", None) or simdjson.Parser(), True
+
+
+def _give_back(parser: simdjson.Parser, values: int) -> None:
+    if 0 < values <= KEEP_VALUES:
+        _kept["parser"] = parser
+    _kept_lock.release()
 
 
 def _count(raw: bytes, byte: bytes) -> int:

@@ -9,10 +9,10 @@ request's thread waits on it without holding the GIL. Errors come back as the sa
 problems an inline parse gives.
 
 A body that is a plain number table (``columns`` + ``rows`` of numbers only, no
-column to echo) is read inline whatever its size: simdjson parses it in linear time
-at about 0.7 GB/s into one float64 matrix (``service.api.jsonio.number_rows``), so it
-holds the GIL for tens of milliseconds, not seconds, and shipping it to the helper
-would cost more than the parse.
+column to echo) of at most ``jsonio.INLINE_BYTES`` (64 MiB) is read inline instead:
+simdjson parses it in time linear in the body into one float64 matrix
+(``service.api.jsonio.number_rows``), holding the GIL for a fraction of a second at
+most, and shipping it to the helper would cost more than the parse.
 """
 
 from __future__ import annotations

@@ -334,12 +334,26 @@ def test_number_tables_are_refused_as_before(raw: bytes, field: str | None,
         assert outcomes[0][:2] == ("error", "PayloadTooLarge")
 
 
-def test_a_document_still_referenced_does_not_block_the_next_parse() -> None:
+def test_the_kept_parser_is_shared_safely_and_bounded(monkeypatch: pytest.MonkeyPatch
+                                                      ) -> None:
     raw = b'{"columns": ["a"], "rows": [[1], [2]]}'
-    held = jsonio._parse(raw)  # the thread's parser's document, kept alive
-    envelope, X = jsonio.number_rows(raw)
-    assert envelope == {"columns": ["a"]} and X.tolist() == [[1.0], [2.0]]
-    assert list(held.keys()) == ["columns", "rows"]
+    jsonio._kept.clear()
+    assert jsonio.number_rows(raw)[1].tolist() == [[1.0], [2.0]]
+    kept = jsonio._kept["parser"]  # kept for the next body
+    assert jsonio.number_rows(raw)[1].tolist() == [[1.0], [2.0]]
+    assert jsonio._kept["parser"] is kept
+    with jsonio._kept_lock:  # another thread is parsing: a parser of its own
+        assert jsonio.number_rows(raw)[1].tolist() == [[1.0], [2.0]]
+    assert jsonio._kept["parser"] is kept
+    held = kept.parse(raw)  # a document still alive: the parser refuses to parse
+    assert jsonio.number_rows(raw) is jsonio.UNSURE  # the strict path decides
+    assert "parser" not in jsonio._kept  # and the parser is dropped
+    del held
+    monkeypatch.setattr(jsonio, "KEEP_VALUES", 1)
+    assert jsonio.number_rows(raw) is not jsonio.UNSURE
+    assert "parser" not in jsonio._kept  # a parser that read more values is not kept
+    monkeypatch.setattr(jsonio, "INLINE_BYTES", len(raw) - 1)
+    assert jsonio.number_rows(raw) is jsonio.UNSURE  # too large to read inline
 
 
 def test_a_large_number_table_is_grouped_without_the_helper_process(
