@@ -34,7 +34,8 @@ def _mapped(name: str) -> tuple[list[np.ndarray], list[dict]]:
     X, y = load_open(name)
     rng = np.random.default_rng(0)
     batches = make_batches(X, y, 6, rng)
-    records = [X] + [b for b, _ in batches[:3]]  # the whole set is above the sample cap
+    # the whole set (digits: above the sample cap, so the subsample path too) and batches
+    records = [X] + [b for b, _ in batches[:3]]
     rules = []
     for method in ("euclidean", "closed_form"):
         with warnings.catch_warnings():
