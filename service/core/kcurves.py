@@ -155,28 +155,40 @@ class _Stack:
         holds it, counted in one pass over the groups.
         """
         if self._grid is None:
-            width = int(self.ks.max())
-            self._grid = np.full((self.ks.size, width, self.rows.size), np.inf)
-            # per group g, the first k value with a group after g (ks is increasing);
-            # a record of a smaller k has found its group by g at the latest
-            self._after = np.searchsorted(self.ks, np.arange(1, width + 1), side="right").tolist()
-            self._segments = list(
-                zip(range(self.ks.size), self.offsets.tolist(), self.ks.tolist(), strict=True)
-            )
+            self._steps = self._prepare_argmin()
         grid = self._grid
         for j, offset, k in self._segments:
             grid[j, :k] = values[:, offset : offset + k].T
-        least = np.minimum.reduce(grid, axis=1)
+        least = np.minimum.reduce(grid, axis=1, out=self._least)
         if np.isnan(least).any():  # argmin takes the first NaN as the least value
             return grid.argmin(axis=1)
-        before = np.zeros(least.shape, dtype=np.min_scalar_type(grid.shape[1]))
-        searching = np.ones(least.shape, dtype=bool)
-        other = np.empty(least.shape, dtype=bool)
-        for g, j in enumerate(self._after[:-1]):
-            np.not_equal(grid[j:, g], least[j:], out=other[j:])
-            np.logical_and(searching[j:], other[j:], out=searching[j:])
-            np.add(before[j:], searching[j:], out=before[j:])
-        return before.astype(np.intp)
+        self._before.fill(0)
+        self._searching.fill(True)
+        for column, least_j, other, searching, before in self._steps:
+            np.not_equal(column, least_j, out=other)
+            np.logical_and(searching, other, out=searching)
+            np.add(before, searching, out=before)
+        return self._before.astype(np.intp)
+
+    def _prepare_argmin(self) -> list[tuple[np.ndarray, ...]]:
+        """The grid and buffers of ``argmin``, and the views each of its steps reads."""
+        width, shape = int(self.ks.max()), (self.ks.size, self.rows.size)
+        self._grid = np.full((self.ks.size, width, self.rows.size), np.inf)
+        self._segments = list(
+            zip(range(self.ks.size), self.offsets.tolist(), self.ks.tolist(), strict=True)
+        )
+        self._least = np.empty(shape)
+        self._before = np.zeros(shape, dtype=np.min_scalar_type(width))
+        self._searching = np.ones(shape, dtype=bool)
+        other = np.empty(shape, dtype=bool)
+        # step g looks at group g of the k values that have a group after it (a
+        # suffix: ks is increasing); a record of a smaller k has found its group
+        after = np.searchsorted(self.ks, np.arange(1, width), side="right").tolist()
+        return [
+            (self._grid[j:, g], self._least[j:], other[j:], self._searching[j:],
+             self._before[j:])
+            for g, j in enumerate(after)
+        ]
 
 
 def _cuts(merges: np.ndarray, n: int, k_hi: int) -> np.ndarray:
