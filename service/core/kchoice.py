@@ -158,7 +158,8 @@ def choose_k(Z: np.ndarray, rule: dict[str, Any] | None, random_state: int | Non
     """k in [2, k_max] for records already mapped into the learned space.
 
     Capped by the number of distinct points; 1 only when there is a single one.
-    ``rule`` None means the silhouette rule with k_max = 10.
+    ``rule`` None means the silhouette rule with k_max = 10. Rules that do not read
+    the silhouette get curves without it (cheaper; the other points are the same).
     """
     Z = check_matrix(Z, "records")
     rule = rule or {"rule": "silhouette", "params": {}, "k_max": DEFAULT_K_MAX}
@@ -166,7 +167,9 @@ def choose_k(Z: np.ndarray, rule: dict[str, Any] | None, random_state: int | Non
     if name not in RULES:
         raise CoreError(f"unknown k rule {name!r}", "k_rule")
     k_max = _check_k_max(rule.get("k_max", DEFAULT_K_MAX))
-    return _pick(name, kcurves.curves(Z, k_max, random_state), rule.get("params") or {})
+    params = rule.get("params") or {}
+    silhouette = name == "silhouette" or (name in _THRESHOLD_RULES and _tau(params) is None)
+    return _pick(name, kcurves.curves(Z, k_max, random_state, silhouette=silhouette), params)
 
 
 def _check_k_max(k_max) -> int:
@@ -187,13 +190,18 @@ def _pick(rule: str, curves: dict[str, np.ndarray], params: dict[str, Any]) -> i
         return 1
     if rule in _THRESHOLD_RULES:
         stat = _statistic(rule, curves)[1:]
-        tau = params.get("threshold")
+        tau = _tau(params)
         if tau is None:  # nothing to calibrate on: fall back to the silhouette
             return _pick("silhouette", curves, {})
         below = np.flatnonzero(stat <= tau)
         return int(below[0]) + 2 if below.size else k_hi
     values = np.nan_to_num(curves[rule][1:], nan=-np.inf, posinf=np.finfo(float).max)
     return int(np.argmax(values)) + 2
+
+
+def _tau(params: dict[str, Any]) -> Any:
+    """A threshold rule's τ; None when there was nothing to calibrate it on."""
+    return params.get("threshold")
 
 
 def _fit_params(rule: str, curves: list, truths: list[int]) -> dict[str, Any]:

@@ -35,12 +35,19 @@ _CACHE_ELEMENTS = 1 << 14  # temporaries this small stay in a core's cache
 
 
 def curves(
-    Z: np.ndarray, k_max: int, random_state: int | None = 0, sample_cap: int = SAMPLE_CAP
+    Z: np.ndarray,
+    k_max: int,
+    random_state: int | None = 0,
+    sample_cap: int = SAMPLE_CAP,
+    silhouette: bool = True,
 ) -> dict[str, np.ndarray]:
     """``inertia``, ``silhouette``, ``calinski_harabasz`` for k = 1..k_hi, and ``n``.
 
     Index 0 is k = 1. ``k_hi ≤ k_max`` stops where no more distinct groups form.
     A random subsample of ``sample_cap`` records (seeded) stands for larger inputs.
+    ``silhouette`` False leaves that curve out, and with it the square matrix of
+    distances it is read from: the other two follow from W_k alone, and the points
+    they have are the same either way (the same computation).
     """
     n = Z.shape[0]
     if n > sample_cap:
@@ -51,7 +58,9 @@ def curves(
     # would lose every digit of the spread to a large common offset
     Z = Z - Z.mean(axis=0)
     total = float(np.sum(Z**2))
-    out = {"inertia": [total], "silhouette": [np.nan], "calinski_harabasz": [np.nan]}
+    out = {"inertia": [total], "calinski_harabasz": [np.nan]}
+    if silhouette:
+        out["silhouette"] = [np.nan]
     k_hi = min(k_max, n)
     if k_hi >= 2 and total > 0 and Z.shape[1] > 0:
         with single_threaded():  # small matrices: BLAS threads cost more than they save
@@ -62,19 +71,20 @@ def curves(
 
 
 def _fill(out: dict[str, list], Z: np.ndarray, k_hi: int, total: float) -> None:
-    """Append the k = 2..k_hi points of the three curves (stops early, see ``curves``)."""
+    """Append the k = 2..k_hi points of the curves in ``out`` (stops early, see ``curves``)."""
     n = Z.shape[0]
     condensed = pdist(Z)
-    dist = squareform(condensed)
+    dist = squareform(condensed) if "silhouette" in out else None
     starts = _cuts(linkage(condensed, method="ward"), n, k_hi)  # row k − 2: the cut at k
     k_hi = _distinct(starts, k_hi)  # the curves stop before a start with an empty group
     for ks in _batches(n, Z.shape[1], k_hi):
         stack = _Stack(ks, n)
         labels, within = _lloyd(Z, starts[ks - 2], stack)
         out["inertia"].extend(within.tolist())
-        out["silhouette"].extend(
-            np.where(ks < n, _silhouettes(dist, labels, stack), np.nan).tolist()
-        )
+        if dist is not None:
+            out["silhouette"].extend(
+                np.where(ks < n, _silhouettes(dist, labels, stack), np.nan).tolist()
+            )
         for k, w in zip(ks.tolist(), within.tolist(), strict=True):
             # W_k at rounding level (fewer distinct points than k): every group is
             # tight, the ratio is infinite rather than noise over noise
@@ -127,7 +137,6 @@ class _Stack:
         self.size = int(ks.sum())
         self.rows = np.arange(n)
         self._grid: np.ndarray | None = None  # for argmin, made on first use
-        self._flat = self._slots = self._grid
 
     def onehot(self, stacked: np.ndarray) -> np.ndarray:
         """Indicator matrix (Σk × n) of partitions given as stacked rows (k values × n)."""
@@ -136,15 +145,50 @@ class _Stack:
         return onehot
 
     def argmin(self, values: np.ndarray) -> np.ndarray:
-        """Per k, each record's group of least value in ``values`` (n × Σk)."""
-        if self._grid is None:  # every segment padded with +∞ to the widest k
-            width = int(self.ks.max())
-            slots = np.repeat(np.arange(self.ks.size) * width - self.offsets, self.ks)
-            self._slots = slots + np.arange(self.size)
-            self._grid = np.full((self.rows.size, self.ks.size, width), np.inf)
-            self._flat = self._grid.reshape(self.rows.size, -1)
-        self._flat[:, self._slots] = values
-        return self._grid.argmin(axis=2).T
+        """Per k, each record's group of least value in ``values`` (n × Σk): the first
+        such group, as ``np.argmin`` picks it.
+
+        numpy's argmin over a short row per record and k costs more than the
+        arithmetic, so the segments are copied into a grid (k values × widest k ×
+        records, padded with +∞), one reduction over its contiguous rows gives each
+        least value, and the group is the number of groups before the first that
+        holds it, counted in one pass over the groups.
+        """
+        if self._grid is None:
+            self._steps = self._prepare_argmin()
+        grid = self._grid
+        for j, offset, k in self._segments:
+            grid[j, :k] = values[:, offset : offset + k].T
+        least = np.minimum.reduce(grid, axis=1, out=self._least)
+        if np.isnan(least).any():  # argmin takes the first NaN as the least value
+            return grid.argmin(axis=1)
+        self._before.fill(0)
+        self._searching.fill(True)
+        for column, least_j, other, searching, before in self._steps:
+            np.not_equal(column, least_j, out=other)
+            np.logical_and(searching, other, out=searching)
+            np.add(before, searching, out=before)
+        return self._before.astype(np.intp)
+
+    def _prepare_argmin(self) -> list[tuple[np.ndarray, ...]]:
+        """The grid and buffers of ``argmin``, and the views each of its steps reads."""
+        width, shape = int(self.ks.max()), (self.ks.size, self.rows.size)
+        self._grid = np.full((self.ks.size, width, self.rows.size), np.inf)
+        self._segments = list(
+            zip(range(self.ks.size), self.offsets.tolist(), self.ks.tolist(), strict=True)
+        )
+        self._least = np.empty(shape)
+        self._before = np.zeros(shape, dtype=np.min_scalar_type(width))
+        self._searching = np.ones(shape, dtype=bool)
+        other = np.empty(shape, dtype=bool)
+        # step g looks at group g of the k values that have a group after it (a
+        # suffix: ks is increasing); a record of a smaller k has found its group
+        after = np.searchsorted(self.ks, np.arange(1, width), side="right").tolist()
+        return [
+            (self._grid[j:, g], self._least[j:], other[j:], self._searching[j:],
+             self._before[j:])
+            for g, j in enumerate(after)
+        ]
 
 
 def _cuts(merges: np.ndarray, n: int, k_hi: int) -> np.ndarray:
@@ -209,20 +253,27 @@ def _lloyd(Z: np.ndarray, starts: np.ndarray, stack: _Stack) -> tuple[np.ndarray
     work = np.arange(ks.size)  # the k values (rows of labels) in the stack
     into = np.arange(full.size)  # the rows of full that the stack's rows are
     lab = previous = starts
+    # the indicator matrix of the stack's partitions (its first rows), zeroed again
+    # after each use; ``cells`` are the positions of its ones
+    indicator = np.zeros((full.size, n))
+    ones = indicator.reshape(-1)
     iteration = 0
     while True:
-        onehot = stack.onehot(lab + stack.base)
-        counts = onehot.sum(axis=1, keepdims=True)
+        stacked = lab + stack.base
+        counts = np.bincount(stacked.ravel(), minlength=stack.size)
         if counts.min() == 0:  # a group emptied: that k keeps its last partition
-            emptied = np.minimum.reduceat(counts[:, 0], stack.offsets) == 0
+            emptied = np.minimum.reduceat(counts, stack.offsets) == 0
             labels[work[emptied]] = previous[emptied]
             work, lab, previous = work[~emptied], lab[~emptied], previous[~emptied]
             if not work.size:
                 break
             stack, into = _Stack(ks[work], n), _into(full, work)
             continue
-        means = onehot @ Z
-        means /= counts
+        cells = stacked * n + stack.rows
+        ones[cells] = 1.0
+        means = indicator[: stack.size] @ Z
+        ones[cells] = 0.0
+        means /= counts[:, None]
         centres[into] = means
         iteration += 1
         if iteration == LLOYD_ITERATIONS:

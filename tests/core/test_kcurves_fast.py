@@ -264,3 +264,25 @@ def test_curves_stop_before_a_start_with_an_empty_group() -> None:
     assert kcurves._distinct(starts, 4) == 3
     assert kcurves._distinct(starts[:2], 3) == 3
     assert kcurves._distinct(np.array([[0, 0, 0, 0]]), 2) == 1
+
+
+@pytest.mark.parametrize("ks", [[2], [2, 3, 4, 5, 6, 7, 8, 9, 10], [5, 9, 10], [3, 3, 17]])
+def test_stacked_argmin_matches_numpy_argmin(ks: list[int]) -> None:
+    # reference: numpy's argmin over each k's segment (the first least value wins,
+    # a NaN counts as the least), with exact ties, ±0, infinities and NaN
+    rng = np.random.default_rng(len(ks))
+    stack = _Stack(np.array(ks), 300)
+    for case in ("plain", "ties", "signed_zero", "inf", "nan"):
+        values = np.round(rng.normal(size=(300, stack.size)), 1 if case == "ties" else 6)
+        if case == "signed_zero":
+            values[:, ::2] = 0.0
+            values[:, 1::2] = -0.0
+        if case == "inf":
+            values[rng.random(values.shape) < 0.3] = np.inf
+            values[:50] = np.inf  # every value of a record infinite
+        if case == "nan":
+            values[rng.random(values.shape) < 0.05] = np.nan
+        got = stack.argmin(values)
+        for j, (offset, k) in enumerate(zip(stack.offsets, ks, strict=True)):
+            want = np.argmin(values[:, offset : offset + k], axis=1)
+            np.testing.assert_array_equal(got[j], want, err_msg=f"{case}, k={k}")
