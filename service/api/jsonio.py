@@ -196,9 +196,22 @@ def _give_back(parser: simdjson.Parser, values: int) -> None:
     _kept_lock.release()
 
 
+_COUNT_STEP = 1 << 20
+
+
 def _count(raw: bytes, byte: bytes) -> int:
-    """``raw.count(byte)`` for one byte, about twice as fast on large bodies."""
-    return int(np.count_nonzero(np.frombuffer(raw, dtype=np.uint8) == byte[0]))
+    """``raw.count(byte)`` for one byte, in steps of 1 MiB through one small buffer
+    (about twice as fast as ``bytes.count`` on large bodies, and no body-sized
+    temporary)."""
+    data = np.frombuffer(raw, dtype=np.uint8)
+    hits = np.empty(min(_COUNT_STEP, data.size), dtype=bool)
+    total = 0
+    for start in range(0, data.size, _COUNT_STEP):
+        part = data[start:start + _COUNT_STEP]
+        out = hits[:part.size]
+        np.equal(part, byte[0], out=out)
+        total += int(np.count_nonzero(out))
+    return total
 
 
 def _read_number_rows(raw: bytes, doc: Any) -> tuple[dict[str, Any], np.ndarray] | object:
