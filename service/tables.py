@@ -192,6 +192,8 @@ class Table:
         plain = (not categories.keys() & set(features) and not self.text.keys() & set(index)
                  and (self.missing is None or not self.missing[:, index].any()))
         if plain:  # the common case: numbers only, nothing to fill — one gather
+            if index == list(range(self.numbers.shape[1])):
+                return Matrix(np.ascontiguousarray(self.numbers))  # already in order
             return Matrix(np.ascontiguousarray(self.numbers[:, index]))
         blocks: list[np.ndarray] = []
         imputed: dict[str, int] = {}
