@@ -21,6 +21,11 @@ interleaved turns. The ceiling, as a multiple of the reference, is what a server
 that spent exactly that per request could reach with the CPU left to it:
 ``left to server / API cost``; "of ceiling" is the measured rate over it.
 
+Beside the reference, ``group_records`` in ``cores`` processes at once (each for the
+level's seconds, started together) shows how far this machine's cores scale when all
+of them work: a core may run k-means slower while the others are busy too, and other
+programs take their share as well ("× all cores" is a level's rate over that one).
+
     .venv/bin/python bench/throughput.py [--seconds S] [--quick]
 """
 
@@ -29,6 +34,7 @@ from __future__ import annotations
 import argparse
 import http.client
 import json
+import multiprocessing
 import os
 import secrets
 import socket
@@ -170,6 +176,28 @@ def _clients(host: str, port: int, body: bytes, clients: int, seconds: float,
                  cores)
 
 
+def _loop(fitted: FittedMetric, Xn: np.ndarray, start: float, seconds: float) -> int:
+    """``group_records`` calls from wall-clock ``start`` for ``seconds`` (in a child)."""
+    time.sleep(max(0.0, start - time.time()))
+    calls = 0
+    while time.time() - start < seconds:
+        group_records(fitted, Xn, k=K)
+        calls += 1
+    return calls
+
+
+def _all_cores(fitted: FittedMetric, Xn: np.ndarray, cores: int, seconds: float) -> float:
+    """Calls a second of ``group_records`` in ``cores`` fresh processes at once."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(cores, mp_context=multiprocessing.get_context("spawn")) as pool:
+        list(pool.map(int, range(cores)))  # started and imported before the clock runs
+        start = time.time() + 2.0
+        counts = list(pool.map(_loop, [fitted] * cores, [Xn] * cores, [start] * cores,
+                               [seconds] * cores))
+    return sum(counts) / seconds
+
+
 def _api_cost(url: str, prefix: str, fitted: FittedMetric, Xn: np.ndarray, body: bytes,
               turns: int) -> tuple[float, float]:
     """(group_records CPU seconds, the in-process API's CPU over it), medians of
@@ -241,6 +269,7 @@ def main(seconds: float, levels: tuple[int, ...]) -> None:
             calls += 1
         cores = os.cpu_count() or 1
         reference = calls / (time.monotonic() - started) * cores
+        together = _all_cores(fitted, Xn, cores, seconds)
         one_cpu, api_cost = _api_cost(url, prefix, fitted, Xn, body,
                                       10 if seconds < 2 else 40)
         redis_conn = redis.Redis.from_url(url)
@@ -255,6 +284,8 @@ def main(seconds: float, levels: tuple[int, ...]) -> None:
           f"per level (load average {os.getloadavg()[0]:.2f}; web processes: cores + 1)")
     print(f"reference: group_records in process × {cores} cores = {reference:.1f} requests/s "
           f"({one_cpu * 1000:.2f} ms CPU a call)")
+    print(f"group_records in {cores} processes at once: {together:.1f} requests/s "
+          f"({together / reference:.2f} × reference)")
     print(f"in-process API cost: {api_cost:.2f} × group_records (CPU, drift write included)")
     print("CPU per request, ms: clients (the bench's threads), service (web processes, "
           "helpers, worker), Redis, others (the rest of the machine)")
@@ -265,13 +296,15 @@ def main(seconds: float, levels: tuple[int, ...]) -> None:
     def ratio(v: float | None) -> str:
         return f"{v:.2f}" if v is not None else "—"
 
-    print(f"{'clients':>8} {'requests/s':>11} {'× reference':>12} {'clients':>8} "
+    print(f"{'clients':>8} {'requests/s':>11} {'× reference':>12} {'× all cores':>12} "
+          f"{'clients':>8} "
           f"{'service':>8} {'Redis':>6} {'others':>7} {'service/ref':>12} "
           f"{'left to server':>15} {'ceiling ×ref':>13} {'of ceiling':>11}")
     for c, lv in rates.items():
         left = lv.left
         ceiling = left / api_cost if left is not None else None
-        print(f"{c:>8} {lv.rate:>11.1f} {lv.rate / reference:>12.2f} {ms(lv.client_ms):>8} "
+        print(f"{c:>8} {lv.rate:>11.1f} {lv.rate / reference:>12.2f} "
+              f"{lv.rate / together:>12.2f} {ms(lv.client_ms):>8} "
               f"{ms(lv.service_ms):>8} {ms(lv.redis_ms):>6} {ms(lv.others_ms):>7} "
               f"{ratio(lv.service_ms / (one_cpu * 1000) if lv.service_ms else None):>12} "
               f"{f'{left:.0%}' if left is not None else '—':>15} {ratio(ceiling):>13} "
