@@ -238,7 +238,8 @@ def report(ctx: Context, name: str, version: int | None = None,
     """Drift of the records grouped with ``version`` (default: the active one) since
     ``since`` (``params.moment``; default and earliest: ``drift_hours`` ago; buckets are
     hourly, so it counts from the start of its hour). This process's own summaries
-    still in its backlog are written first; another process's land within moments."""
+    still in its backlog or held back are written first; another process's land
+    within about :data:`WRITE_SECONDS`."""
     from .groupings import load_version_metric
 
     BACKLOG.flush()
