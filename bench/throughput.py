@@ -19,7 +19,9 @@ API cost is a grouping through the app in this process (Flask test client, the
 drift write included) over ``group_records`` alone, CPU seconds, medians of
 interleaved turns. The ceiling, as a multiple of the reference, is what a server
 that spent exactly that per request could reach with the CPU left to it:
-``left to server / API cost``; "of ceiling" is the measured rate over it.
+``left to server / API cost``, times ``clients / cores`` when there are fewer clients
+than cores (a client waits for each answer, so it keeps at most one core busy);
+"of ceiling" is the measured rate over it.
 
 Beside the reference, ``group_records`` in ``cores`` processes at once (each for the
 level's seconds, started together) shows how far this machine's cores scale when all
@@ -302,7 +304,7 @@ def main(seconds: float, levels: tuple[int, ...]) -> None:
           f"{'left to server':>15} {'ceiling ×ref':>13} {'of ceiling':>11}")
     for c, lv in rates.items():
         left = lv.left
-        ceiling = left / api_cost if left is not None else None
+        ceiling = (left / api_cost * min(c, cores) / cores) if left is not None else None
         print(f"{c:>8} {lv.rate:>11.1f} {lv.rate / reference:>12.2f} "
               f"{lv.rate / together:>12.2f} {ms(lv.client_ms):>8} "
               f"{ms(lv.service_ms):>8} {ms(lv.redis_ms):>6} {ms(lv.others_ms):>7} "
