@@ -1,8 +1,17 @@
 """gunicorn settings of the web tier (``gunicorn -c python:service.webserver …``).
 
-Each web process serves with a few threads (gunicorn's ``gthread`` worker), so a
-request that parses a large body does not hold up ``/healthz`` or small requests
-behind it; ``LIKEWISE_WEB_WORKERS`` sets the number of processes.
+Each web process serves one request at a time and takes a new connection only when
+it is free: gunicorn's ``gthread`` worker with one thread, one connection and no
+keep-alive (every answer closes its connection). The requests that cost are CPU
+work under one GIL (a grouping's k-means, a body's parse), so a second request in a
+busy process would only wait for the first one's GIL while another process sits
+idle; and a kept-alive connection stays with the process it first reached, so a few
+busy clients could pile onto one process. A free process accepts the next
+connection instead, and the default of one process more than cores
+(``LIKEWISE_WEB_WORKERS``) keeps one free for ``/healthz`` while the others parse
+large bodies. The threaded worker (rather than gunicorn's ``sync``) keeps its
+heartbeat going while a long request runs, so no request is cut off by gunicorn's
+worker timeout.
 
 Some requests never reach the app: gunicorn itself refuses an over-long request
 line (414), too many or too large headers (431) and malformed HTTP (400). Its own
@@ -107,7 +116,9 @@ logconfig_dict = dict_config()
 accesslog = None
 
 worker_class = "gthread"
-threads = 4
+threads = 1
+worker_connections = 1  # accept only when free (the connection in hand counts)
+keepalive = 0  # close after each answer: the next request goes to a free process
 
 # the HTTP limits gunicorn applies before the app (its defaults, stated here)
 limit_request_line = 4094

@@ -4,8 +4,9 @@ A version's reference is written with the version itself (``VersionStore.commit`
 A bucket is one hash per metric, version and UTC hour with five fields (see
 ``keys.py``): the record count, the number of requests, the features' means and M2s
 and every bin count, the last three as comma-separated text — and a sixth, the
-missing values filled in, once a request filled any. A grouping request adds
-its summary with ONE round trip: a Lua script (sent as EVALSHA) that merges the
+missing values filled in, once a request filled any. A summary (of one
+grouping request, or of several a web process merged first) is added with ONE
+round trip: a Lua script (sent as EVALSHA) that merges the
 moments with the pairwise update of Chan, Golub & LeVeque (1979), adds the bin
 counts and renews the bucket's expiry — atomic, so concurrent requests never lose
 each other's counts. Records themselves are never stored.
@@ -29,7 +30,8 @@ if TYPE_CHECKING:
     import redis
 
 # KEYS[1] bucket; ARGV: ttl seconds, n, then comma-separated: the d means, the d M2s
-# and every bin count (the histograms end to end). Five arguments and four fields
+# and every bin count (the histograms end to end), then the missing values filled in
+# and the number of requests the summary covers. Five arguments and four fields
 # whatever d is: packing many small arguments costs the client ~5 µs each and every
 # redis.call a few µs on the server, while Lua arithmetic on a string is cheap.
 # %.17g keeps every bit of a double (Lua's tostring keeps only 14 digits).
@@ -63,7 +65,7 @@ if na > 0 then
 end
 redis.call('HSET', key, 'n', string.format('%d', na + nb), 'mean', mean, 'm2', m2,
            'counts', counts)
-redis.call('HINCRBY', key, 'requests', 1)
+redis.call('HINCRBY', key, 'requests', tonumber(ARGV[7] or '1'))
 if tonumber(ARGV[6] or '0') > 0 then redis.call('HINCRBY', key, 'imputed', ARGV[6]) end
 redis.call('EXPIRE', key, ARGV[1])
 return na + nb
@@ -90,8 +92,9 @@ class DriftStore:
 
     def add(self, name: str, uid: str, version: int, hour: int, ttl_seconds: int,
             count: int, mean: np.ndarray, m2: np.ndarray, counts: dict[str, np.ndarray],
-            imputed: int = 0) -> None:
-        """Merge one request's summary into its hour's bucket (one round trip).
+            imputed: int = 0, requests: int = 1) -> None:
+        """Merge a summary of ``requests`` requests into its hour's bucket (one round
+        trip).
 
         ``counts`` maps a histogram's name to its bin counts (any shape, stored flat,
         end to end in the order given; read back with the same order and sizes).
@@ -99,7 +102,7 @@ class DriftStore:
         flat = np.concatenate([np.asarray(a, dtype=np.int64).ravel() for a in counts.values()])
         args = [int(ttl_seconds), int(count), ",".join(map(repr, np.asarray(mean, float).tolist())),
                 ",".join(map(repr, np.asarray(m2, float).tolist())),
-                ",".join(map(str, flat.tolist())), int(imputed)]
+                ",".join(map(str, flat.tolist())), int(imputed), int(requests)]
         self._add(keys=[self.keys.drift_bucket(name, uid, version, hour)], args=args)
 
     def buckets(self, name: str, uid: str, version: int, hours: list[int],

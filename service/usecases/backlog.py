@@ -3,7 +3,9 @@
 A grouping's drift summary is computed and written here, after the answer has gone.
 The backlog is bounded: when it is full a job is dropped and counted (``dropped``),
 never queued without limit. :func:`flush` waits (bounded) until every job handed off
-so far is done — a reader in the same process calls it to see its own writes. A
+so far is done — a reader in the same process calls it to see its own writes — and
+then runs the hooks given to :meth:`Backlog.on_flush` (work a job keeps back to
+write in batches hands itself over there). A
 summary still waiting when its process dies is lost; it is a summary, never an
 acknowledged record. After a fork the child starts a backlog of its own.
 """
@@ -29,6 +31,11 @@ class Backlog:
         self._lock = threading.Lock()
         self._pid: int | None = None
         self._jobs: queue.Queue[Callable[[], None]] = queue.Queue(capacity)
+        self._on_flush: list[Callable[[], None]] = []
+
+    def on_flush(self, hook: Callable[[], None]) -> None:
+        """Run ``hook`` at every :meth:`flush`, once the jobs handed off are done."""
+        self._on_flush.append(hook)
 
     def _ensure(self) -> queue.Queue[Callable[[], None]]:
         if self._pid != os.getpid():
@@ -61,8 +68,9 @@ class Backlog:
             finally:
                 jobs.task_done()
 
-    def flush(self, timeout: float = 5.0) -> bool:
-        """Wait until every job handed off so far is done; False if ``timeout`` ran out."""
+    def flush(self, timeout: float = 5.0, hooks: bool = True) -> bool:
+        """Wait until every job handed off so far is done, then run the flush hooks
+        (unless ``hooks`` is False); False if ``timeout`` ran out."""
         if self._pid != os.getpid():
             return True  # nothing was handed off in this process
         jobs = self._jobs
@@ -73,6 +81,11 @@ class Backlog:
                 if left <= 0:
                     return False
                 jobs.all_tasks_done.wait(left)
+        for hook in self._on_flush if hooks else ():
+            try:
+                hook()
+            except Exception:  # noqa: BLE001 — like a failed job: logged, the rest still run
+                log.exception("a flush hook failed")
         return True
 
 

@@ -4,8 +4,12 @@
   the new version (each batch grouped with its own number of labelled groups), and
   the margins and distances of the batches cross-validation held out, each grouped
   by a map fitted without it; the fit commits it in the version's own transaction.
-* Every grouping calls :func:`record`: the request's summary goes into the hour's
-  bucket of that version (one round trip; never the records).
+* Every grouping calls :func:`record`: after the answer, the process's backlog
+  summarises the request and merges the summary into the ones of the same bucket
+  (metric, version, hour) it still holds; a bucket's merged summaries are written
+  in one round trip (never the records) at most every :data:`WRITE_SECONDS`, when
+  they have waited that long, and at every ``BACKLOG.flush()`` and process exit. A
+  busy web process thus writes a few times a second instead of once a request.
 * :func:`report` scores the buckets since a time against the reference
   (:func:`service.core.drift.compare`); :func:`latest_verdicts` gives every metric's
   verdict for its active version over the whole retention, for dashboards.
@@ -18,7 +22,13 @@ which).
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+import atexit
+import logging
+import os
+import threading
+import time
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
@@ -50,6 +60,9 @@ if TYPE_CHECKING:
     from service.context import Context
 
 HOUR = 3600
+WRITE_SECONDS = 0.5  # the longest a process holds a bucket's summaries back
+
+log = logging.getLogger(__name__)
 
 
 def _hour(at: datetime) -> int:
@@ -94,22 +107,111 @@ def _sizes(ref: Reference, n_features: int) -> dict[str, int]:
 def record(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
            X: np.ndarray, grouping: Grouping, imputed: int = 0) -> None:
     """Add one grouping request's summary to the current hour's bucket — after the
-    answer has gone: the summary is computed and written by the process's backlog."""
+    answer has gone: the summary is computed, merged and written by the process's
+    backlog (see the module doc)."""
     hour = _hour(_now())
-    BACKLOG.submit(lambda: _write(ctx, metric, version, fitted, X, grouping, hour, imputed))
+    BACKLOG.submit(lambda: _add(ctx, metric, version, fitted, X, grouping, hour, imputed))
 
 
-def _write(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
-           X: np.ndarray, grouping: Grouping, hour: int, imputed: int) -> None:
+def _add(ctx: Context, metric: dict[str, Any], version: int, fitted: FittedMetric,
+         X: np.ndarray, grouping: Grouping, hour: int, imputed: int) -> None:
     ref = _reference(ctx, metric, version)
     if ref is None:
         return
     s = summarise(fitted, X, grouping, ref.layouts)
-    ctx.storage.drift.add(
-        metric["name"], metric["uid"], version, hour,
-        (ctx.settings.drift_hours + 1) * HOUR, s.moments.count, s.moments.mean,
-        s.moments.m2, {"f": s.features, "m": s.margins, "d": s.distances, "g": s.groups},
-        imputed=imputed)
+    key = (ctx.storage.drift, metric["name"], metric["uid"], version, hour)
+    _HELD.add(ctx, key, s, imputed)
+
+
+@dataclass
+class _Held:
+    """Summaries of one bucket merged in this process, not written yet."""
+
+    ctx: Context
+    summary: Summary
+    requests: int
+    imputed: int
+    since: float  # monotonic time of the first of them
+
+
+class _Buckets:
+    """The summaries this process holds back, by bucket (and store: tests build
+    several deployments in one process). A forked child starts empty."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._held: dict[tuple[Any, ...], _Held] = {}
+        self._pid = os.getpid()
+        self._timer: threading.Timer | None = None
+
+    def _mine(self) -> dict[tuple[Any, ...], _Held]:
+        if self._pid != os.getpid():  # inherited from the parent: its to write
+            self._held, self._timer, self._pid = {}, None, os.getpid()
+        return self._held
+
+    def add(self, ctx: Context, key: tuple[Any, ...], s: Summary, imputed: int) -> None:
+        now = time.monotonic()
+        with self._lock:
+            held = self._mine()
+            h = held.get(key)
+            if h is None:
+                held[key] = _Held(ctx, s, 1, imputed, now)
+            else:
+                h.summary, h.requests = h.summary.merge(s), h.requests + 1
+                h.imputed += imputed
+            due = self._take(lambda h: now - h.since >= WRITE_SECONDS)
+            if held and self._timer is None:  # the rest is written when due
+                self._timer = threading.Timer(WRITE_SECONDS, self._wake)
+                self._timer.daemon = True
+                self._timer.start()
+        _write(due)
+
+    def _take(self, pick: Callable[[_Held], bool]) -> list[tuple[tuple[Any, ...], _Held]]:
+        held = self._mine()
+        keys = [k for k, h in held.items() if pick(h)]
+        return [(k, held.pop(k)) for k in keys]
+
+    def _wake(self) -> None:
+        with self._lock:
+            self._timer = None
+        BACKLOG.submit(self.write_due)  # written on the backlog's thread, as the rest
+
+    def write_due(self) -> None:
+        now = time.monotonic()
+        with self._lock:
+            due = self._take(lambda h: now - h.since >= WRITE_SECONDS)
+            if self._mine() and self._timer is None:
+                self._timer = threading.Timer(WRITE_SECONDS, self._wake)
+                self._timer.daemon = True
+                self._timer.start()
+        _write(due)
+
+    def write_all(self) -> None:
+        with self._lock:
+            due = self._take(lambda h: True)
+        _write(due)
+
+
+def _write(due: list[tuple[tuple[Any, ...], _Held]]) -> None:
+    for (_, name, uid, version, hour), h in due:
+        ctx, s = h.ctx, h.summary
+        ctx.storage.drift.add(
+            name, uid, version, hour, (ctx.settings.drift_hours + 1) * HOUR,
+            s.moments.count, s.moments.mean, s.moments.m2,
+            {"f": s.features, "m": s.margins, "d": s.distances, "g": s.groups},
+            imputed=h.imputed, requests=h.requests)
+
+
+def _write_at_exit() -> None:
+    try:
+        _HELD.write_all()
+    except Exception:  # noqa: BLE001 — Redis may be gone at exit: the summaries are lost
+        log.warning("drift summaries held back could not be written at exit")
+
+
+_HELD = _Buckets()
+BACKLOG.on_flush(_HELD.write_all)
+atexit.register(_write_at_exit)
 
 
 # ---- reading -------------------------------------------------------------------------
@@ -136,7 +238,8 @@ def report(ctx: Context, name: str, version: int | None = None,
     """Drift of the records grouped with ``version`` (default: the active one) since
     ``since`` (``params.moment``; default and earliest: ``drift_hours`` ago; buckets are
     hourly, so it counts from the start of its hour). This process's own summaries
-    still in its backlog are written first; another process's land within moments."""
+    still in its backlog or held back are written first; another process's land
+    within about :data:`WRITE_SECONDS`."""
     from .groupings import load_version_metric
 
     BACKLOG.flush()
