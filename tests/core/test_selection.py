@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from service.core import CoreError, MetricSelector, NotEnoughDataError
-from tests.datasets import few_batch_trial
+from tests.datasets import few_batch_trial, load_open, make_batches
 
 ALPHAS = (1e-3, 1e-1, 10.0)  # a short grid keeps the tests quick
 SCORE_KEYS = {"ari", "baseline_ari", "nmi", "baseline_nmi", "rand", "baseline_rand"}
@@ -226,3 +226,52 @@ def test_whole_number_parameters_accept_numpy_integers_and_refuse_bools() -> Non
         with pytest.raises(CoreError, match="whole number of at least") as info:
             MetricSelector(**bad).fit(signal_batches(3, seed=12))
         assert info.value.field == next(iter(bad))
+
+
+def test_batches_checked_at_once_equal_the_batch_by_batch_check() -> None:
+    """The whole-array check of many batches gives check_batch's matrices and codes
+    (digits from scikit-learn's bundled copy, and random whole-number labels of every
+    integer kind), and leaves every batch with a problem to the loop."""
+    from service.core.selection import _check_batches, _check_batches_at_once
+    from service.core.validation import check_batch
+
+    X, y = load_open("digits")
+    pool = make_batches(X, y, 300, np.random.default_rng(0), group_size=(5, 15))
+    cases = [pool]
+    rng = np.random.default_rng(3)
+    for trial in range(200):
+        batches = []
+        for _ in range(int(rng.integers(2, 6))):
+            n = int(rng.integers(2, 8))
+            labels = rng.choice([-5, 0, 3, 7, 2**40, -(2**40)][: int(rng.integers(2, 7))], n)
+            kind = (np.int64, np.int8, np.uint64)[trial % 3]
+            if kind is np.int8:
+                labels = np.clip(labels, -100, 100)
+            if kind is np.uint64:
+                labels = np.abs(labels)
+            batches.append((rng.normal(size=(n, 3)), labels.astype(kind)))
+        cases.append(batches)
+    taken = 0
+    for batches in cases:
+        try:
+            expected = [check_batch(Xb, yb) for Xb, yb in batches]
+        except CoreError:
+            assert _check_batches_at_once(batches) is None
+            continue
+        got = _check_batches_at_once(batches)
+        assert got is not None
+        taken += 1
+        for (x1, c1), (x2, c2) in zip(got, expected, strict=True):
+            assert x1 is x2 or np.array_equal(x1, x2)
+            assert c1.dtype == c2.dtype and np.array_equal(c1, c2)
+        assert all(np.array_equal(a[1], b[1]) for a, b in zip(
+            _check_batches(batches), expected, strict=True))
+    assert taken > 100
+    bad = [(pool[0][0].copy(), pool[0][1]), pool[1]]
+    bad[0][0][2, 3] = np.nan
+    assert _check_batches_at_once(bad) is None
+    with pytest.raises(CoreError, match="NaN"):
+        _check_batches(bad)
+    assert _check_batches_at_once([pool[0], (pool[1][0], np.zeros(len(pool[1][1]), int))]) \
+        is None
+    assert _check_batches_at_once([pool[0], (pool[1][0], pool[1][1].astype(float))]) is None
