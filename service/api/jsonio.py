@@ -151,7 +151,8 @@ def number_rows(raw: bytes) -> tuple[dict[str, Any], np.ndarray] | object:
     """
     if type(raw) is not bytes or not _OPENS_OBJECT.match(raw) or b"\\" in raw:
         return UNSURE
-    if len(raw) > INLINE_BYTES:
+    # without escapes the key can only be spelt so: a records body is not parsed twice
+    if len(raw) > INLINE_BYTES or b'"rows"' not in raw:
         return UNSURE
     parser, kept = _take_parser()
     values = 0
@@ -173,10 +174,10 @@ def number_rows(raw: bytes) -> tuple[dict[str, Any], np.ndarray] | object:
 
 
 INLINE_BYTES = 64 * 1024 * 1024  # larger bodies (grouping runs) go to the helper process
-# a parser keeps the buffers its largest document needed (~16 bytes a value): one that
-# read more values than this, or whose body turned out not to be a number table, is
-# dropped instead of kept
-KEEP_VALUES = 8 * 1024 * 1024
+# a parser keeps the buffers its largest document needed (about 33 bytes a value,
+# measured): one that read more values than this (~130 MiB kept), or whose body turned
+# out not to be a number table, is dropped instead of kept
+KEEP_VALUES = 4 * 1024 * 1024
 _kept: dict[str, simdjson.Parser] = {}
 _kept_lock = threading.Lock()
 

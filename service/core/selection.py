@@ -493,7 +493,7 @@ def _check_batches_at_once(batches: list) -> list[tuple[np.ndarray, np.ndarray]]
     if any(X.shape[1] != d for X in Xs) or d == 0 or ns.min() < 2 \
             or not np.array_equal(ns, [y.shape[0] for y in ys]):
         return None
-    if not np.isfinite(np.concatenate(Xs)).all():
+    if not all(np.isfinite(X).all() for X in Xs):  # no copy of every batch at once
         return None
     labels = np.concatenate(ys)
     if labels.dtype.kind not in "iu":  # int64 with uint64 labels promotes to float

@@ -160,11 +160,17 @@ class _Buckets:
                 h.summary, h.requests = h.summary.merge(s), h.requests + 1
                 h.imputed += imputed
             due = self._take(lambda h: now - h.since >= WRITE_SECONDS)
-            if held and self._timer is None:  # the rest is written when due
-                self._timer = threading.Timer(WRITE_SECONDS, self._wake)
-                self._timer.daemon = True
-                self._timer.start()
+            self._arm(now)  # the rest is written when due
         _write(due)
+
+    def _arm(self, now: float) -> None:
+        """(Lock held.) A timer for when the oldest bucket held falls due, if none runs."""
+        held = self._mine()
+        if held and self._timer is None:
+            wait = min(h.since for h in held.values()) + WRITE_SECONDS - now
+            self._timer = threading.Timer(max(wait, 0.0), self._wake)
+            self._timer.daemon = True
+            self._timer.start()
 
     def _take(self, pick: Callable[[_Held], bool]) -> list[tuple[tuple[Any, ...], _Held]]:
         held = self._mine()
@@ -174,16 +180,16 @@ class _Buckets:
     def _wake(self) -> None:
         with self._lock:
             self._timer = None
-        BACKLOG.submit(self.write_due)  # written on the backlog's thread, as the rest
+        # written on the backlog's thread, as the rest (a flush then waits for it); with
+        # the backlog full, here and now rather than waiting for the next request
+        if not BACKLOG.submit(self.write_due):
+            self.write_due()
 
     def write_due(self) -> None:
         now = time.monotonic()
         with self._lock:
             due = self._take(lambda h: now - h.since >= WRITE_SECONDS)
-            if self._mine() and self._timer is None:
-                self._timer = threading.Timer(WRITE_SECONDS, self._wake)
-                self._timer.daemon = True
-                self._timer.start()
+            self._arm(now)
         _write(due)
 
     def write_all(self) -> None:

@@ -77,3 +77,21 @@ def test_summaries_fall_due_and_a_forked_child_leaves_its_parents_alone(
     assert [int(b["requests"]) for b in _buckets(ctx, "due")] == [1]
     assert BACKLOG.flush()
     assert [int(b["requests"]) for b in _buckets(ctx, "due")] == [2]
+
+
+def test_the_timer_falls_due_with_the_oldest_bucket_held() -> None:
+    """A bucket is held at most WRITE_SECONDS: the timer waits for the oldest one, not
+    a full period from whenever it was last armed."""
+    import time
+
+    buckets = drift._Buckets()
+    now = time.monotonic()
+    held = buckets._mine()
+    held[("a",)] = drift._Held(None, None, 1, 0, now - 0.3)  # type: ignore[arg-type]
+    held[("b",)] = drift._Held(None, None, 1, 0, now - 0.1)  # type: ignore[arg-type]
+    with buckets._lock:
+        buckets._arm(now)
+    timer = buckets._timer
+    assert timer is not None
+    timer.cancel()
+    assert timer.interval == pytest.approx(drift.WRITE_SECONDS - 0.3)
