@@ -310,6 +310,12 @@ def _to_floats(rows: list[Sequence[Any]], kind: Kind, n: int, c: int,
         X = np.array(rows, dtype=float).reshape(n, c)
     except (OverflowError, ValueError) as exc:
         raise _bad(kind, f"not a matrix of numbers ({exc})") from exc
+    return _finite(X, kind, where)
+
+
+def _finite(X: np.ndarray, kind: Kind, where: np.ndarray | None = None) -> np.ndarray:
+    """``X``, or a 422 naming its first row with NaN or infinity (``where``: the rows'
+    numbers in the table, when ``X`` holds only some of them)."""
     finite = np.isfinite(X).all(axis=1)
     if not finite.all():
         i = int(np.argmin(finite))
@@ -375,10 +381,14 @@ def _check_names(names: Sequence[Any], field_name: str) -> None:
         raise _bad(field_name, "column names must be non-empty strings")
 
 
-def _from_rows(columns: list[Any], rows: list[Any]) -> Table:
+def _check_columns(columns: list[Any]) -> None:
     _check_names(columns, "columns")
     if len(set(columns)) != len(columns):
         raise _bad("columns", "contains duplicate names")
+
+
+def _from_rows(columns: list[Any], rows: list[Any]) -> Table:
+    _check_columns(columns)
     c = len(columns)
     try:
         lengths = np.fromiter(map(len, rows), dtype=np.int64, count=len(rows))
@@ -404,13 +414,8 @@ def from_number_rows(columns: list[Any], X: np.ndarray, max_records: int | None 
     if not isinstance(columns, list) or not columns:
         raise _bad("columns", "must be a list of column names")
     check_size(X.shape[0], len(columns), "rows", max_records, max_bytes)
-    _check_names(columns, "columns")
-    if len(set(columns)) != len(columns):
-        raise _bad("columns", "contains duplicate names")
-    finite = np.isfinite(X).all(axis=1)
-    if not finite.all():
-        raise _bad(f"rows[{int(np.argmin(finite))}]", "values must be finite numbers")
-    return Table(tuple(columns), X, None, {}, "rows", _Kept({}))
+    _check_columns(columns)
+    return Table(tuple(columns), _finite(X, "rows"), None, {}, "rows", _Kept({}))
 
 
 def from_json(body: dict[str, Any], max_records: int | None = None,

@@ -68,7 +68,7 @@ from .grouping import Grouping, grouping_of
 from .learners import METHODS, fit_metric
 from .metric import FittedMetric
 from .stats import BatchStats
-from .validation import check_batch, check_whole
+from .validation import check_batch, check_batches_at_once, check_whole
 
 Batch = tuple[np.ndarray, np.ndarray]  # (records n×d raw units, group labels n)
 
@@ -453,7 +453,7 @@ def _check_batches(batches: Sequence[Batch]) -> list[tuple[np.ndarray, np.ndarra
         raise NotEnoughDataError(
             f"cross-validation needs at least 2 labelled batches, got {len(batches)}", "batches"
         )
-    at_once = _check_batches_at_once(batches)
+    at_once = check_batches_at_once(batches)
     if at_once is not None:
         return at_once
     out = []
@@ -470,50 +470,6 @@ def _check_batches(batches: Sequence[Batch]) -> list[tuple[np.ndarray, np.ndarra
         out.append(check_batch(X, y, d))
         d = out[0][0].shape[1]
     return out
-
-
-def _check_batches_at_once(batches: list) -> list[tuple[np.ndarray, np.ndarray]] | None:
-    """What ``check_batch`` gives each batch, for many batches in a few whole-array
-    passes, when they are the common kind (float64 matrices of one width, whole-number
-    labels, nothing wrong); None otherwise, and the batch-by-batch loop then names
-    the first problem. Codes are ``_group_codes``'s: 0..k-1 in sorted label order."""
-    try:
-        if not all(type(item) in (tuple, list) and len(item) == 2 for item in batches):
-            return None
-        Xs = [item[0] for item in batches]
-        ys = [item[1] for item in batches]
-    except TypeError:
-        return None
-    if not all(type(X) is np.ndarray and X.dtype == np.float64 and X.ndim == 2 for X in Xs) \
-            or not all(type(y) is np.ndarray and y.dtype.kind in "iu" and y.ndim == 1
-                       for y in ys):
-        return None
-    d = Xs[0].shape[1]
-    ns = np.fromiter((X.shape[0] for X in Xs), dtype=np.int64, count=len(Xs))
-    if any(X.shape[1] != d for X in Xs) or d == 0 or ns.min() < 2 \
-            or not np.array_equal(ns, [y.shape[0] for y in ys]):
-        return None
-    if not all(np.isfinite(X).all() for X in Xs):  # no copy of every batch at once
-        return None
-    labels = np.concatenate(ys)
-    if labels.dtype.kind not in "iu":  # int64 with uint64 labels promotes to float
-        return None
-    if labels.dtype.kind == "u" and labels.size and int(labels.max()) >= 2**62:
-        return None
-    labels = labels.astype(np.int64)
-    lo, hi = int(labels.min()), int(labels.max())
-    span = hi - lo + 1
-    if span * len(Xs) >= 2**62:
-        return None
-    batch = np.repeat(np.arange(len(Xs), dtype=np.int64), ns)
-    keys, codes = np.unique(batch * span + (labels - lo), return_inverse=True)
-    first = np.searchsorted(keys, np.arange(len(Xs), dtype=np.int64) * span)
-    codes = codes.reshape(-1) - first[batch]
-    starts = np.concatenate(([0], np.cumsum(ns)[:-1]))
-    if np.maximum.reduceat(codes, starts).min() < 1:
-        return None  # a batch with one group: the loop names it
-    codes = codes.astype(np.intp)
-    return [(X, c) for X, c in zip(Xs, np.split(codes, starts[1:]), strict=True)]
 
 
 def _check_stats(batches, stats) -> list[BatchStats]:

@@ -76,6 +76,13 @@ SHAPES = [
     '{{"columns": ["a"], "rows": [[1]], "k": {n}, "version": {n}}}',
     '{{"records": [{{"a": "x"}}], "groups": [{n}]}}',
 ]
+# tables the number-table path reads (jsonio.number_rows), checked as whole tables
+NUMBER_SHAPES = [
+    '{{"columns": ["a", "b"], "rows": [[{n}, 1.5], [2, {n}]], "k": 2}}',
+    '{{"columns": ["a", "b"], "rows": [[{n}, 1.5], [2, {n}]], "groups": [1, 2]}}',
+    '{{"rows": [[{n}]], "columns": ["a"], "k": {n}, "version": {n}}}',
+    '{{"columns": ["a", "b"], "rows": [[{n}, {n}]], "groups": [{n}, 1]}}',
+]
 
 
 @pytest.mark.parametrize("number", NUMBERS)
@@ -83,6 +90,8 @@ def test_numbers_parse_as_the_standard_library_parses_them(
         number: str, monkeypatch: pytest.MonkeyPatch) -> None:
     for shape in SHAPES:
         _check(shape.format(n=number).encode(), monkeypatch)
+    for shape in NUMBER_SHAPES:  # and the tables read as the strict path reads them
+        _check_table(shape.format(n=number).encode(), monkeypatch)
 
 
 def _random_number_table(rng: random.Random, n_cells: int, largest: int,
@@ -243,21 +252,6 @@ def _check_table(raw: bytes, monkeypatch: pytest.MonkeyPatch, **kw: Any) -> Any:
         assert _same(fast, strict), (raw[:200], kind, fast, strict)
         outcomes.append(fast)
     return outcomes
-
-
-NUMBER_SHAPES = [
-    '{{"columns": ["a", "b"], "rows": [[{n}, 1.5], [2, {n}]], "k": 2}}',
-    '{{"columns": ["a", "b"], "rows": [[{n}, 1.5], [2, {n}]], "groups": [1, 2]}}',
-    '{{"rows": [[{n}]], "columns": ["a"], "k": {n}, "version": {n}}}',
-    '{{"columns": ["a", "b"], "rows": [[{n}, {n}]], "groups": [{n}, 1]}}',
-]
-
-
-@pytest.mark.parametrize("number", NUMBERS)
-def test_number_tables_read_as_the_strict_path_reads_them(
-        number: str, monkeypatch: pytest.MonkeyPatch) -> None:
-    for shape in NUMBER_SHAPES:
-        _check_table(shape.format(n=number).encode(), monkeypatch)
 
 
 def test_number_rows_are_bit_for_bit_the_standard_librarys(

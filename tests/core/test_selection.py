@@ -232,8 +232,9 @@ def test_batches_checked_at_once_equal_the_batch_by_batch_check() -> None:
     """The whole-array check of many batches gives check_batch's matrices and codes
     (digits from scikit-learn's bundled copy, and random whole-number labels of every
     integer kind), and leaves every batch with a problem to the loop."""
-    from service.core.selection import _check_batches, _check_batches_at_once
+    from service.core.selection import _check_batches
     from service.core.validation import check_batch
+    from service.core.validation import check_batches_at_once as _check_batches_at_once
 
     X, y = load_open("digits")
     pool = make_batches(X, y, 300, np.random.default_rng(0), group_size=(5, 15))
