@@ -8,6 +8,10 @@
 - A chunked body (no ``Content-Length``) is read up to the limit plus one byte in
   :func:`bound_body`: over the limit it is a 413, like a body that declares its
   length; the WSGI layer would otherwise cut it silently at the limit.
+- :func:`body` reads the body once, in one call on the WSGI stream, and keeps it for
+  the request (the table readers, the schema loader and the idempotency digest share
+  it): werkzeug's own reader copies a body in 64 KiB steps and then once more (about
+  60 ms on a 41 MB grouping, measured).
 - :func:`parse_json` refuses an object with the same key twice (a 422 naming the
   record, or the body), instead of letting the last value win. A body that orjson
   provably reads the same way, without a duplicate, skips the strict parse
@@ -20,8 +24,8 @@ import io
 import json
 from typing import Any
 
-from flask import request
-from werkzeug.exceptions import RequestEntityTooLarge
+from flask import g, request
+from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
 
 from service.errors import InvalidInput
 
@@ -68,6 +72,40 @@ def bound_body() -> None:
     env["CONTENT_LENGTH"] = str(len(data))  # from here on a body of known length
     env.pop("wsgi.input_terminated", None)
     env.pop("HTTP_TRANSFER_ENCODING", None)
+
+
+def body() -> bytes:
+    """The request's body (``b""`` when it has none), read on first use within the
+    route's limit (a 413 over it) and kept for the rest of the request; a client that
+    sends less than its ``Content-Length`` gets werkzeug's 400."""
+    kept = g.get("likewise_body")
+    if kept is None:
+        kept = g.likewise_body = _read_body()
+    return kept
+
+
+def _read_body() -> bytes:
+    env = request.environ
+    length = request.content_length  # bound_body gave a chunked body its length
+    if not length:
+        return b""
+    limit = request.max_content_length
+    if limit is not None and length > limit:
+        raise RequestEntityTooLarge()
+    stream = env["wsgi.input"]
+    data = stream.read(length)  # a whole BytesIO is handed back without a copy
+    if len(data) < length:  # a stream may answer in parts: gather the rest
+        parts, got = [data], len(data)
+        while got < length:
+            part = stream.read(length - got)
+            if not part:
+                raise ClientDisconnected()
+            parts.append(part)
+            got += len(part)
+        data = b"".join(parts)
+    # anything that still reads the stream (werkzeug's get_data) finds the same bytes
+    env["wsgi.input"] = io.BytesIO(data)
+    return data
 
 
 class _Duplicate(Exception):

@@ -24,6 +24,7 @@ from service import arrow_tables
 from service.errors import InvalidInput, UnsupportedMediaType
 from service.tables import Table
 
+from .bodies import body
 from .deps import context
 from .offload import read_json_table
 from .schemas import query_args
@@ -58,7 +59,7 @@ def read_table(kind: str, query_schema: Schema, *, tabular_only: tuple[str, ...]
                     name, "give it in the JSON body (the query takes it for CSV, Arrow "
                           "and Parquet bodies only)")
         keep = (query["id_column"],) if query.get("id_column") else ()
-        table, envelope = read_json_table(request.get_data(cache=True), kind,
+        table, envelope = read_json_table(body(), kind,
                                           (max_records, max_bytes), keep)
         return table, {**query, **envelope}
     if media not in arrow_tables.FORMATS:
@@ -68,7 +69,7 @@ def read_table(kind: str, query_schema: Schema, *, tabular_only: tuple[str, ...]
     if "group_column" in query_schema.fields and "group_column" not in query:
         raise InvalidInput.field(
             "group_column", f"required with a {media} body: the column of group labels")
-    raw = request.get_data(cache=True)
+    raw = body()
     pa_table = arrow_tables.read(raw, media, max_records, max_bytes)
     if "group_column" in query:
         pa_table, groups = arrow_tables.take_groups(pa_table, query["group_column"])

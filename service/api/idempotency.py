@@ -29,6 +29,7 @@ from flask import Response, json, request
 from service.errors import Conflict, InvalidInput
 
 from .auth import principal
+from .bodies import body
 from .deps import context
 
 HEADER = "Idempotency-Key"
@@ -83,7 +84,7 @@ def idempotent(view: Callable[..., Response]) -> Callable[..., Response]:
         store = ctx.storage.idempotency
         digest = slot(principal(), str((request.view_args or {}).get("name", "")), key)
         asked = fingerprint(request.method, request.path, request.query_string,
-                            request.get_data(cache=True))
+                            body())
         held = store.claim(digest, asked, CLAIM_SECONDS)
         if held is not None:
             if held.request != asked:

@@ -23,7 +23,7 @@ from service.config import MAX_FEATURES
 from service.errors import InvalidInput, MalformedRequest
 from service.usecases import pages, params
 
-from .bodies import parse_json
+from .bodies import body, parse_json
 
 # a rule's field below its own: "alphas[1]" (an item) or "categories.island" (a key)
 _BELOW = re.compile(r"[^.\[]+(?:\[(\d+)\]|\.(.+))")
@@ -244,14 +244,14 @@ def json_body(schema: Schema, empty_ok: bool = False) -> dict[str, Any]:
     (it cannot be stored or echoed as UTF-8); envelope errors → marshmallow's ValidationError
     (422 via the problem handlers). ``empty_ok`` lets a body-less request mean ``{}``.
     """
-    if empty_ok and not request.get_data(cache=True):
+    if empty_ok and not body():
         return schema.load({})
     if not request.is_json:
         raise MalformedRequest(
             f"Expected a JSON body (Content-Type: application/json), got "
             f"{request.mimetype or 'no content type'}."
         )
-    return load_json(request.get_data(cache=True), schema)
+    return load_json(body(), schema)
 
 
 def load_json(raw: bytes, schema: Schema) -> dict[str, Any]:

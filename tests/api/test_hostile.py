@@ -88,3 +88,59 @@ def test_whole_number_labels_are_bounded(api: SpecClient, metric: str, unchanged
         assert_problem(resp, 422, "groups")
     edge = [MAX_INT_LABEL if g == body["groups"][0] else g for g in body["groups"]]
     assert api.post(URL, json={**body, "groups": edge}).status_code == 201
+
+
+class _Trickle(io.RawIOBase):
+    """A WSGI input that hands out at most ``step`` bytes a read, as a socket may."""
+
+    def __init__(self, raw: bytes, step: int) -> None:
+        self._data, self._step, self.reads = io.BytesIO(raw), step, 0
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:  # the test client measures the stream first
+        return True
+
+    def seek(self, offset: int, whence: int = 0) -> int:
+        return self._data.seek(offset, whence)
+
+    def tell(self) -> int:
+        return self._data.tell()
+
+    def read(self, size: int = -1) -> bytes:
+        self.reads += 1
+        return self._data.read(self._step if size < 0 else min(size, self._step))
+
+
+def test_a_body_read_in_parts_is_stored_whole(api: SpecClient, metric: str) -> None:
+    X, y = iris_batches(1, seed=4)[0]
+    raw = json.dumps(records_body(X, y)).encode()
+    stream = _Trickle(raw, 1000)
+    stored = api.post(URL, input_stream=stream, content_type="application/json",
+                      environ_overrides={"CONTENT_LENGTH": str(len(raw))})
+    assert stored.status_code == 201, stored.get_json()
+    assert stored.get_json()["records"] == len(X)
+    assert stream.reads >= len(raw) // 1000
+
+
+def test_a_body_shorter_than_its_length_is_400(api: SpecClient, metric: str,
+                                               unchanged) -> None:
+    X, y = iris_batches(1, seed=5)[0]
+    raw = json.dumps(records_body(X, y)).encode()
+    with unchanged():
+        assert_problem(api.post(URL, input_stream=_Trickle(raw[:-10], 1000),
+                                content_type="application/json",
+                                environ_overrides={"CONTENT_LENGTH": str(len(raw))}), 400)
+
+
+def test_a_declared_length_over_the_limit_is_413_unread(api: SpecClient, app, metric: str,
+                                                        unchanged) -> None:
+    X, y = iris_batches(1, seed=6)[0]
+    raw = json.dumps(records_body(X, y)).encode()
+    app.config["MAX_CONTENT_LENGTH"] = len(raw) - 1
+    stream = _Trickle(raw, 1000)
+    with unchanged():
+        assert_problem(api.post(URL, input_stream=stream, content_type="application/json",
+                                environ_overrides={"CONTENT_LENGTH": str(len(raw))}), 413)
+    assert stream.reads == 0
