@@ -18,6 +18,7 @@ most, and shipping it to the helper would cost more than the parse.
 from __future__ import annotations
 
 import atexit
+import functools
 import multiprocessing
 import threading
 from concurrent.futures import ProcessPoolExecutor
@@ -37,7 +38,11 @@ _lock = threading.Lock()
 _pool: ProcessPoolExecutor | None = None
 
 
+@functools.cache
 def _schema(kind: str):  # noqa: ANN202 — a marshmallow Schema
+    """One schema per kind and process: a load keeps no state in the schema, and
+    building one (it copies its declared fields) cost more than loading a grouping's
+    envelope."""
     from .schemas import BatchSchema, GroupingSchema
 
     return {"batch": BatchSchema, "grouping": GroupingSchema}[kind]()
