@@ -36,6 +36,8 @@ LIKEWISE_MAX_RUN_RECORDS    max_run_records (a grouping run) 2000000
 LIKEWISE_MAX_RUN_BYTES      max_run_bytes (raw float64)    512 MiB
 LIKEWISE_MAX_RUN_REQUEST_BYTES max_run_request_bytes       1 GiB
 LIKEWISE_RUN_RESULT_HOURS   run_result_hours (results kept) 24
+LIKEWISE_CLIENT_SECONDS     client_seconds (a request's head) 10
+LIKEWISE_CLIENT_MIN_RATE    client_min_rate (bytes/s, body and answer) 100000
 =========================== ============================== ===========================
 
 The two log variables are read by the entry points' logging setup
@@ -113,6 +115,11 @@ class Settings:
     max_run_bytes: int = 512 * MIB
     max_run_request_bytes: int = 1024 * MIB
     run_result_hours: int = 24
+    # the web tier's deadlines on a client (service/deadlines.py): its request's head
+    # within client_seconds, a body or an answer within that plus its length at
+    # client_min_rate bytes a second
+    client_seconds: int = 10
+    client_min_rate: int = 100_000
 
     def __post_init__(self) -> None:
         if not self.key_prefix or any(c in self.key_prefix for c in " \t\r\n"):
@@ -124,7 +131,7 @@ class Settings:
                      "warden_seconds",
                      "lease_seconds", "idempotency_hours", "drift_hours",
                      "max_run_records", "max_run_bytes", "max_run_request_bytes",
-                     "run_result_hours"):
+                     "run_result_hours", "client_seconds", "client_min_rate"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"{name} must be at least 1")
         if self.max_batch_features > MAX_FEATURES:

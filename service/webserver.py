@@ -1,17 +1,17 @@
 """gunicorn settings of the web tier (``gunicorn -c python:service.webserver …``).
 
 Each web process serves one request at a time and takes a new connection only when
-it is free: gunicorn's ``gthread`` worker with one thread, one connection and no
-keep-alive (every answer closes its connection). The requests that cost are CPU
-work under one GIL (a grouping's k-means, a body's parse), so a second request in a
-busy process would only wait for the first one's GIL while another process sits
-idle; and a kept-alive connection stays with the process it first reached, so a few
-busy clients could pile onto one process. A free process accepts the next
-connection instead, and the default of one process more than cores
-(``LIKEWISE_WEB_WORKERS``) keeps one free for ``/healthz`` while the others parse
-large bodies. The threaded worker (rather than gunicorn's ``sync``) keeps its
-heartbeat going while a long request runs, so no request is cut off by gunicorn's
-worker timeout.
+it is free: gunicorn's threaded worker (:class:`Worker`, ``gthread`` with deadlines)
+with one thread, one connection and no keep-alive (every answer closes its
+connection). The requests that cost are CPU work under one GIL (a grouping's
+k-means, a body's parse), so a second request in a busy process would only wait for
+the first one's GIL while another process sits idle; and a kept-alive connection
+stays with the process it first reached, so a few busy clients could pile onto one
+process. A free process accepts the next connection instead, and the default of one
+process more than cores (``LIKEWISE_WEB_WORKERS``) keeps one free for ``/healthz``
+while the others parse large bodies. The threaded worker (rather than gunicorn's
+``sync``) keeps its heartbeat going while a long request runs, so no request is cut
+off by gunicorn's worker timeout.
 
 Some requests never reach the app: gunicorn itself refuses an over-long request
 line (414), too many or too large headers (431) and malformed HTTP (400). Its own
@@ -23,6 +23,12 @@ processes write their samples to files in ``PROMETHEUS_MULTIPROC_DIR``. On start
 the server uses the folder the launcher made (emptying it) or makes a private one of
 its own (removed on exit); when a web process exits its live gauges are dropped.
 
+Every exchange with a client is timed (:mod:`service.deadlines`): the request's head
+within ``LIKEWISE_CLIENT_SECONDS``, a body and the answer within that plus their
+length at ``LIKEWISE_CLIENT_MIN_RATE`` bytes a second; the work in between has no
+deadline. :class:`Worker` is gunicorn's threaded worker with those deadlines: a
+client that stalls or trickles cannot hold a one-request process.
+
 Logging: ``logconfig_dict`` is :func:`service.logs.dict_config` (read when gunicorn
 loads this module), so gunicorn's lines and the app's share one format.
 """
@@ -33,11 +39,16 @@ import json
 import os
 import shutil
 import tempfile
+import threading
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
 from gunicorn import util
+from gunicorn.workers.gthread import ThreadWorker
 
+from service.config import Settings
+from service.deadlines import ENVIRON_KEY, Deadline, Watch
 from service.errors import PROBLEM_BASE
 from service.logs import dict_config
 
@@ -115,7 +126,74 @@ def on_exit(_server: Any) -> None:
 logconfig_dict = dict_config()
 accesslog = None
 
-worker_class = "gthread"
+class _TimedAnswer:
+    """The answer's chunks, each to be taken by the client within the deadline of
+    its length; producing the next chunk is not timed."""
+
+    def __init__(self, chunks: Iterable[bytes], deadline: Deadline, seconds: float,
+                 rate: float) -> None:
+        self._chunks, self._deadline = chunks, deadline
+        self._seconds, self._rate = seconds, rate
+
+    def __iter__(self) -> Iterator[bytes]:
+        chunks = iter(self._chunks)
+        while True:
+            self._deadline.pause()
+            try:
+                chunk = next(chunks)
+            except StopIteration:
+                break
+            self._deadline.start(self._seconds + len(chunk) / self._rate, writing=True)
+            yield chunk
+        self._deadline.start(self._seconds, writing=True)  # the server's last bytes
+
+    def close(self) -> None:
+        close = getattr(self._chunks, "close", None)
+        if close is not None:
+            close()
+
+
+class Worker(ThreadWorker):
+    """gunicorn's threaded worker with a deadline on every exchange with a client."""
+
+    def init_process(self) -> None:
+        settings = Settings.from_env()
+        self._seconds = float(settings.client_seconds)
+        self._rate = float(settings.client_min_rate)
+        self._watch = Watch()
+        self._current = threading.local()  # the deadline of the thread's exchange
+        super().init_process()
+
+    def load_wsgi(self) -> None:
+        super().load_wsgi()
+        self.wsgi = self._timed(self.wsgi)
+
+    def handle(self, conn: Any) -> Any:
+        deadline = getattr(conn, "likewise_deadline", None)
+        if deadline is None:
+            deadline = conn.likewise_deadline = self._watch.deadline(conn)
+        deadline.start(self._seconds)  # the request line and headers
+        self._current.deadline = deadline
+        try:
+            return super().handle(conn)
+        finally:
+            self._current.deadline = None
+            deadline.pause()
+
+    def _timed(self, app: Callable[..., Any]) -> Callable[..., Any]:
+        def timed(environ: dict[str, Any], start_response: Callable[..., Any]) -> Any:
+            deadline = getattr(self._current, "deadline", None)
+            if deadline is None:
+                return app(environ, start_response)
+            # the app times the body (service.api.bodies): it knows the route's limit
+            environ[ENVIRON_KEY] = deadline
+            return _TimedAnswer(app(environ, start_response), deadline, self._seconds,
+                                self._rate)
+
+        return timed
+
+
+worker_class = "service.webserver.Worker"
 threads = 1
 worker_connections = 1  # accept only when free (the connection in hand counts)
 keepalive = 0  # close after each answer: the next request goes to a free process

@@ -12,6 +12,10 @@
   the request (the table readers, the schema loader and the idempotency digest share
   it): werkzeug's own reader copies a body in 64 KiB steps and then once more (about
   60 ms on a 41 MB grouping, measured).
+- Under the web server a body has a deadline (:mod:`service.deadlines`): the
+  ``LIKEWISE_CLIENT_SECONDS`` plus its length (a chunked one: the route's limit) at
+  ``LIKEWISE_CLIENT_MIN_RATE`` bytes a second. A client that has not sent it by then
+  gets a 408 and the process moves on; the work after the body has no deadline.
 - :func:`parse_json` refuses an object with the same key twice (a 422 naming the
   record, or the body), instead of letting the last value win. A body that orjson
   provably reads the same way, without a duplicate, skips the strict parse
@@ -25,8 +29,9 @@ import json
 from typing import Any
 
 from flask import g, request
-from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
+from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge, RequestTimeout
 
+from service import deadlines
 from service.errors import InvalidInput
 
 from .jsonio import UNSURE, decode_exact
@@ -60,9 +65,14 @@ def bound_body() -> None:
     unbounded = env.get("wsgi.input_terminated") or (
         "chunked" in env.get("HTTP_TRANSFER_ENCODING", "").lower()
         and not env.get("CONTENT_LENGTH"))
+    # from the environ: request.content_length would be read (and kept) too early
+    declared = env.get("CONTENT_LENGTH", "")
+    _time_body(int(declared) if declared.isdigit() else (limit or 0) if unbounded else 0)
     if limit is None or not unbounded:
         return
-    data = env["wsgi.input"].read(limit + 1)
+    data = _read(env["wsgi.input"], limit + 1)
+    _expired()  # a chunked body cut off by its deadline reads as a shorter one
+    _body_read()
     if len(data) > limit:
         # read a little more (bounded) so a body just over the limit is consumed and the
         # connection closes cleanly, the 413 reaching the client instead of a reset
@@ -93,19 +103,56 @@ def _read_body() -> bytes:
     if limit is not None and length > limit:
         raise RequestEntityTooLarge()
     stream = env["wsgi.input"]
-    data = stream.read(length)  # a whole BytesIO is handed back without a copy
+    data = _read(stream, length)  # a whole BytesIO is handed back without a copy
     if len(data) < length:  # a stream may answer in parts: gather the rest
         parts, got = [data], len(data)
         while got < length:
-            part = stream.read(length - got)
+            part = _read(stream, length - got)
             if not part:
+                _expired()
                 raise ClientDisconnected()
             parts.append(part)
             got += len(part)
         data = b"".join(parts)
+    _body_read()
     # anything that still reads the stream (werkzeug's get_data) finds the same bytes
     env["wsgi.input"] = io.BytesIO(data)
     return data
+
+
+def _read(stream: Any, size: int) -> bytes:
+    try:
+        return stream.read(size)
+    except OSError:  # the connection failed, or its deadline shut it
+        _expired()
+        raise ClientDisconnected() from None
+
+
+def _time_body(expected: int) -> None:
+    """The body's deadline (none when the request has no body)."""
+    deadline = deadlines.of(request.environ)
+    if deadline is None:
+        return
+    if not expected:
+        deadline.pause()
+        return
+    from .deps import context
+
+    s = context().settings
+    deadline.start(s.client_seconds + expected / s.client_min_rate)
+
+
+def _body_read() -> None:
+    deadline = deadlines.of(request.environ)
+    if deadline is not None:
+        deadline.pause()  # the work that follows has no deadline
+
+
+def _expired() -> None:
+    deadline = deadlines.of(request.environ)
+    if deadline is not None and deadline.expired:
+        raise RequestTimeout("The request body did not arrive in time "
+                             "(LIKEWISE_CLIENT_SECONDS, LIKEWISE_CLIENT_MIN_RATE).")
 
 
 class _Duplicate(Exception):

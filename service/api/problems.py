@@ -126,6 +126,7 @@ _HTTP_SLUGS = {
     400: "malformed-request",
     404: "not-found",
     405: "method-not-allowed",
+    408: "request-timeout",
     413: "payload-too-large",
     415: "unsupported-media-type",
 }

@@ -17,7 +17,8 @@ PROBLEM_BASE = "urn:likewise:problem:"
 SLUGS = {
     400: {"malformed-request"}, 401: {"unauthorized"}, 403: {"forbidden"},
     404: {"not-found"},
-    405: {"method-not-allowed"}, 409: {"conflict"}, 413: {"payload-too-large"},
+    405: {"method-not-allowed"}, 408: {"request-timeout"}, 409: {"conflict"},
+    413: {"payload-too-large"},
     415: {"unsupported-media-type"},
     422: {"invalid-input"}, 500: {"internal-error"}, 503: {"unavailable", "not-ready"},
 }

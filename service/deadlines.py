@@ -1,0 +1,127 @@
+"""Deadlines for the exchange with a client, so a slow or stalled client cannot hold
+a web process.
+
+A web process serves one request at a time (``service/webserver.py``). Without a
+deadline, a client that sends a request's head or body a byte at a time — or stops
+sending, or stops reading the answer — keeps that process from every other request
+for as long as it likes, and as many such clients as there are web processes stall
+the API (measured: three connections that each sent part of a request held a
+three-process server for good).
+
+So every exchange is timed, in phases:
+
+- the request line and headers must arrive within ``client_seconds``;
+- a body must arrive within ``client_seconds`` plus its length at
+  ``client_min_rate`` bytes a second (a chunked body: the route's size limit at that
+  rate);
+- the answer must be taken within ``client_seconds`` plus its length at that rate.
+
+The work between the body and the answer (a grouping's k-means, a parse) has no
+deadline. When a phase's deadline passes, :class:`Watch`'s thread shuts the
+connection's socket — its reading side while the request is read, so a 408 problem
+can still be sent; both sides while the answer is written — and the blocked call
+returns at once: the process is free again.
+"""
+
+from __future__ import annotations
+
+import heapq
+import itertools
+import socket
+import threading
+import time
+from typing import Any
+
+ENVIRON_KEY = "likewise.deadline"  # the exchange's Deadline, in a WSGI environ
+
+
+class Deadline:
+    """One connection's current deadline (none while the work runs). ``conn`` is
+    anything with a ``sock`` attribute, read when the deadline passes (a server may
+    wrap the socket once the exchange has started)."""
+
+    def __init__(self, watch: Watch, conn: Any) -> None:
+        self._watch, self._conn = watch, conn
+        self.at: float | None = None
+        self.how = socket.SHUT_RD
+        self.expired = False  # set by the watcher once it has shut the socket
+        self._token = 0
+
+    def start(self, seconds: float, *, writing: bool = False) -> None:
+        """A new phase, due ``seconds`` from now (``writing``: the answer's)."""
+        self._watch.set(self, time.monotonic() + seconds,
+                        socket.SHUT_RDWR if writing else socket.SHUT_RD)
+
+    def pause(self) -> None:
+        """No deadline until the next phase starts (the work runs)."""
+        self._watch.set(self, None, self.how)
+
+    @property
+    def sock(self) -> socket.socket:
+        return self._conn.sock
+
+
+class Watch:
+    """The deadlines of one process's connections and the thread that enforces them
+    (started on first use, so a process that forks gets its own)."""
+
+    def __init__(self) -> None:
+        self._cond = threading.Condition()
+        self._heap: list[tuple[float, int, Deadline]] = []
+        self._order = itertools.count()
+        self._thread: threading.Thread | None = None
+
+    def deadline(self, conn: Any) -> Deadline:
+        return Deadline(self, conn)
+
+    def set(self, d: Deadline, at: float | None, how: int) -> None:
+        with self._cond:
+            d.at, d.how = at, how
+            d._token = next(self._order)  # an older heap entry of d is now stale
+            if at is not None:
+                heapq.heappush(self._heap, (at, d._token, d))
+                if self._thread is None:
+                    self._thread = threading.Thread(target=self._run, name="likewise-deadlines",
+                                                    daemon=True)
+                    self._thread.start()
+                self._cond.notify()
+
+    def armed(self) -> int:
+        """Deadlines still running (for tests)."""
+        with self._cond:
+            return sum(1 for at, token, d in self._heap if d._token == token and d.at == at)
+
+    def _run(self) -> None:
+        while True:
+            with self._cond:
+                due = self._due()
+                if not due:
+                    self._cond.wait(self._wait())
+                    continue
+            for d, how in due:  # outside the lock: shutdown may take a moment
+                try:
+                    d.sock.shutdown(how)
+                except OSError:  # closed meanwhile, or the client has gone
+                    pass
+
+    def _due(self) -> list[tuple[Deadline, int]]:
+        now, due = time.monotonic(), []
+        while self._heap and self._heap[0][0] <= now:
+            at, token, d = heapq.heappop(self._heap)
+            if d._token == token and d.at == at:  # still the connection's deadline
+                d.expired, d.at = True, None
+                due.append((d, d.how))
+        return due
+
+    def _wait(self) -> float | None:
+        while self._heap:  # drop stale entries so an idle process sleeps
+            at, token, d = self._heap[0]
+            if d._token == token and d.at == at:
+                return max(0.0, at - time.monotonic())
+            heapq.heappop(self._heap)
+        return None
+
+
+def of(environ: dict[str, Any]) -> Deadline | None:
+    """The exchange's deadline, when a web process runs the app (none in tests)."""
+    return environ.get(ENVIRON_KEY)
