@@ -1,7 +1,7 @@
 """Work a request hands off so its answer does not wait: one daemon thread per process.
 
 A grouping's drift summary is computed and written here, after the answer has gone.
-The backlog is bounded: when it is full a job is dropped and counted (``dropped``),
+The backlog is bounded: when it is full a job is refused and counted (``refused``),
 never queued without limit. :func:`flush` waits (bounded) until every job handed off
 so far is done — a reader in the same process calls it to see its own writes — and
 then runs the hooks given to :meth:`Backlog.on_flush` (work a job keeps back to
@@ -27,7 +27,7 @@ CAPACITY = 1024
 class Backlog:
     def __init__(self, capacity: int = CAPACITY) -> None:
         self.capacity = capacity
-        self.dropped = 0
+        self.refused = 0  # jobs the full backlog did not take
         self._lock = threading.Lock()
         self._pid: int | None = None
         self._jobs: queue.Queue[Callable[[], None]] = queue.Queue(capacity)
@@ -47,14 +47,16 @@ class Backlog:
                     self._pid = os.getpid()
         return self._jobs
 
-    def submit(self, job: Callable[[], None]) -> bool:
-        """Hand ``job`` off; False (and counted) when the backlog is full."""
+    def submit(self, job: Callable[[], None], outcome: str = "a drift summary was dropped"
+               ) -> bool:
+        """Hand ``job`` off; False (and counted) when the backlog is full, logging
+        ``outcome``: what becomes of the job then (the caller may run it itself)."""
         try:
             self._ensure().put_nowait(job)
             return True
         except queue.Full:
-            self.dropped += 1
-            log.warning("backlog full (%d jobs): a drift summary was dropped", self.capacity)
+            self.refused += 1
+            log.warning("backlog full (%d jobs): %s", self.capacity, outcome)
             return False
 
     @staticmethod
