@@ -134,6 +134,20 @@ class Keys:
     def run(self, run_id: str) -> str:
         return self.join("grun", run_id)
 
+    def run_keys(self, run_id: str, n_chunks: int) -> list[str]:
+        """Every key of a run of ``n_chunks`` chunks: its record, lease, inputs, ids
+        and results."""
+        keys = [self.run(run_id), self.run_lease(run_id)]
+        for i in range(n_chunks):
+            keys += [self.run_input(run_id, i), self.run_ids(run_id, i),
+                     self.run_output(run_id, i)]
+        return keys
+
+    def run_index(self, name: str) -> str:
+        """The ids of a metric's grouping runs (kept until the metric is deleted; an
+        id whose run has expired is dropped then)."""
+        return self.metric(name, "runs")
+
     def run_input(self, run_id: str, chunk: int) -> str:
         return self.join("grun", run_id, "in", chunk)
 

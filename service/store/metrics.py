@@ -133,11 +133,14 @@ class MetricStore:
 
     def delete(self, name: str) -> bool:
         """Delete a metric with its batches, versions (and their drift references),
-        history, fits and dedupe keys. Drift buckets are left to expire: their keys
-        carry the metric's uid, which a re-created metric does not share."""
+        history, fits, dedupe keys and grouping runs (their records and results; a
+        run being grouped then writes nothing). Drift buckets — summaries, no records
+        — are left to expire: their keys carry the metric's uid, which a re-created
+        metric does not share."""
         k = self.keys
         mkey = k.metric(name)
-        zkeys = [k.batch_index(name), k.version_index(name), k.fit_index(name)]
+        zkeys = [k.batch_index(name), k.version_index(name), k.fit_index(name),
+                 k.run_index(name)]
 
         def body(pipe: Pipeline) -> bool:
             if not pipe.exists(mkey):
@@ -146,23 +149,33 @@ class MetricStore:
             batch_ids = [text(b) for b in pipe.zrange(zkeys[0], 0, -1)]
             versions = [text(v) for v in pipe.zrange(zkeys[1], 0, -1)]
             fit_ids = [text(f) for f in pipe.zrange(zkeys[2], 0, -1)]
-            # every dedupe key is named in the record of the fit it points at (one
-            # round trip for all; the fits themselves are watched through zkeys)
+            run_ids = sorted(text(r) for r in pipe.smembers(zkeys[3]))
+            # every dedupe key is named in the record of the fit it points at, and a
+            # run's chunk count in its record (one round trip for all; the fits and
+            # runs themselves are watched through zkeys)
             reads = self.redis.pipeline(transaction=False)
             for f in fit_ids:
                 reads.hget(k.fit(f), "dedupe_key")
-            dedupe = [json.loads(v) for v in reads.execute() if v is not None]
+            for r in run_ids:
+                reads.hget(k.run(r), "n_chunks")
+            found = reads.execute()
+            dedupe = [json.loads(v) for v in found[:len(fit_ids)] if v is not None]
+            chunks = [json.loads(v) if v is not None else 0 for v in found[len(fit_ids):]]
             doomed = [mkey, *zkeys, *(d for d in dedupe if d)]
             doomed += [k.metric(name, s) for s in METRIC_SCALARS]
             doomed += [k.batch(name, b) for b in batch_ids]
             doomed += [k.version(name, v) for v in versions]
             doomed += [k.drift_reference(name, v) for v in versions]
             doomed += [k.fit(f) for f in fit_ids] + [k.lease(f) for f in fit_ids]
+            for r, n in zip(run_ids, chunks, strict=True):
+                doomed += k.run_keys(r, int(n))
             pipe.multi()
             pipe.delete(*doomed)
             pipe.srem(k.metric_names(), name)
             if fit_ids:
                 pipe.srem(k.live_fits(), *fit_ids)
+            if run_ids:
+                pipe.srem(k.live_runs(), *run_ids)
             return True
 
         return transact(self.redis, [mkey, *zkeys], body)

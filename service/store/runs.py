@@ -80,6 +80,7 @@ class RunStore(Leases):
                 pipe.set(k.run_ids(run.run_id, i), blob)
             pipe.hset(k.run(run.run_id), mapping=json_fields(run.to_record()))
             pipe.sadd(k.live_runs(), run.run_id)
+            pipe.sadd(k.run_index(run.metric), run.run_id)
             enqueue(pipe)
 
         transact(self.redis, [mkey], body)
@@ -133,13 +134,10 @@ class RunStore(Leases):
                         dumps(RunStatus.GROUPING.value))
 
     def delete(self, run: Run) -> None:
-        k, rid = self.keys, run.run_id
-        doomed = [k.run(rid), k.run_lease(rid)]
-        for i in range(run.n_chunks):
-            doomed += [k.run_input(rid, i), k.run_ids(rid, i), k.run_output(rid, i)]
         with self.redis.pipeline(transaction=True) as pipe:
-            pipe.delete(*doomed)
-            pipe.srem(k.live_runs(), rid)
+            pipe.delete(*self.keys.run_keys(run.run_id, run.n_chunks))
+            pipe.srem(self.keys.live_runs(), run.run_id)
+            pipe.srem(self.keys.run_index(run.metric), run.run_id)
             pipe.execute()
 
     def forget_live(self, run_id: str) -> None:

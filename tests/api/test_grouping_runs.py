@@ -245,6 +245,24 @@ def test_delete_drops_the_run_and_a_waiting_run_writes_nothing_afterwards(
     assert ctx.storage.runs.live_ids() == []
 
 
+def test_deleting_the_metric_deletes_its_runs_records_and_results(
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], run_worker_burst, iris
+) -> None:
+    _, records = iris
+    done = _start(api, {"records": records, "k": 3})
+    _done(api, ctx, run_worker_burst, done)
+    waiting = _start(api, {"records": records[:70], "k": 2})
+    ids = [loc.rsplit("/", 1)[1] for loc in (done, waiting)]
+    assert api.delete("/v1/metrics/iris").status_code == 204
+    for loc in (done, waiting):
+        assert_problem(api.get(loc), 404)
+    run_worker_burst(ctx, max_jobs=5)  # the waiting run's job finds nothing to do
+    for run_id in ids:
+        assert list(ctx.redis.scan_iter(match=ctx.storage.keys.run(run_id) + "*")) == []
+    assert ctx.storage.runs.live_ids() == []
+    assert not ctx.redis.exists(ctx.storage.keys.run_index("iris"))
+
+
 def test_idempotency_key_replays_the_acceptance(
     api: SpecClient, ctx: Context, fitted: dict[str, Any], iris
 ) -> None:
