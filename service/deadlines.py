@@ -12,8 +12,8 @@ So every exchange is timed, in phases:
 
 - the request line and headers must arrive within ``client_seconds``;
 - a body must arrive within ``client_seconds`` plus its length at
-  ``client_min_rate`` bytes a second (a chunked body: the route's size limit at that
-  rate);
+  ``client_min_rate`` bytes a second, checked every 1 MiB as it arrives
+  (``service/api/bodies.py``), so a chunked body is timed by what it sends;
 - the answer must be taken within ``client_seconds`` plus its length at that rate.
 
 The work between the body and the answer (a grouping's k-means, a parse) has no
@@ -44,7 +44,9 @@ class Deadline:
         self._watch, self._conn = watch, conn
         self.at: float | None = None
         self.how = socket.SHUT_RD
-        self.expired = False  # set by the watcher once it has shut the socket
+        # set by the watcher once it has shut the socket (for good: the connection is
+        # then done)
+        self.expired = False
         self._token = 0
 
     def start(self, seconds: float, *, writing: bool = False) -> None:
@@ -94,24 +96,24 @@ class Watch:
     def _run(self) -> None:
         while True:
             with self._cond:
-                due = self._due()
-                if not due:
+                # under the lock, so a phase that starts (or a pause) meanwhile is never
+                # cut by the deadline it replaced; shutdown does not block
+                if not self._shut_due():
                     self._cond.wait(self._wait())
-                    continue
-            for d, how in due:  # outside the lock: shutdown may take a moment
-                try:
-                    d.sock.shutdown(how)
-                except OSError:  # closed meanwhile, or the client has gone
-                    pass
 
-    def _due(self) -> list[tuple[Deadline, int]]:
-        now, due = time.monotonic(), []
+    def _shut_due(self) -> bool:
+        now, shut = time.monotonic(), False
         while self._heap and self._heap[0][0] <= now:
             at, token, d = heapq.heappop(self._heap)
             if d._token == token and d.at == at:  # still the connection's deadline
-                d.expired, d.at = True, None
-                due.append((d, d.how))
-        return due
+                d.expired, d.at, shut = True, None, True
+                try:
+                    # the plain socket's shutdown: a TLS socket's own would also drop
+                    # its TLS state, and a 408 could no longer be sent over it
+                    socket.socket.shutdown(d.sock, d.how)
+                except OSError:  # closed meanwhile, or the client has gone
+                    pass
+        return shut
 
     def _wait(self) -> float | None:
         while self._heap:  # drop stale entries so an idle process sleeps

@@ -153,6 +153,14 @@ class _TimedAnswer:
             close()
 
 
+def _size(wrapped: Any) -> int:
+    """The size of the file a ``wsgi.file_wrapper`` sends (0 when unknown)."""
+    try:
+        return os.fstat(wrapped.filelike.fileno()).st_size
+    except (AttributeError, OSError, ValueError):
+        return 0
+
+
 class Worker(ThreadWorker):
     """gunicorn's threaded worker with a deadline on every exchange with a client."""
 
@@ -187,13 +195,21 @@ class Worker(ThreadWorker):
                 return app(environ, start_response)
             # the app times the body (service.api.bodies): it knows the route's limit
             environ[ENVIRON_KEY] = deadline
-            return _TimedAnswer(app(environ, start_response), deadline, self._seconds,
-                                self._rate)
+            answer = app(environ, start_response)
+            files = environ.get("wsgi.file_wrapper")
+            if files is not None and isinstance(answer, files):
+                # a file is sent in one go (sendfile): one deadline for its size
+                deadline.start(self._seconds + _size(answer) / self._rate, writing=True)
+                return answer
+            return _TimedAnswer(answer, deadline, self._seconds, self._rate)
 
         return timed
 
 
 worker_class = "service.webserver.Worker"
+# one exchange per connection at a time: the deadlines are per connection, so HTTP/2's
+# streams (several exchanges on one connection) are not served (gunicorn's default)
+http_protocols = "h1"
 threads = 1
 worker_connections = 1  # accept only when free (the connection in hand counts)
 keepalive = 0  # close after each answer: the next request goes to a free process

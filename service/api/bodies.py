@@ -5,17 +5,19 @@
   requests, activations) and ``LIKEWISE_MAX_RUN_REQUEST_BYTES`` for a grouping run's
   table, so validation cost follows what a route allows, not
   what a caller sends.
-- A chunked body (no ``Content-Length``) is read up to the limit plus one byte in
-  :func:`bound_body`: over the limit it is a 413, like a body that declares its
-  length; the WSGI layer would otherwise cut it silently at the limit.
+- A body that declares a length over its limit is a 413 before any of it is read; a
+  chunked body (no ``Content-Length``) is read up to the limit plus one byte, and
+  over it is a 413 too (the WSGI layer would otherwise cut it silently at the
+  limit).
 - :func:`body` reads the body once, in one call on the WSGI stream, and keeps it for
   the request (the table readers, the schema loader and the idempotency digest share
   it): werkzeug's own reader copies a body in 64 KiB steps and then once more (about
   60 ms on a 41 MB grouping, measured).
-- Under the web server a body has a deadline (:mod:`service.deadlines`): the
-  ``LIKEWISE_CLIENT_SECONDS`` plus its length (a chunked one: the route's limit) at
-  ``LIKEWISE_CLIENT_MIN_RATE`` bytes a second. A client that has not sent it by then
-  gets a 408 and the process moves on; the work after the body has no deadline.
+- Under the web server a body has a deadline (:mod:`service.deadlines`): it must
+  arrive within ``LIKEWISE_CLIENT_SECONDS`` plus its length at
+  ``LIKEWISE_CLIENT_MIN_RATE`` bytes a second, checked every 1 MiB as it arrives. A
+  client that falls behind gets a 408 and the process moves on; the work after the
+  body has no deadline.
 - :func:`parse_json` refuses an object with the same key twice (a 422 naming the
   record, or the body), instead of letting the last value win. A body that orjson
   provably reads the same way, without a duplicate, skips the strict parse
@@ -26,6 +28,7 @@ from __future__ import annotations
 
 import io
 import json
+import time
 from typing import Any
 
 from flask import g, request
@@ -48,8 +51,13 @@ SMALL_ENDPOINTS = frozenset({
 LARGE_ENDPOINTS = frozenset({"v1.grouping_runs.start_run"})
 
 
+STEP_BYTES = 1024 * 1024  # under a deadline a body is read in steps of this size
+
+
 def bound_body() -> None:
-    """``before_request``: the route's body limit; chunked bodies read within it."""
+    """``before_request``: the route's body limit. A body declared over it is a 413
+    at once; any other is read when the view asks for it (:func:`body`), once the
+    token has been checked."""
     limit = request.max_content_length
     if request.endpoint in LARGE_ENDPOINTS:
         from .deps import context
@@ -59,35 +67,34 @@ def bound_body() -> None:
     if request.endpoint in SMALL_ENDPOINTS:
         limit = SMALL_BODY if limit is None else min(limit, SMALL_BODY)
         request.max_content_length = limit
-    env = request.environ
-    # a server that de-chunks marks the stream as terminated; werkzeug then reads it
-    # up to the limit and stops there, without a word
-    unbounded = env.get("wsgi.input_terminated") or (
-        "chunked" in env.get("HTTP_TRANSFER_ENCODING", "").lower()
-        and not env.get("CONTENT_LENGTH"))
-    # from the environ: request.content_length would be read (and kept) too early
-    declared = env.get("CONTENT_LENGTH", "")
-    _time_body(int(declared) if declared.isdigit() else (limit or 0) if unbounded else 0)
-    if limit is None or not unbounded:
-        return
-    data = _read(env["wsgi.input"], limit + 1)
-    _expired()  # a chunked body cut off by its deadline reads as a shorter one
-    _body_read()
-    if len(data) > limit:
-        # read a little more (bounded) so a body just over the limit is consumed and the
-        # connection closes cleanly, the 413 reaching the client instead of a reset
-        env["wsgi.input"].read(DRAIN_BYTES)
+    deadline = deadlines.of(request.environ)
+    if deadline is not None:
+        deadline.pause()  # the head has arrived; a body is timed as it is read
+    declared = _declared()
+    if declared is not None and limit is not None and declared > limit:
+        _drain()
         raise RequestEntityTooLarge()
-    env["wsgi.input"] = io.BytesIO(data)
-    env["CONTENT_LENGTH"] = str(len(data))  # from here on a body of known length
-    env.pop("wsgi.input_terminated", None)
-    env.pop("HTTP_TRANSFER_ENCODING", None)
+
+
+def _declared() -> int | None:
+    """The body's declared length (None: chunked, or no body), from the environ:
+    ``request.content_length`` would be kept before :func:`_read_body` rewrites it."""
+    raw = request.environ.get("CONTENT_LENGTH", "")
+    return int(raw) if raw.isdigit() else None
+
+
+def _chunked() -> bool:
+    """A body without a declared length, ended by the stream: a server that de-chunks
+    marks it terminated (gunicorn marks every request so)."""
+    env = request.environ
+    return bool(env.get("wsgi.input_terminated")) or (
+        "chunked" in env.get("HTTP_TRANSFER_ENCODING", "").lower())
 
 
 def body() -> bytes:
     """The request's body (``b""`` when it has none), read on first use within the
     route's limit (a 413 over it) and kept for the rest of the request; a client that
-    sends less than its ``Content-Length`` gets werkzeug's 400."""
+    sends less than its ``Content-Length`` gets a 400, one too slow a 408."""
     kept = g.get("likewise_body")
     if kept is None:
         kept = g.likewise_body = _read_body()
@@ -96,28 +103,65 @@ def body() -> bytes:
 
 def _read_body() -> bytes:
     env = request.environ
-    length = request.content_length  # bound_body gave a chunked body its length
-    if not length:
-        return b""
     limit = request.max_content_length
-    if limit is not None and length > limit:
-        raise RequestEntityTooLarge()
-    stream = env["wsgi.input"]
-    data = _read(stream, length)  # a whole BytesIO is handed back without a copy
-    if len(data) < length:  # a stream may answer in parts: gather the rest
-        parts, got = [data], len(data)
-        while got < length:
-            part = _read(stream, length - got)
-            if not part:
-                _expired()
-                raise ClientDisconnected()
-            parts.append(part)
-            got += len(part)
-        data = b"".join(parts)
-    _body_read()
-    # anything that still reads the stream (werkzeug's get_data) finds the same bytes
+    declared = _declared()
+    if declared is None and not _chunked():
+        return b""
+    if declared is not None:
+        data = _read_timed(declared)
+        if len(data) < declared:
+            _expired()
+            raise ClientDisconnected()
+    else:
+        # a chunked body: read up to the limit, plus one byte to tell it is over
+        data = _read_timed(limit + 1 if limit is not None else None)
+        _expired()  # a chunked body cut off by its deadline reads as a shorter one
+        if limit is not None and len(data) > limit:
+            _drain()
+            raise RequestEntityTooLarge()
+    deadline = deadlines.of(env)
+    if deadline is not None:
+        deadline.pause()  # the work that follows has no deadline
+    # anything that still reads the stream (werkzeug's get_data) finds the same bytes,
+    # as a body of known length
     env["wsgi.input"] = io.BytesIO(data)
+    env["CONTENT_LENGTH"] = str(len(data))
+    env.pop("wsgi.input_terminated", None)
+    env.pop("HTTP_TRANSFER_ENCODING", None)
     return data
+
+
+def _read_timed(want: int | None) -> bytes:
+    """Up to ``want`` bytes of the body (None: all), fewer when the stream ends.
+
+    Under a deadline, in steps of :data:`STEP_BYTES`: the bytes up to the end of each
+    step are due within ``LIKEWISE_CLIENT_SECONDS`` of the first read plus their
+    count at ``LIKEWISE_CLIENT_MIN_RATE``, so the rate holds as the body arrives (a
+    chunked body is timed by what it sends, not by the route's limit). Without one
+    (in process), in one call: a whole BytesIO comes back without a copy.
+    """
+    stream = request.environ["wsgi.input"]
+    deadline = deadlines.of(request.environ)
+    step = STEP_BYTES if deadline is not None or want is None else want
+    begun = time.monotonic()
+    if deadline is not None:
+        from .deps import context
+
+        s = context().settings
+        base, rate = float(s.client_seconds), float(s.client_min_rate)
+    parts: list[bytes] = []
+    got = 0
+    while want is None or got < want:
+        size = step if want is None else min(step, want - got)
+        if deadline is not None:
+            due = begun + base + (got + size) / rate
+            deadline.start(max(0.0, due - time.monotonic()))
+        part = _read(stream, size)
+        if not part or (deadline is not None and deadline.expired):
+            break  # the stream ended, or the deadline shut it
+        parts.append(part)
+        got += len(part)
+    return parts[0] if len(parts) == 1 else b"".join(parts)
 
 
 def _read(stream: Any, size: int) -> bytes:
@@ -128,24 +172,20 @@ def _read(stream: Any, size: int) -> bytes:
         raise ClientDisconnected() from None
 
 
-def _time_body(expected: int) -> None:
-    """The body's deadline (none when the request has no body)."""
-    deadline = deadlines.of(request.environ)
-    if deadline is None:
-        return
-    if not expected:
-        deadline.pause()
-        return
-    from .deps import context
-
-    s = context().settings
-    deadline.start(s.client_seconds + expected / s.client_min_rate)
-
-
-def _body_read() -> None:
+def _drain() -> None:
+    """Read a little of a body over the limit (bounded, and timed) so one just over it
+    is consumed and the connection closes cleanly: the 413 reaches the client instead
+    of a reset."""
     deadline = deadlines.of(request.environ)
     if deadline is not None:
-        deadline.pause()  # the work that follows has no deadline
+        from .deps import context
+
+        s = context().settings
+        deadline.start(s.client_seconds + DRAIN_BYTES / s.client_min_rate)
+    try:
+        request.environ["wsgi.input"].read(DRAIN_BYTES)
+    except OSError:
+        pass
 
 
 def _expired() -> None:

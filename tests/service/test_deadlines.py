@@ -57,14 +57,14 @@ def test_a_new_phase_replaces_the_deadline_and_a_pause_clears_it(pair):
     other_ours, other_theirs = socket.socketpair()
     try:
         other = watch.deadline(SimpleNamespace(sock=other_ours))
-        other.start(0.05)
+        other.start(1.0)
         other.pause()  # the work runs: no deadline
         assert watch.armed() == 0
         # a third deadline, due after the paused one would have been, fires alone
         third_ours, third_theirs = socket.socketpair()
         try:
             third_ours.settimeout(BOUND)
-            watch.deadline(SimpleNamespace(sock=third_ours)).start(0.2)
+            watch.deadline(SimpleNamespace(sock=third_ours)).start(1.5)
             assert third_ours.recv(10) == b""
             other_theirs.sendall(b"ok")  # the paused connection still reads
             other_ours.settimeout(BOUND)
