@@ -30,6 +30,9 @@ Key layout (``P`` = the deployment's key prefix; metric names follow the rule of
     P:metric:{name}:history         list   activations (JSON), oldest first
     P:metric:{name}:fits            zset   fit ids of this metric, by creation time
     P:metric:{name}:dedupe:{hash}   string fit id of a waiting/running fit with these params
+    P:metric:{name}:runs            set    ids of this metric's grouping runs (an expired
+                                           run's id stays until the metric is deleted,
+                                           which deletes every run named here)
     P:fit:{fit_id}                  hash   fit record fields (JSON values)
     P:fit:{fit_id}:lease            string job id of the attempt running it (expires unless renewed)
     P:live-fits                     set    ids of waiting and running fits (what the warden checks)
