@@ -104,7 +104,19 @@ class CrossValidation:
         # statistics-only batches: in every fold's training statistics, never held out
         self.n_stats_only = len(extra)
         self.extra = BatchStats.sum(extra, self.stats[0].n_features)
-        self.total = BatchStats.sum(self.stats) + self.extra
+        # the first repetition's folds hold every batch out once: their held-out sums
+        # add up to the total, so each batch's statistics are added once for both
+        # (at 10,000 batches the sums are the largest cost that grows with them)
+        self._held_sums = {i: BatchStats.sum([self.stats[b] for b in f.held_out])
+                           for i, f in enumerate(folds) if f.repeat == 0}
+        first = sorted(b for i in self._held_sums for b in folds[i].held_out)
+        if first == list(range(len(self.stats))):
+            self.total = BatchStats.sum(list(self._held_sums.values())) + self.extra
+        else:  # not a partition (never made by make_folds): sum every batch
+            self.total = BatchStats.sum(self.stats) + self.extra
+        d = self.stats[0].n_features
+        if 2 * d * d * len(self._held_sums) > KEEP_ELEMENTS:
+            self._held_sums = {}  # wide features: summed again per fold instead
         self.leave_one_out = all(len(f.held_out) == 1 for f in folds) and len(folds) == len(batches)
         self.max_rank = max_rank
         self.random_state = random_state
@@ -147,13 +159,17 @@ class CrossValidation:
         return self._held[b]
 
     def train_stats(self, i: int) -> BatchStats:
-        """``total − held-out``: O(d²), recomputed rather than kept (d² floats per fold).
+        """``total − held-out``: O(d²), recomputed rather than kept (d² floats per fold;
+        the first repetition's held-out sums are kept while they fit in
+        :data:`KEEP_ELEMENTS` floats).
 
         Summed from the training batches instead when the subtraction cancels
         (:func:`service.core.stats.without`).
         """
         fold = self.folds[i]
-        held = BatchStats.sum([self.stats[b] for b in fold.held_out])
+        held = self._held_sums.get(i)
+        if held is None:
+            held = BatchStats.sum([self.stats[b] for b in fold.held_out])
         train = [self.stats[b] for b in fold.train]
         return without(self.total, held, lambda: BatchStats.sum(train) + self.extra)
 
