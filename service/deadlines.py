@@ -30,9 +30,11 @@ import itertools
 import socket
 import threading
 import time
+from collections.abc import Callable
 from typing import Any
 
 ENVIRON_KEY = "likewise.deadline"  # the exchange's Deadline, in a WSGI environ
+PHASES = ("head", "body", "answer")  # what the client was late with
 
 
 class Deadline:
@@ -44,15 +46,17 @@ class Deadline:
         self._watch, self._conn = watch, conn
         self.at: float | None = None
         self.how = socket.SHUT_RD
+        self.phase = "head"
         # set by the watcher once it has shut the socket (for good: the connection is
         # then done)
         self.expired = False
         self._token = 0
 
-    def start(self, seconds: float, *, writing: bool = False) -> None:
-        """A new phase, due ``seconds`` from now (``writing``: the answer's)."""
+    def start(self, seconds: float, phase: str) -> None:
+        """A new phase (:data:`PHASES`), due ``seconds`` from now."""
+        self.phase = phase
         self._watch.set(self, time.monotonic() + seconds,
-                        socket.SHUT_RDWR if writing else socket.SHUT_RD)
+                        socket.SHUT_RDWR if phase == "answer" else socket.SHUT_RD)
 
     def pause(self) -> None:
         """No deadline until the next phase starts (the work runs)."""
@@ -67,7 +71,9 @@ class Watch:
     """The deadlines of one process's connections and the thread that enforces them
     (started on first use, so a process that forks gets its own)."""
 
-    def __init__(self) -> None:
+    def __init__(self, on_cut: Callable[[str], None] | None = None) -> None:
+        """``on_cut(phase)`` is told of every connection shut (a counter: quick)."""
+        self._on_cut = on_cut
         self._cond = threading.Condition()
         self._heap: list[tuple[float, int, Deadline]] = []
         self._order = itertools.count()
@@ -112,7 +118,9 @@ class Watch:
                     # its TLS state, and a 408 could no longer be sent over it
                     socket.socket.shutdown(d.sock, d.how)
                 except OSError:  # closed meanwhile, or the client has gone
-                    pass
+                    continue
+                if self._on_cut is not None:
+                    self._on_cut(d.phase)
         return shut
 
     def _wait(self) -> float | None:

@@ -48,7 +48,7 @@ from gunicorn import util
 from gunicorn.workers.gthread import ThreadWorker
 
 from service.config import Settings
-from service.deadlines import ENVIRON_KEY, Deadline, Watch
+from service.deadlines import ENVIRON_KEY, PHASES, Deadline, Watch
 from service.errors import PROBLEM_BASE
 from service.logs import dict_config
 
@@ -143,14 +143,28 @@ class _TimedAnswer:
                 chunk = next(chunks)
             except StopIteration:
                 break
-            self._deadline.start(self._seconds + len(chunk) / self._rate, writing=True)
+            self._deadline.start(self._seconds + len(chunk) / self._rate, "answer")
             yield chunk
-        self._deadline.start(self._seconds, writing=True)  # the server's last bytes
+        self._deadline.start(self._seconds, "answer")  # the server's last bytes
 
     def close(self) -> None:
         close = getattr(self._chunks, "close", None)
         if close is not None:
             close()
+
+
+def _cut_counter() -> Callable[[str], None]:
+    """``likewise_client_cutoffs_total{phase}``: connections shut at a deadline. Made in
+    the web process (prometheus-client's multiprocess mode: ``/metrics`` adds up every
+    process's files), so the app's scrape reports it."""
+    from prometheus_client import Counter
+
+    counter = Counter("likewise_client_cutoffs", "Connections shut because the client "
+                      "was late with its request's head, its body or taking the answer.",
+                      ["phase"])
+    for phase in PHASES:
+        counter.labels(phase)  # every phase shows, at 0 until it happens
+    return lambda phase: counter.labels(phase).inc()
 
 
 def _size(wrapped: Any) -> int:
@@ -168,7 +182,7 @@ class Worker(ThreadWorker):
         settings = Settings.from_env()
         self._seconds = float(settings.client_seconds)
         self._rate = float(settings.client_min_rate)
-        self._watch = Watch()
+        self._watch = Watch(on_cut=_cut_counter())
         self._current = threading.local()  # the deadline of the thread's exchange
         super().init_process()
 
@@ -180,7 +194,7 @@ class Worker(ThreadWorker):
         deadline = getattr(conn, "likewise_deadline", None)
         if deadline is None:
             deadline = conn.likewise_deadline = self._watch.deadline(conn)
-        deadline.start(self._seconds)  # the request line and headers
+        deadline.start(self._seconds, "head")  # the request line and headers
         self._current.deadline = deadline
         try:
             return super().handle(conn)
@@ -199,7 +213,7 @@ class Worker(ThreadWorker):
             files = environ.get("wsgi.file_wrapper")
             if files is not None and isinstance(answer, files):
                 # a file is sent in one go (sendfile): one deadline for its size
-                deadline.start(self._seconds + _size(answer) / self._rate, writing=True)
+                deadline.start(self._seconds + _size(answer) / self._rate, "answer")
                 return answer
             return _TimedAnswer(answer, deadline, self._seconds, self._rate)
 

@@ -155,7 +155,7 @@ def _read_timed(want: int | None) -> bytes:
         size = step if want is None else min(step, want - got)
         if deadline is not None:
             due = begun + base + (got + size) / rate
-            deadline.start(max(0.0, due - time.monotonic()))
+            deadline.start(max(0.0, due - time.monotonic()), "body")
         part = _read(stream, size)
         if not part or (deadline is not None and deadline.expired):
             break  # the stream ended, or the deadline shut it
@@ -181,7 +181,7 @@ def _drain() -> None:
         from .deps import context
 
         s = context().settings
-        deadline.start(s.client_seconds + DRAIN_BYTES / s.client_min_rate)
+        deadline.start(s.client_seconds + DRAIN_BYTES / s.client_min_rate, "body")
     try:
         request.environ["wsgi.input"].read(DRAIN_BYTES)
     except OSError:

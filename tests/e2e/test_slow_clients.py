@@ -19,6 +19,7 @@ from urllib.parse import urlsplit
 
 import numpy as np
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
 
 from likewise_client import Client
 from tests.api.helpers import IRIS_FEATURES, iris_batches, records_body
@@ -78,6 +79,15 @@ def _trickle(sock: socket.socket, piece: bytes, limit: int | None = None) -> byt
     raw = got + _answer(sock)
     sock.close()
     return raw
+
+
+def _cutoffs(base: str) -> dict[str, float]:
+    """``likewise_client_cutoffs_total`` by phase, added up over the web processes."""
+    with urllib.request.urlopen(base + "/metrics", timeout=WAIT) as resp:
+        text = resp.read().decode()
+    return {s.labels["phase"]: s.value
+            for family in text_string_to_metric_families(text)
+            for s in family.samples if s.name == "likewise_client_cutoffs_total"}
 
 
 def _healthy(base: str) -> float:
@@ -142,6 +152,10 @@ def test_stalled_heads_and_bodies_are_cut_off_and_the_api_answers(service):
     assert _status_and_type(_answer(sock)) == (413, "application/problem+json")
     sock.close()
 
+    # every cut-off is counted by what the client was late with
+    cuts = _cutoffs(base)
+    assert cuts["head"] >= 2 and cuts["body"] >= 4, cuts  # 2 stalled, 2 trickles
+
     # a client that sends at a good pace is served as before
     with Client(base, TOKEN) as http:
         assert http.request("PUT", "/v1/metrics/iris", {"features": IRIS_FEATURES})[0] == 201
@@ -184,3 +198,4 @@ def test_clients_that_stop_reading_their_answer_are_cut_off(service):
         cut.append(len(rest) < length)
         sock.close()
     assert any(cut)  # an answer was cut off at its deadline, not buffered whole
+    assert _cutoffs(base)["answer"] >= 1

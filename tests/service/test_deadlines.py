@@ -25,12 +25,13 @@ def pair():
 
 def test_a_read_blocked_past_its_deadline_returns_and_the_socket_can_still_answer(pair):
     ours, theirs = pair
-    deadline = Watch().deadline(SimpleNamespace(sock=ours))
+    cuts: list[str] = []
+    deadline = Watch(on_cut=cuts.append).deadline(SimpleNamespace(sock=ours))
     started = time.monotonic()
-    deadline.start(0.2)
+    deadline.start(0.2, "body")
     assert ours.recv(10) == b""  # the watcher shut the reading side
     assert 0.15 < time.monotonic() - started < BOUND
-    assert deadline.expired
+    assert deadline.expired and cuts == ["body"]
     ours.sendall(b"408")  # the writing side is open: an answer can still go out
     assert theirs.recv(10) == b"408"
 
@@ -38,7 +39,7 @@ def test_a_read_blocked_past_its_deadline_returns_and_the_socket_can_still_answe
 def test_a_write_blocked_past_its_deadline_fails_at_once(pair):
     ours, _theirs = pair  # the peer never reads
     deadline = Watch().deadline(SimpleNamespace(sock=ours))
-    deadline.start(0.2, writing=True)
+    deadline.start(0.2, "answer")
     with pytest.raises(OSError):
         while True:
             ours.sendall(b"x" * 65536)  # fills the buffers, then blocks until shut
@@ -49,22 +50,22 @@ def test_a_new_phase_replaces_the_deadline_and_a_pause_clears_it(pair):
     ours, theirs = pair
     watch = Watch()
     deadline = watch.deadline(SimpleNamespace(sock=ours))
-    deadline.start(BOUND * 10)
-    deadline.start(0.1)  # the later phase's deadline is the one that holds
+    deadline.start(BOUND * 10, "body")
+    deadline.start(0.1, "body")  # the later phase's deadline is the one that holds
     assert watch.armed() == 1
     assert ours.recv(10) == b""
 
     other_ours, other_theirs = socket.socketpair()
     try:
         other = watch.deadline(SimpleNamespace(sock=other_ours))
-        other.start(1.0)
+        other.start(1.0, "body")
         other.pause()  # the work runs: no deadline
         assert watch.armed() == 0
         # a third deadline, due after the paused one would have been, fires alone
         third_ours, third_theirs = socket.socketpair()
         try:
             third_ours.settimeout(BOUND)
-            watch.deadline(SimpleNamespace(sock=third_ours)).start(1.5)
+            watch.deadline(SimpleNamespace(sock=third_ours)).start(1.5, "body")
             assert third_ours.recv(10) == b""
             other_theirs.sendall(b"ok")  # the paused connection still reads
             other_ours.settimeout(BOUND)
