@@ -3,16 +3,16 @@
 - Every body has a size limit: ``LIKEWISE_MAX_REQUEST_BYTES`` for batches and
   groupings, :data:`SMALL_BODY` for the small envelopes (metric definitions, fit
   requests, activations) and ``LIKEWISE_MAX_RUN_REQUEST_BYTES`` for a grouping run's
-  table, so validation cost follows what a route allows, not
-  what a caller sends.
+  table, so validation cost follows what a route allows, not what a caller sends.
 - A body that declares a length over its limit is a 413 before any of it is read; a
   chunked body (no ``Content-Length``) is read up to the limit plus one byte, and
   over it is a 413 too (the WSGI layer would otherwise cut it silently at the
   limit).
-- :func:`body` reads the body once, in one call on the WSGI stream, and keeps it for
-  the request (the table readers, the schema loader and the idempotency digest share
-  it): werkzeug's own reader copies a body in 64 KiB steps and then once more (about
-  60 ms on a 41 MB grouping, measured).
+- :func:`body` reads the body once, when the view first asks (after the token
+  check), and keeps it for the request (the table readers, the schema loader and the
+  idempotency digest share it). In process it is one call on the WSGI stream:
+  werkzeug's own reader copies a body in 64 KiB steps and then once more (about 60 ms
+  on a 41 MB grouping, measured).
 - Under the web server a body has a deadline (:mod:`service.deadlines`): it must
   arrive within ``LIKEWISE_CLIENT_SECONDS`` plus its length at
   ``LIKEWISE_CLIENT_MIN_RATE`` bytes a second, checked every 1 MiB as it arrives. A
