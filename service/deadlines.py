@@ -113,14 +113,17 @@ class Watch:
             at, token, d = heapq.heappop(self._heap)
             if d._token == token and d.at == at:  # still the connection's deadline
                 d.expired, d.at, shut = True, None, True
+                sock = d.sock
+                if sock.fileno() == -1:  # closed meanwhile: nothing to cut
+                    continue
+                if self._on_cut is not None:  # before the shutdown wakes the request
+                    self._on_cut(d.phase)
                 try:
                     # the plain socket's shutdown: a TLS socket's own would also drop
                     # its TLS state, and a 408 could no longer be sent over it
-                    socket.socket.shutdown(d.sock, d.how)
-                except OSError:  # closed meanwhile, or the client has gone
-                    continue
-                if self._on_cut is not None:
-                    self._on_cut(d.phase)
+                    socket.socket.shutdown(sock, d.how)
+                except OSError:  # the client has gone meanwhile
+                    pass
         return shut
 
     def _wait(self) -> float | None:
