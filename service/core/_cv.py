@@ -106,17 +106,19 @@ class CrossValidation:
         self.extra = BatchStats.sum(extra, self.stats[0].n_features)
         # the first repetition's folds hold every batch out once: their held-out sums
         # add up to the total, so each batch's statistics are added once for both
-        # (at 10,000 batches the sums are the largest cost that grows with them)
-        self._held_sums = {i: BatchStats.sum([self.stats[b] for b in f.held_out])
-                           for i, f in enumerate(folds) if f.repeat == 0}
-        first = sorted(b for i in self._held_sums for b in folds[i].held_out)
-        if first == list(range(len(self.stats))):
-            self.total = BatchStats.sum(list(self._held_sums.values())) + self.extra
-        else:  # not a partition (never made by make_folds): sum every batch
-            self.total = BatchStats.sum(self.stats) + self.extra
+        # (at 10,000 batches the sums are the largest cost that grows with them). Kept
+        # while they fit in KEEP_ELEMENTS floats; wider features sum every batch into
+        # one total, as before, and each fold's held-out part again when asked.
+        first = [i for i, f in enumerate(folds) if f.repeat == 0]
         d = self.stats[0].n_features
-        if 2 * d * d * len(self._held_sums) > KEEP_ELEMENTS:
-            self._held_sums = {}  # wide features: summed again per fold instead
+        held = sorted(b for i in first for b in folds[i].held_out)
+        self._held_sums: dict[int, BatchStats] = {}
+        if held == list(range(len(self.stats))) and 2 * d * d * len(first) <= KEEP_ELEMENTS:
+            self._held_sums = {i: BatchStats.sum([self.stats[b] for b in folds[i].held_out])
+                               for i in first}
+            self.total = BatchStats.sum(list(self._held_sums.values())) + self.extra
+        else:
+            self.total = BatchStats.sum(self.stats) + self.extra
         self.leave_one_out = all(len(f.held_out) == 1 for f in folds) and len(folds) == len(batches)
         self.max_rank = max_rank
         self.random_state = random_state
