@@ -30,9 +30,10 @@ Key layout (``P`` = the deployment's key prefix; metric names follow the rule of
     P:metric:{name}:history         list   activations (JSON), oldest first
     P:metric:{name}:fits            zset   fit ids of this metric, by creation time
     P:metric:{name}:dedupe:{hash}   string fit id of a waiting/running fit with these params
-    P:metric:{name}:runs            set    ids of this metric's grouping runs (an expired
-                                           run's id stays until the metric is deleted,
-                                           which deletes every run named here)
+    P:metric:{name}:runs            zset   ids of this metric's grouping runs, scored by
+                                           when the run's record expires (+inf while it
+                                           is live); pruned as runs are created; deleting
+                                           the metric deletes every run not yet expired
     P:fit:{fit_id}                  hash   fit record fields (JSON values)
     P:fit:{fit_id}:lease            string job id of the attempt running it (expires unless renewed)
     P:live-fits                     set    ids of waiting and running fits (what the warden checks)
@@ -147,8 +148,8 @@ class Keys:
         return keys
 
     def run_index(self, name: str) -> str:
-        """The ids of a metric's grouping runs (kept until the metric is deleted; an
-        id whose run has expired is dropped then)."""
+        """The ids of a metric's grouping runs, scored by when each run's record
+        expires (+inf while the run is live)."""
         return self.metric(name, "runs")
 
     def run_input(self, run_id: str, chunk: int) -> str:

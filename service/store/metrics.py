@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import time
 from typing import TYPE_CHECKING, Any
 
 from service.clock import utcnow
@@ -149,7 +150,8 @@ class MetricStore:
             batch_ids = [text(b) for b in pipe.zrange(zkeys[0], 0, -1)]
             versions = [text(v) for v in pipe.zrange(zkeys[1], 0, -1)]
             fit_ids = [text(f) for f in pipe.zrange(zkeys[2], 0, -1)]
-            run_ids = sorted(text(r) for r in pipe.smembers(zkeys[3]))
+            # the runs whose records have not expired yet (the others left nothing)
+            run_ids = [text(r) for r in pipe.zrangebyscore(zkeys[3], time.time(), "+inf")]
             # every dedupe key is named in the record of the fit it points at, and a
             # run's chunk count in its record (one round trip for all; the fits and
             # runs themselves are watched through zkeys)

@@ -9,6 +9,7 @@ the record, id and result chunks expire after the retention the caller passes.
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
@@ -80,7 +81,9 @@ class RunStore(Leases):
                 pipe.set(k.run_ids(run.run_id, i), blob)
             pipe.hset(k.run(run.run_id), mapping=json_fields(run.to_record()))
             pipe.sadd(k.live_runs(), run.run_id)
-            pipe.sadd(k.run_index(run.metric), run.run_id)
+            index = k.run_index(run.metric)
+            pipe.zremrangebyscore(index, "-inf", time.time())  # runs expired since
+            pipe.zadd(index, {run.run_id: float("inf")})
             enqueue(pipe)
 
         transact(self.redis, [mkey], body)
@@ -111,6 +114,9 @@ class RunStore(Leases):
                 pipe.delete(*(k.run_input(run_id, i) for i in range(new.n_chunks)))
                 ttl = max(1, int(keep_seconds or 1))
                 pipe.expire(k.run(run_id), ttl)
+                # the metric's index learns when the record goes (xx: a deleted
+                # metric's index is not made again)
+                pipe.zadd(k.run_index(new.metric), {run_id: time.time() + ttl}, xx=True)
                 for i in range(new.n_chunks):
                     pipe.expire(k.run_output(run_id, i), ttl)
                     if new.has_ids:
@@ -137,7 +143,7 @@ class RunStore(Leases):
         with self.redis.pipeline(transaction=True) as pipe:
             pipe.delete(*self.keys.run_keys(run.run_id, run.n_chunks))
             pipe.srem(self.keys.live_runs(), run.run_id)
-            pipe.srem(self.keys.run_index(run.metric), run.run_id)
+            pipe.zrem(self.keys.run_index(run.metric), run.run_id)
             pipe.execute()
 
     def forget_live(self, run_id: str) -> None:

@@ -253,6 +253,12 @@ def test_deleting_the_metric_deletes_its_runs_records_and_results(
     _done(api, ctx, run_worker_burst, done)
     waiting = _start(api, {"records": records[:70], "k": 2})
     ids = [loc.rsplit("/", 1)[1] for loc in (done, waiting)]
+    # the metric's index of runs knows when each record expires (+inf while live)
+    index = ctx.storage.keys.run_index("iris")
+    ends = ctx.redis.zscore(index, ids[0])
+    keep = ctx.settings.run_result_hours * 3600
+    assert ends is not None and time.time() < ends <= time.time() + keep + 1
+    assert ctx.redis.zscore(index, ids[1]) == float("inf")
     assert api.delete("/v1/metrics/iris").status_code == 204
     for loc in (done, waiting):
         assert_problem(api.get(loc), 404)
@@ -261,6 +267,19 @@ def test_deleting_the_metric_deletes_its_runs_records_and_results(
         assert list(ctx.redis.scan_iter(match=ctx.storage.keys.run(run_id) + "*")) == []
     assert ctx.storage.runs.live_ids() == []
     assert not ctx.redis.exists(ctx.storage.keys.run_index("iris"))
+
+
+def test_the_index_of_runs_forgets_expired_ones_as_runs_are_created(
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], run_worker_burst, iris
+) -> None:
+    _, records = iris
+    first = _start(api, {"records": records[:70], "k": 2})
+    _done(api, ctx, run_worker_burst, first)
+    index = ctx.storage.keys.run_index("iris")
+    old = first.rsplit("/", 1)[1]
+    ctx.redis.zadd(index, {old: time.time() - 1})  # as if its record had expired
+    second = _start(api, {"records": records[:70], "k": 2}).rsplit("/", 1)[1]
+    assert [m.decode() for m in ctx.redis.zrange(index, 0, -1)] == [second]
 
 
 def test_idempotency_key_replays_the_acceptance(
