@@ -62,12 +62,18 @@ def check_fit(ctx: Context, fit: Fit) -> Fit:
     """
     if not fit.live:
         return fit
+    state, error = None, None
     if fit.status is FitStatus.RUNNING and ctx.storage.fits.lease_holder(fit.fit_id) is None:
-        return _hand_over(ctx, fit)
+        # its worker died; a job the queue already failed or stopped says why (a work
+        # horse that was killed, say), however long ago the lease lapsed
+        state, error = ctx.jobs.job_state(fit.job_id)
+        if state not in (JobState.FAILED, JobState.STOPPED):
+            return _hand_over(ctx, fit)
     if fit.status is FitStatus.WAITING and ctx.jobs.stranded(
             fit.job_id, ctx.settings.stranded_seconds):
         return _reissue(ctx, fit)
-    state, error = ctx.jobs.job_state(fit.job_id)
+    if state is None:
+        state, error = ctx.jobs.job_state(fit.job_id)
     if _move(fit, state, error) is None:
         return fit
     seen = (fit.status, fit.job_id, fit.attempts)
