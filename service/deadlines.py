@@ -58,6 +58,13 @@ class Deadline:
         self._watch.set(self, time.monotonic() + seconds,
                         socket.SHUT_RDWR if phase == "answer" else socket.SHUT_RD)
 
+    def allow(self, nbytes: int, phase: str, since: float | None = None) -> None:
+        """A new phase that moves ``nbytes``: due ``client_seconds`` after ``since``
+        (default now) plus ``nbytes`` at ``client_min_rate`` (the watch's rule)."""
+        w = self._watch
+        due = (time.monotonic() if since is None else since) + w.seconds + nbytes / w.rate
+        self.start(max(0.0, due - time.monotonic()), phase)
+
     def pause(self) -> None:
         """No deadline until the next phase starts (the work runs)."""
         self._watch.set(self, None, self.how)
@@ -71,8 +78,12 @@ class Watch:
     """The deadlines of one process's connections and the thread that enforces them
     (started on first use, so a process that forks gets its own)."""
 
-    def __init__(self, on_cut: Callable[[str], None] | None = None) -> None:
-        """``on_cut(phase)`` is told of every connection shut (a counter: quick)."""
+    def __init__(self, seconds: float = 10.0, rate: float = 100_000.0,
+                 on_cut: Callable[[str], None] | None = None) -> None:
+        """``seconds`` and ``rate``: ``client_seconds`` and ``client_min_rate``, the
+        rule of :meth:`Deadline.allow`; ``on_cut(phase)`` is told of every connection
+        shut (a counter: quick)."""
+        self.seconds, self.rate = float(seconds), float(rate)
         self._on_cut = on_cut
         self._cond = threading.Condition()
         self._heap: list[tuple[float, int, Deadline]] = []

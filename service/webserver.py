@@ -130,10 +130,8 @@ class _TimedAnswer:
     """The answer's chunks, each to be taken by the client within the deadline of
     its length; producing the next chunk is not timed."""
 
-    def __init__(self, chunks: Iterable[bytes], deadline: Deadline, seconds: float,
-                 rate: float) -> None:
+    def __init__(self, chunks: Iterable[bytes], deadline: Deadline) -> None:
         self._chunks, self._deadline = chunks, deadline
-        self._seconds, self._rate = seconds, rate
 
     def __iter__(self) -> Iterator[bytes]:
         chunks = iter(self._chunks)
@@ -143,9 +141,9 @@ class _TimedAnswer:
                 chunk = next(chunks)
             except StopIteration:
                 break
-            self._deadline.start(self._seconds + len(chunk) / self._rate, "answer")
+            self._deadline.allow(len(chunk), "answer")
             yield chunk
-        self._deadline.start(self._seconds, "answer")  # the server's last bytes
+        self._deadline.allow(0, "answer")  # the server's last bytes
 
     def close(self) -> None:
         close = getattr(self._chunks, "close", None)
@@ -180,9 +178,8 @@ class Worker(ThreadWorker):
 
     def init_process(self) -> None:
         settings = Settings.from_env()
-        self._seconds = float(settings.client_seconds)
-        self._rate = float(settings.client_min_rate)
-        self._watch = Watch(on_cut=_cut_counter())
+        self._watch = Watch(settings.client_seconds, settings.client_min_rate,
+                            on_cut=_cut_counter())
         self._current = threading.local()  # the deadline of the thread's exchange
         super().init_process()
 
@@ -194,7 +191,7 @@ class Worker(ThreadWorker):
         deadline = getattr(conn, "likewise_deadline", None)
         if deadline is None:
             deadline = conn.likewise_deadline = self._watch.deadline(conn)
-        deadline.start(self._seconds, "head")  # the request line and headers
+        deadline.allow(0, "head")  # the request line and headers
         self._current.deadline = deadline
         try:
             return super().handle(conn)
@@ -213,9 +210,9 @@ class Worker(ThreadWorker):
             files = environ.get("wsgi.file_wrapper")
             if files is not None and isinstance(answer, files):
                 # a file is sent in one go (sendfile): one deadline for its size
-                deadline.start(self._seconds + _size(answer) / self._rate, "answer")
+                deadline.allow(_size(answer), "answer")
                 return answer
-            return _TimedAnswer(answer, deadline, self._seconds, self._rate)
+            return _TimedAnswer(answer, deadline)
 
         return timed
 

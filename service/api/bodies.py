@@ -144,18 +144,12 @@ def _read_timed(want: int | None) -> bytes:
     deadline = deadlines.of(request.environ)
     step = STEP_BYTES if deadline is not None or want is None else want
     begun = time.monotonic()
-    if deadline is not None:
-        from .deps import context
-
-        s = context().settings
-        base, rate = float(s.client_seconds), float(s.client_min_rate)
     parts: list[bytes] = []
     got = 0
     while want is None or got < want:
         size = step if want is None else min(step, want - got)
         if deadline is not None:
-            due = begun + base + (got + size) / rate
-            deadline.start(max(0.0, due - time.monotonic()), "body")
+            deadline.allow(got + size, "body", since=begun)
         part = _read(stream, size)
         if not part or (deadline is not None and deadline.expired):
             break  # the stream ended, or the deadline shut it
@@ -178,10 +172,7 @@ def _drain() -> None:
     of a reset."""
     deadline = deadlines.of(request.environ)
     if deadline is not None:
-        from .deps import context
-
-        s = context().settings
-        deadline.start(s.client_seconds + DRAIN_BYTES / s.client_min_rate, "body")
+        deadline.allow(DRAIN_BYTES, "body")
     try:
         request.environ["wsgi.input"].read(DRAIN_BYTES)
     except OSError:

@@ -77,3 +77,12 @@ def test_a_new_phase_replaces_the_deadline_and_a_pause_clears_it(pair):
     finally:
         other_ours.close()
         other_theirs.close()
+
+
+def test_allow_gives_the_seconds_plus_the_bytes_at_the_rate(pair):
+    ours, _theirs = pair
+    deadline = Watch(seconds=0.1, rate=1000, on_cut=None).deadline(SimpleNamespace(sock=ours))
+    started = time.monotonic()
+    deadline.allow(200, "body")  # 0.1 s + 200 bytes at 1,000 a second = 0.3 s
+    assert ours.recv(10) == b""
+    assert 0.25 < time.monotonic() - started < BOUND
