@@ -69,6 +69,7 @@ def test_grouping_bench_runs_quick() -> None:
 def test_throughput_bench_runs_quick() -> None:
     out = _run("throughput.py", "--quick")
     assert "reference: group_records" in out and "target: 4 clients" in out
+    assert "best any server could reach" in out
 
 
 def test_drift_reference_bench_runs_quick() -> None:
