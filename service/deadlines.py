@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import heapq
 import itertools
+import math
 import socket
 import threading
 import time
@@ -89,6 +90,11 @@ class Watch:
         self._heap: list[tuple[float, int, Deadline]] = []
         self._order = itertools.count()
         self._thread: threading.Thread | None = None
+        # when the watcher's current wait ends (inf: it waits for a notify); a deadline
+        # due no earlier needs no wakeup — a request's phases each set a later one, and
+        # a wakeup per phase cost the request a thread switch
+        self._wake = math.inf
+        self.wakeups = 0  # times the watcher woke (for tests)
 
     def deadline(self, conn: Any) -> Deadline:
         return Deadline(self, conn)
@@ -103,7 +109,8 @@ class Watch:
                     self._thread = threading.Thread(target=self._run, name="likewise-deadlines",
                                                     daemon=True)
                     self._thread.start()
-                self._cond.notify()
+                if at < self._wake:
+                    self._cond.notify()
 
     def armed(self) -> int:
         """Deadlines still running (for tests)."""
@@ -116,7 +123,11 @@ class Watch:
                 # under the lock, so a phase that starts (or a pause) meanwhile is never
                 # cut by the deadline it replaced; shutdown does not block
                 if not self._shut_due():
-                    self._cond.wait(self._wait())
+                    wait = self._wait()
+                    self._wake = math.inf if wait is None else time.monotonic() + wait
+                    self._cond.wait(wait)
+                    self.wakeups += 1
+                    self._wake = -math.inf  # awake: it looks at the heap before waiting
 
     def _shut_due(self) -> bool:
         now, shut = time.monotonic(), False

@@ -86,3 +86,21 @@ def test_allow_gives_the_seconds_plus_the_bytes_at_the_rate(pair):
     deadline.allow(200, "body")  # 0.1 s + 200 bytes at 1,000 a second = 0.3 s
     assert ours.recv(10) == b""
     assert 0.25 < time.monotonic() - started < BOUND
+
+
+def test_a_later_deadline_does_not_wake_the_watcher_and_still_fires(pair):
+    ours, _theirs = pair
+    watch = Watch()
+    deadline = watch.deadline(SimpleNamespace(sock=ours))
+    deadline.start(2.0, "head")
+    deadline.pause()
+    woke = watch.wakeups
+    # the watcher now waits for the paused deadline's time; each phase of a request
+    # sets a deadline later than that, and none of them needs a wakeup before it
+    for _ in range(20):
+        deadline.start(2.0, "body")
+    assert watch.wakeups == woke
+    started = time.monotonic()
+    assert ours.recv(10) == b""  # the last phase's deadline holds all the same
+    assert time.monotonic() - started < BOUND
+    assert deadline.expired and deadline.phase == "body"
