@@ -15,11 +15,16 @@ RQ's own log sentences are said in our words, or lowered to debug, by
 :class:`workers.logwords.QueueWords`, a filter on the handler that
 :func:`service.logs.configure` installs (``likewise worker`` calls it before
 ``run_worker``; ``likewise worker --until-empty`` is ``burst=True``).
+
+A stopping worker ends its command listener (the thread that hears the queue's
+stop-job and shut-down messages) within :data:`LISTEN_SECONDS`: RQ's own listener waits
+up to a minute between wakes, and its stop joins that thread, so a stop that lost the
+race with the unsubscribe reply held ``SIGTERM`` — and every burst's end — for a minute.
 """
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from rq import SimpleWorker, Worker
 
@@ -29,6 +34,28 @@ if TYPE_CHECKING:
     import redis
 
     from service.config import Settings
+
+LISTEN_SECONDS = 1.0  # the command listener's longest wait between wakes
+
+
+class _PromptStop:
+    """The command listener of :class:`rq.Worker`, waking every ``LISTEN_SECONDS``."""
+
+    def subscribe(self) -> None:
+        w: Any = self
+        w.pubsub = w.connection.pubsub()
+        w.pubsub.subscribe(**{w.pubsub_channel_name: w.handle_payload})
+        w.pubsub_thread = w.pubsub.run_in_thread(
+            sleep_time=LISTEN_SECONDS, daemon=True,
+            exception_handler=w._pubsub_exception_handler)
+
+
+class FitWorker(_PromptStop, Worker):
+    """A forking worker: each job in a work horse."""
+
+
+class InlineFitWorker(_PromptStop, SimpleWorker):
+    """A worker that runs each job in its own process."""
 
 
 def build_worker(
@@ -44,7 +71,7 @@ def build_worker(
 
     ctx = Context.build(settings, connection=connection)
     jobs.worker_settings = settings
-    cls = SimpleWorker if simple else Worker
+    cls = InlineFitWorker if simple else FitWorker
     ttl = heartbeat_ttl(settings.worker_seen_seconds)
     return cls([ctx.queue], connection=ctx.redis, name=name, worker_ttl=ttl,
                job_monitoring_interval=min(30, ttl - 15))

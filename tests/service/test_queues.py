@@ -6,6 +6,7 @@ import os
 import signal
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -112,3 +113,24 @@ def test_readiness_without_redis(ctx: Context) -> None:
         assert queues.readiness(dead) == (False, {"redis": False, "workers_seen": 0})
     finally:
         dead.close()
+
+
+def test_a_stopping_worker_ends_its_command_listener_promptly(ctx: Context) -> None:
+    """A worker's stop ends the thread that listens for queue commands. RQ's own
+    listener waits up to 60 s between wakes and its stop joins it (read in the installed
+    rq 3.0 and redis-py 8.2 sources), so a stop that came after the thread had handled
+    the unsubscribe reply waited out the whole minute (seen as a worker that took more
+    than 60 s to honour SIGTERM). Here that order is forced: the reply is handled first,
+    then the worker stops; it must be done within a few listener wakes."""
+    from workers.worker import LISTEN_SECONDS, build_worker
+
+    worker = build_worker(ctx.settings, f"{ctx.settings.key_prefix}-listener")
+    worker.subscribe()
+    assert _wait(lambda: worker.pubsub.subscribed, timeout=10)
+    worker.pubsub.unsubscribe()
+    assert _wait(lambda: not worker.pubsub.subscribed, timeout=10)  # the reply was handled
+    stopper = threading.Thread(target=worker.unsubscribe, daemon=True)
+    stopper.start()
+    stopper.join(timeout=5 * LISTEN_SECONDS)
+    assert not stopper.is_alive(), "the command listener kept the worker from stopping"
+    assert not worker.pubsub_thread.is_alive()
