@@ -55,7 +55,7 @@ class FitWorker(_PromptStop, Worker):
 
 
 class InlineFitWorker(_PromptStop, SimpleWorker):
-    """A worker that runs each job in its own process."""
+    """A worker that runs each job in the worker's own process: no fork, no time limit."""
 
 
 def build_worker(
