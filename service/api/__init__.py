@@ -38,6 +38,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
         fits,
         grouping_runs,
         groupings,
+        handoff,
         health,
         metrics,
         openapi,
@@ -60,6 +61,7 @@ def create_app(settings: Settings | None = None, context: Context | None = None)
 
     register_problem_handlers(app)
     tracing.install(app)  # first: even a refused request gets an id and a log line
+    handoff.install(app)  # a request's handed-off work waits until its answer is sent
     app.before_request(bound_body)
     telemetry.install(app, context)
 

@@ -8,6 +8,12 @@ then runs the hooks given to :meth:`Backlog.on_flush` (work a job keeps back to
 write in batches hands itself over there). A
 summary still waiting when its process dies is lost; it is a summary, never an
 acknowledged record. After a fork the child starts a backlog of its own.
+
+A thread can :meth:`Backlog.hold` what it hands off until it releases it
+(:meth:`Backlog.release`): the web tier holds a request's jobs until its answer has
+been sent, so the backlog's thread never competes with the answer for the
+interpreter. A thread's next hold, and any :meth:`Backlog.flush` it calls, release
+what it still holds.
 """
 
 from __future__ import annotations
@@ -32,6 +38,7 @@ class Backlog:
         self._pid: int | None = None
         self._jobs: queue.Queue[Callable[[], None]] = queue.Queue(capacity)
         self._on_flush: list[Callable[[], None]] = []
+        self._local = threading.local()  # .held: this thread's jobs not handed over yet
 
     def on_flush(self, hook: Callable[[], None]) -> None:
         """Run ``hook`` at every :meth:`flush`, once the jobs handed off are done."""
@@ -47,10 +54,40 @@ class Backlog:
                     self._pid = os.getpid()
         return self._jobs
 
-    def submit(self, job: Callable[[], None], outcome: str = "a drift summary was dropped"
-               ) -> bool:
+    def hold(self) -> None:
+        """Keep the jobs this thread hands off from now on until :meth:`release`
+        (what an earlier hold kept and never released is handed over first)."""
+        self.release()
+        self._local.held = []
+
+    def release(self) -> None:
+        """Hand over the jobs this thread held, in order, and stop holding."""
+        held: list[tuple[Callable[[], None], str]] | None = getattr(self._local, "held", None)
+        self._local.held = None
+        for job, outcome in held or ():
+            self._put(job, outcome)
+
+    def held(self) -> int:
+        """How many jobs this thread holds."""
+        return len(getattr(self._local, "held", None) or ())
+
+    def submit(self, job: Callable[[], None], outcome: str = "a drift summary was dropped",
+               may_hold: bool = True) -> bool:
         """Hand ``job`` off; False (and counted) when the backlog is full, logging
-        ``outcome``: what becomes of the job then (the caller may run it itself)."""
+        ``outcome``: what becomes of the job then (the caller may run it itself).
+
+        While this thread holds (:meth:`hold`), a job that ``may_hold`` waits for the
+        release and the answer is True: if the backlog is full then, the job is dropped
+        and counted, logging ``outcome``. A caller that runs a refused job itself passes
+        ``may_hold=False``. A thread holds at most ``capacity`` jobs; any more are
+        handed over at once."""
+        held = getattr(self._local, "held", None)
+        if may_hold and held is not None and len(held) < self.capacity:
+            held.append((job, outcome))
+            return True
+        return self._put(job, outcome)
+
+    def _put(self, job: Callable[[], None], outcome: str) -> bool:
         try:
             self._ensure().put_nowait(job)
             return True
@@ -72,7 +109,9 @@ class Backlog:
 
     def flush(self, timeout: float = 5.0, hooks: bool = True) -> bool:
         """Wait until every job handed off so far is done, then run the flush hooks
-        (unless ``hooks`` is False); False if ``timeout`` ran out."""
+        (unless ``hooks`` is False); False if ``timeout`` ran out. What this thread
+        holds is released first: it counts as handed off."""
+        self.release()
         if self._pid != os.getpid():
             return True  # nothing was handed off in this process
         jobs = self._jobs

@@ -182,7 +182,8 @@ class _Buckets:
             self._timer = None
         # written on the backlog's thread, as the rest (a flush then waits for it); with
         # the backlog full, here and now rather than waiting for the next request
-        if not BACKLOG.submit(self.write_due, "the drift summaries due are written in place"):
+        if not BACKLOG.submit(self.write_due, "the drift summaries due are written in place",
+                              may_hold=False):
             self.write_due()
 
     def write_due(self) -> None:

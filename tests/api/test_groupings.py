@@ -46,6 +46,22 @@ def test_grouping_with_the_active_version(
     assert adjusted_rand_score(truth, g["labels"]) > 0.5
 
 
+def test_the_drift_summary_is_handed_off_only_once_the_answer_is_closed(
+    api: SpecClient, ctx: Context, fitted: dict[str, Any], held_out
+) -> None:
+    """The server closes an answer after its last byte has gone (gunicorn does, as
+    the WSGI spec asks): only then does the request's drift summary reach the backlog."""
+    X, truth = held_out
+    drift_keys = ctx.storage.keys.metric("iris", "drift", "")
+    resp = api.post(URL, json={"records": as_records(X), "k": len(set(truth.tolist()))})
+    assert resp.status_code == 200 and resp.get_json()["version"] == 1
+    assert BACKLOG.held() == 1  # the answer is in hand, not closed: the summary waits
+    resp.close()
+    assert BACKLOG.held() == 0
+    assert BACKLOG.flush()
+    assert len(list(ctx.redis.scan_iter(match=drift_keys + "*"))) == 1
+
+
 def test_columns_form_auto_k_and_explicit_version(
     api: SpecClient, fitted: dict[str, Any], held_out
 ) -> None:
