@@ -3,8 +3,11 @@
 Each request holds what it hands to the process's backlog (a grouping's drift
 summary) and releases it when the server closes the answer, after its last byte has
 gone: until then the backlog's thread would compete with the request for the
-interpreter while the answer is still being built and encoded. A request that ends
-without an answer object (an error before the hooks ran) releases at teardown.
+interpreter while the answer is still being built and encoded. A request whose
+answer the server may not close (a file passed straight through) releases at
+teardown. A drift report flushes the backlog, which hands over what every thread of
+the process holds, so a threaded server's report still sees a summary whose answer
+is sent but not closed yet.
 """
 
 from __future__ import annotations
@@ -19,6 +22,8 @@ def _hold() -> None:
 
 
 def _release_when_sent(response: Response) -> Response:
+    if response.direct_passthrough:
+        return response  # a file the server may send without closing it: at teardown
     response.call_on_close(BACKLOG.release)
     g.likewise_release_on_close = True
     return response

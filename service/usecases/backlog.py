@@ -10,10 +10,11 @@ summary still waiting when its process dies is lost; it is a summary, never an
 acknowledged record. After a fork the child starts a backlog of its own.
 
 A thread can :meth:`Backlog.hold` what it hands off until it releases it
-(:meth:`Backlog.release`): the web tier holds a request's jobs until its answer has
-been sent, so the backlog's thread never competes with the answer for the
-interpreter. A thread's next hold, and any :meth:`Backlog.flush` it calls, release
-what it still holds.
+(:meth:`Backlog.release`): the web tier holds a request's jobs until the server has
+written its answer and closed it, so the backlog's thread does not compete with the
+answer being built and encoded (under load it competes with the process's next
+request instead). A thread's next hold releases what it still holds, and any
+:meth:`Backlog.flush` hands over what every thread of the process holds.
 """
 
 from __future__ import annotations
@@ -38,7 +39,11 @@ class Backlog:
         self._pid: int | None = None
         self._jobs: queue.Queue[Callable[[], None]] = queue.Queue(capacity)
         self._on_flush: list[Callable[[], None]] = []
-        self._local = threading.local()  # .held: this thread's jobs not handed over yet
+        # jobs held back by thread, not handed over yet (see hold); the pid they were
+        # held in: a forked child starts holding nothing
+        self._held: dict[int, list[tuple[Callable[[], None], str]]] = {}
+        self._held_pid = os.getpid()
+        self._held_lock = threading.Lock()
 
     def on_flush(self, hook: Callable[[], None]) -> None:
         """Run ``hook`` at every :meth:`flush`, once the jobs handed off are done."""
@@ -54,22 +59,30 @@ class Backlog:
                     self._pid = os.getpid()
         return self._jobs
 
+    def _holds(self) -> dict[int, list[tuple[Callable[[], None], str]]]:
+        """(Held lock taken.) The holds of this process."""
+        if self._held_pid != os.getpid():  # inherited from the parent: its to hand over
+            self._held, self._held_pid = {}, os.getpid()
+        return self._held
+
     def hold(self) -> None:
         """Keep the jobs this thread hands off from now on until :meth:`release`
         (what an earlier hold kept and never released is handed over first)."""
         self.release()
-        self._local.held = []
+        with self._held_lock:
+            self._holds()[threading.get_ident()] = []
 
     def release(self) -> None:
         """Hand over the jobs this thread held, in order, and stop holding."""
-        held: list[tuple[Callable[[], None], str]] | None = getattr(self._local, "held", None)
-        self._local.held = None
-        for job, outcome in held or ():
+        with self._held_lock:
+            held = self._holds().pop(threading.get_ident(), [])
+        for job, outcome in held:
             self._put(job, outcome)
 
     def held(self) -> int:
         """How many jobs this thread holds."""
-        return len(getattr(self._local, "held", None) or ())
+        with self._held_lock:
+            return len(self._holds().get(threading.get_ident(), ()))
 
     def submit(self, job: Callable[[], None], outcome: str = "a drift summary was dropped",
                may_hold: bool = True) -> bool:
@@ -81,10 +94,12 @@ class Backlog:
         and counted, logging ``outcome``. A caller that runs a refused job itself passes
         ``may_hold=False``. A thread holds at most ``capacity`` jobs; any more are
         handed over at once."""
-        held = getattr(self._local, "held", None)
-        if may_hold and held is not None and len(held) < self.capacity:
-            held.append((job, outcome))
-            return True
+        if may_hold:
+            with self._held_lock:
+                held = self._holds().get(threading.get_ident())
+                if held is not None and len(held) < self.capacity:
+                    held.append((job, outcome))
+                    return True
         return self._put(job, outcome)
 
     def _put(self, job: Callable[[], None], outcome: str) -> bool:
@@ -107,11 +122,23 @@ class Backlog:
             finally:
                 jobs.task_done()
 
+    def _hand_over_held(self) -> None:
+        with self._held_lock:
+            holds = self._holds()
+            taken = [jobs for jobs in holds.values() if jobs]
+            for ident in holds:
+                holds[ident] = []
+        for jobs in taken:
+            for job, outcome in jobs:
+                self._put(job, outcome)
+
     def flush(self, timeout: float = 5.0, hooks: bool = True) -> bool:
         """Wait until every job handed off so far is done, then run the flush hooks
-        (unless ``hooks`` is False); False if ``timeout`` ran out. What this thread
-        holds is released first: it counts as handed off."""
-        self.release()
+        (unless ``hooks`` is False); False if ``timeout`` ran out. What any thread of
+        the process holds is handed over first: it counts as handed off (a report
+        served on one thread sees the summary of an answer another thread has sent
+        but not closed yet); those threads go on holding what they hand off next."""
+        self._hand_over_held()
         if self._pid != os.getpid():
             return True  # nothing was handed off in this process
         jobs = self._jobs
